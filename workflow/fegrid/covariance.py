@@ -1,0 +1,172 @@
+"""Covariance kinds: one registry, plain names, one statement of the small-sample conventions.
+
+Conventions
+-----------
+Let ``N`` be the number of observations used, ``k`` the number of regressors kept (focal plus
+non-collinear controls), ``A`` the degrees of freedom taken by the absorbed effects (see
+:class:`fegrid.absorb.Absorber`; 1 for the intercept when nothing is absorbed), ``X`` the demeaned
+regressors (scaled by the square root of the weights when weighted), ``e`` the residuals and
+``B = (X'X)^{-1}``.
+
+``iid``
+    ``V = s^2 B`` with ``s^2 = e'e / (N - k - A)``; t distribution with ``N - k - A`` df.
+``robust`` (HC1)
+    ``V = N / (N - k - A) * B (sum_i e_i^2 x_i x_i') B``; t with ``N - k - A`` df.
+``cluster`` (one-way)
+    ``V = G/(G-1) * (N-1)/(N-K) * B (sum_g u_g u_g') B`` with ``u_g = sum_{i in g} x_i e_i`` and
+    ``K = k + A - A_nested``, where ``A_nested`` is the df of absorbed terms nested within the
+    cluster variable, which do not count (Cameron & Miller 2015); t with ``G - 1`` df (common
+    practice; Cameron & Miller 2015).
+``twoway``
+    ``V = V_1 + V_2 - V_12`` (Cameron, Gelbach & Miller 2011), each term the one-way formula with
+    its own ``G``; ``V_12`` clusters on the intersection. Terms count as nested when nested in
+    both variables. If ``V`` is not positive semi-definite its negative eigenvalues are set to zero
+    (CGM 2011, section 2.3) and the result records it; t with ``min(G_1, G_2) - 1`` df.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from .errors import EstimationError
+
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "covariance_kind", "cluster_dimensions"]
+
+
+@dataclass(frozen=True)
+class CovarianceOutcome:
+    """Covariance of the kept regressors with the df of its t distribution."""
+
+    matrix: np.ndarray
+    df: float
+    n_clusters: tuple[int, ...]
+    psd_adjusted: bool = False
+
+
+def _cluster_meat(scores: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
+    n_groups = int(codes.max()) + 1
+    summer = sp.csr_array((np.ones(len(codes)), (codes, np.arange(len(codes)))), shape=(n_groups, len(codes)))
+    u = summer @ scores
+    return u.T @ u, n_groups
+
+
+def _sandwich(bread: np.ndarray, meat: np.ndarray) -> np.ndarray:
+    out = bread @ meat @ bread
+    return (out + out.T) / 2
+
+
+class _Kind:
+    """A covariance kind: callable on the fitted pieces of one specification."""
+
+    name = ""
+    dimensions = 0
+
+    def __call__(
+        self,
+        x: np.ndarray,
+        e: np.ndarray,
+        bread: np.ndarray,
+        *,
+        n_params: int,
+        absorbed_df: int,
+        nested_df: Callable[[Sequence[np.ndarray]], int],
+        clusters: Sequence[np.ndarray],
+    ) -> CovarianceOutcome:
+        raise NotImplementedError
+
+
+class Iid(_Kind):
+    """Homoskedastic errors."""
+
+    name = "iid"
+
+    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        dof = len(e) - n_params - absorbed_df
+        if dof <= 0:
+            raise EstimationError("no residual degrees of freedom are left")
+        return CovarianceOutcome(float(e @ e) / dof * bread, dof, ())
+
+
+class Robust(Iid):
+    """Heteroskedasticity-robust errors with the HC1 factor ``N / (N - k - A)``."""
+
+    name = "robust"
+
+    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(e)
+        dof = n - n_params - absorbed_df
+        if dof <= 0:
+            raise EstimationError("no residual degrees of freedom are left")
+        scores = x * e[:, None]
+        return CovarianceOutcome(n / dof * _sandwich(bread, scores.T @ scores), dof, ())
+
+
+class OneWay(_Kind):
+    """Errors correlated within the groups of one cluster variable."""
+
+    name = "cluster"
+    dimensions = 1
+
+    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(e)
+        k_total = n_params + absorbed_df - nested_df(clusters)
+        if n - k_total <= 0:
+            raise EstimationError("no residual degrees of freedom are left")
+        meat, g = _cluster_meat(x * e[:, None], clusters[0])
+        if g < 2:
+            raise EstimationError("the cluster variable has a single group in this sample")
+        factor = g / (g - 1) * (n - 1) / (n - k_total)
+        return CovarianceOutcome(factor * _sandwich(bread, meat), g - 1, (g,))
+
+
+class TwoWay(_Kind):
+    """Errors correlated within the groups of either of two cluster variables."""
+
+    name = "twoway"
+    dimensions = 2
+
+    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(e)
+        k_total = n_params + absorbed_df - nested_df(clusters)
+        if n - k_total <= 0:
+            raise EstimationError("no residual degrees of freedom are left")
+        scores = x * e[:, None]
+        a, b = clusters
+        both = a * (int(b.max()) + 1) + b
+        total = np.zeros((x.shape[1], x.shape[1]))
+        counts = []
+        for codes, sign in ((a, 1.0), (b, 1.0), (np.unique(both, return_inverse=True)[1], -1.0)):
+            meat, g = _cluster_meat(scores, codes)
+            if g < 2:
+                raise EstimationError("a cluster variable has a single group in this sample")
+            total += sign * g / (g - 1) * (n - 1) / (n - k_total) * meat
+            counts.append(g)
+        v = _sandwich(bread, total)
+        eigval, eigvec = np.linalg.eigh(v)
+        adjusted = bool(eigval.min() < 0)
+        if adjusted:
+            v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
+        return CovarianceOutcome(v, min(counts[0], counts[1]) - 1, (counts[0], counts[1]), adjusted)
+
+
+#: Registry of covariance kinds: the config's name -> estimator.
+COVARIANCE_KINDS: dict[str, _Kind] = {k.name: k for k in (Iid(), Robust(), OneWay(), TwoWay())}
+
+
+def covariance_kind(name: str) -> _Kind:
+    """Look up a covariance kind by name; an unknown name lists the allowed ones."""
+    try:
+        return COVARIANCE_KINDS[name]
+    except KeyError:
+        raise EstimationError(
+            f"unknown covariance kind '{name}'; the kinds are {', '.join(COVARIANCE_KINDS)}."
+        ) from None
+
+
+def cluster_dimensions(name: str) -> int:
+    """How many cluster variables a covariance kind takes (0, 1 or 2)."""
+    return covariance_kind(name).dimensions

@@ -1,0 +1,140 @@
+"""Reading the panel data and checking that it can serve the grid."""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Iterable
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import DataError, FegridError
+from .grid import Grid
+from .samples import apply_sample
+
+__all__ = ["READERS", "file_sha256", "read_table", "check_data", "levels_for"]
+
+
+def _read_csv(path: Path, columns: list[str] | None) -> pd.DataFrame:
+    return pd.read_csv(path, usecols=columns)
+
+
+def _read_parquet(path: Path, columns: list[str] | None) -> pd.DataFrame:
+    return pd.read_parquet(path, columns=columns)
+
+
+def _read_stata(path: Path, columns: list[str] | None) -> pd.DataFrame:
+    return pd.read_stata(path, columns=columns, convert_categoricals=False)
+
+
+#: File ending -> reader.
+READERS = {".csv": _read_csv, ".parquet": _read_parquet, ".pq": _read_parquet, ".dta": _read_stata}
+
+
+def file_sha256(path: str | Path) -> str:
+    """SHA-256 of a file's bytes (its content, whatever its time stamp)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.DataFrame:
+    """Read a CSV, Parquet or Stata file, only ``columns`` if given (unknown ones are an error)."""
+    path = Path(path)
+    reader = READERS.get(path.suffix.lower())
+    if reader is None:
+        raise DataError(
+            f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
+            f"{', '.join(READERS)}."
+        )
+    if not path.is_file():
+        raise DataError(f"The data file '{path}' does not exist (data.path in the config).")
+    wanted = list(columns) if columns is not None else None
+    try:
+        if wanted is not None and reader is _read_csv:
+            header = pd.read_csv(path, nrows=0).columns
+            missing = [c for c in wanted if c not in set(header)]
+            if missing:
+                raise DataError(_missing_message(path, missing, header))
+            return reader(path, wanted)
+        frame = reader(path, None)
+    except FegridError:
+        raise
+    except Exception as exc:  # any parser's failure is the user's file, not our bug
+        raise DataError(f"The data file '{path}' cannot be read as {path.suffix}: {exc}") from None
+    if wanted is None:
+        return frame
+    missing = [c for c in wanted if c not in frame.columns]
+    if missing:
+        raise DataError(_missing_message(path, missing, frame.columns))
+    return frame[wanted]
+
+
+def _missing_message(path: Path, missing: list[str], header: Iterable[str]) -> str:
+    return (
+        f"The data file '{path}' has no column(s) {', '.join(repr(m) for m in missing)}, which the "
+        f"config uses. Its columns are: {', '.join(map(str, header))}."
+    )
+
+
+def levels_for(frame: pd.DataFrame, grid: Grid) -> dict[str, list]:
+    """Sorted levels of the columns the grid expansion needs (``drop_each`` generators)."""
+    out = {}
+    for col in grid.level_columns():
+        values = frame[col].dropna().unique()
+        out[col] = sorted(values.tolist(), key=lambda v: (str(type(v)), v))
+    return out
+
+
+def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> None:
+    """Raise a :class:`DataError` naming the column at fault when the data cannot serve the grid.
+
+    Checks: every column exists; outcomes, regressors, controls, weights and time are numeric;
+    (unit, time) pairs are unique; unit, time and cluster variables have no missing values;
+    weights are positive; every sample keeps some rows.
+    """
+    roles = grid.roles()
+    for role, cols in roles.items():
+        missing = [c for c in cols if c not in frame.columns]
+        if missing:
+            raise DataError(
+                f"The {role} column(s) {', '.join(repr(m) for m in missing)} named in the config "
+                f"are not in {path}. Its columns are: {', '.join(map(str, frame.columns))}."
+            )
+    numeric_roles = ("outcome", "focal regressor", "control", "weights", "time")
+    for role in numeric_roles:
+        for col in roles[role]:
+            if not pd.api.types.is_numeric_dtype(frame[col]) or pd.api.types.is_bool_dtype(frame[col]):
+                example = frame[col].dropna().astype(str).head(3).tolist()
+                raise DataError(
+                    f"The {role} column '{col}' is not numeric (values such as {example}); recode it "
+                    "as numbers before fitting."
+                )
+    for role in ("unit", "time", "cluster"):
+        for col in roles[role]:
+            n_missing = int(frame[col].isna().sum())
+            if n_missing:
+                raise DataError(
+                    f"The {role} column '{col}' has {n_missing} missing value(s); every observation "
+                    "needs a value there. Drop those rows or fill them before fitting."
+                )
+    if grid.panel.time:
+        keys = [grid.panel.unit, grid.panel.time]
+        dup = frame.duplicated(keys, keep=False)
+        if dup.any():
+            first = frame.loc[dup, keys].iloc[0].tolist()
+            raise DataError(
+                f"The panel keys ({grid.panel.unit}, {grid.panel.time}) are not unique: "
+                f"{int(dup.sum())} rows share a key, e.g. {grid.panel.unit}={first[0]}, "
+                f"{grid.panel.time}={first[1]}. Each unit may appear once per period."
+            )
+    for col in roles["weights"]:
+        w = frame[col].to_numpy(dtype=float)
+        bad = np.isfinite(w) & (w <= 0)
+        if bad.any():
+            raise DataError(f"The weights column '{col}' has {int(bad.sum())} value(s) that are not positive.")
+    for name, (_, sample) in grid.sample_defs(levels_for(frame, grid)).items():
+        apply_sample(frame, sample, grid.panel)

@@ -1,0 +1,461 @@
+"""Block evaluation: every specification that shares a sample, absorbed effects and weights.
+
+A *block* is a set of specifications fitted on the same sample with the same absorbed effects and
+weights. :func:`fit_block` evaluates all of them with as little repeated work as the algebra allows:
+
+1. Specifications are grouped by their complete-case rows (rows with a missing value in a
+   specification's own variables are dropped for that specification only); each group is one
+   *design*: its singletons are removed and its absorbed effects compiled once.
+2. Every outcome, focal regressor and control used in a design is demeaned once, together
+   (Frisch-Waugh-Lovell: regressing demeaned variables gives the fixed-effects coefficients). The
+   demeaned columns can be kept in a content-addressed store, so a later run reuses them.
+3. Each control set is a sub-block of that demeaned matrix: its collinearity check and
+   ``(X'X)^{-1}`` are computed once per focal regressor; each outcome's residuals once per control
+   set; every covariance choice reuses the same residuals.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass, field, fields
+from typing import Protocol
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .absorb import Absorber, Term, drop_singletons, factorize
+from .covariance import covariance_kind
+from .errors import EstimationError
+
+__all__ = [
+    "Inference",
+    "SpecRequest",
+    "BlockSettings",
+    "SpecResult",
+    "BlockFit",
+    "DemeanStore",
+    "fit_block",
+    "fit_one",
+    "RESULT_COLUMNS",
+]
+
+STATUS_OK = "ok"
+STATUS_NOT_IDENTIFIED = "not_identified"
+STATUS_FAILED = "failed"
+
+
+@dataclass(frozen=True)
+class Inference:
+    """How standard errors are computed: a covariance kind and its cluster dimensions.
+
+    Each dimension is a tuple of columns; several columns cluster on their interaction.
+    """
+
+    kind: str = "robust"
+    by: tuple[tuple[str, ...], ...] = ()
+
+    def __post_init__(self) -> None:
+        need = covariance_kind(self.kind).dimensions
+        if len(self.by) != need:
+            raise EstimationError(
+                f"covariance kind '{self.kind}' takes {need} cluster variable(s), got {len(self.by)}."
+            )
+
+    def columns(self) -> tuple[str, ...]:
+        return tuple(c for dim in self.by for c in dim)
+
+
+@dataclass(frozen=True)
+class SpecRequest:
+    """One specification inside a block."""
+
+    spec_id: str
+    outcome: str
+    focal: str
+    controls: tuple[str, ...] = ()
+    inference: Inference = field(default_factory=Inference)
+
+
+@dataclass(frozen=True)
+class BlockSettings:
+    """What every specification of a block shares."""
+
+    absorb: tuple[Term, ...] = ()
+    weights: str | None = None
+    unit: str | None = None
+    time: str | None = None
+    keep_singletons: bool = False
+    tolerance: float = 1e-10
+    max_iterations: int = 10_000
+    level: float = 0.95
+
+    def demean_key(self) -> str:
+        """Everything that decides the demeaned columns (the confidence level does not)."""
+        body = asdict(self)
+        body.pop("level")
+        body["absorb"] = [t.canonical() for t in self.absorb]
+        return json.dumps(body, sort_keys=True)
+
+
+@dataclass(frozen=True)
+class SpecResult:
+    """The estimate of the focal coefficient of one specification with its diagnostics."""
+
+    spec_id: str
+    status: str
+    message: str = ""
+    estimate: float = float("nan")
+    std_error: float = float("nan")
+    t_stat: float = float("nan")
+    p_value: float = float("nan")
+    ci_low: float = float("nan")
+    ci_high: float = float("nan")
+    df_inference: float = float("nan")
+    n_obs: int = 0
+    n_singletons: int = 0
+    n_clusters: int = 0
+    clusters: str = ""
+    absorbed_df: int = 0
+    absorb_levels: str = ""
+    within_r2: float = float("nan")
+    iterations: int = 0
+    converged: bool = True
+    controls_dropped: str = ""
+    focal_sd: float = float("nan")
+    focal_sd_within: float = float("nan")
+    focal_variance_share: float = float("nan")
+    units_with_variation: int = 0
+    psd_adjusted: bool = False
+
+    def record(self) -> dict[str, object]:
+        return asdict(self)
+
+
+RESULT_COLUMNS: tuple[str, ...] = tuple(f.name for f in fields(SpecResult))
+
+
+class DemeanStore(Protocol):
+    """Where demeaned columns are kept between runs, addressed by content."""
+
+    def get(self, key: str) -> tuple[np.ndarray, int, bool] | None: ...
+
+    def put(self, key: str, values: np.ndarray, iterations: int, converged: bool) -> None: ...
+
+
+@dataclass
+class BlockFit:
+    """Results of one block with counts of the work done."""
+
+    results: list[SpecResult]
+    designs: int = 0
+    columns_demeaned: int = 0
+    columns_reused: int = 0
+
+
+def _hash(*parts: object) -> str:
+    h = hashlib.sha256()
+    for p in parts:
+        h.update(p if isinstance(p, bytes) else str(p).encode())
+        h.update(b"\x00")
+    return h.hexdigest()
+
+
+def _fmt_counts(pairs: dict[str, int]) -> str:
+    return "; ".join(f"{k}={v}" for k, v in pairs.items())
+
+
+class _Design:
+    """Rows, absorbed effects and demeaned columns shared by specifications with the same rows."""
+
+    def __init__(self, frame: pd.DataFrame, settings: BlockSettings, n_singletons: int,
+                 design_key: str) -> None:
+        self.frame = frame
+        self.settings = settings
+        self.n_singletons = n_singletons
+        self.key = design_key
+        w = frame[settings.weights].to_numpy(dtype=float) if settings.weights else None
+        self.w = np.ones(len(frame)) if w is None else w
+        self.sqrt_w = np.sqrt(self.w)
+        self.absorber = Absorber(frame, settings.absorb, weights=w, time=settings.time,
+                                 tolerance=settings.tolerance,
+                                 max_iterations=settings.max_iterations)
+        self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
+        self.tilde: dict[str, np.ndarray] = {}
+        self.iterations: dict[str, int] = {}
+        self.converged: dict[str, bool] = {}
+        self._clusters: dict[tuple[str, ...], np.ndarray] = {}
+        self._controls: dict[tuple[str, ...], tuple[np.ndarray, np.ndarray, list[str], list[str]]] = {}
+        self._regressors: dict[tuple[str, tuple[str, ...]], object] = {}
+        self._fits: dict[tuple[str, str, tuple[str, ...]], tuple[float, np.ndarray, np.ndarray, float]] = {}
+
+    def demean(self, columns: Sequence[str], store: DemeanStore | None) -> tuple[int, int]:
+        todo = [c for c in columns if c not in self.tilde]
+        reused = 0
+        if store is not None:
+            missing = []
+            for c in todo:
+                got = store.get(_hash(self.key, c))
+                if got is None or len(got[0]) != len(self.frame):
+                    missing.append(c)
+                else:
+                    self.tilde[c], self.iterations[c], self.converged[c] = got
+                    reused += 1
+            todo = missing
+        if todo:
+            raw = self.frame[todo].to_numpy(dtype=float)
+            out = self.absorber.demean(raw)
+            for j, c in enumerate(todo):
+                vals = np.ascontiguousarray(out.values[:, j])
+                self.tilde[c] = vals
+                self.iterations[c] = int(out.iterations[j])
+                self.converged[c] = bool(out.converged[j])
+                if store is not None:
+                    store.put(_hash(self.key, c), vals, self.iterations[c], self.converged[c])
+        return len(todo), reused
+
+    def cluster_codes(self, dim: tuple[str, ...]) -> np.ndarray:
+        if dim not in self._clusters:
+            self._clusters[dim] = factorize(self.frame, dim)[0]
+        return self._clusters[dim]
+
+    def centered_norm(self, col: str) -> float:
+        x = self.frame[col].to_numpy(dtype=float)
+        xc = x - np.average(x, weights=self.w)
+        return float(np.sqrt(np.sum(self.w * xc * xc)))
+
+    def controls(self, controls: tuple[str, ...]):
+        """Kept controls' weighted demeaned matrix, its orthonormal basis and what was dropped."""
+        if controls not in self._controls:
+            kept: list[str] = []
+            dropped: list[str] = []
+            basis = np.empty((len(self.frame), 0))
+            for c in controls:
+                v = self.tilde[c] * self.sqrt_w
+                norm = np.linalg.norm(v)
+                if norm <= self.ident_tol * max(self.centered_norm(c), 1e-300):
+                    dropped.append(f"{c} (absorbed)")
+                    continue
+                r = v - basis @ (basis.T @ v)
+                r = r - basis @ (basis.T @ r)
+                if np.linalg.norm(r) <= 1e-7 * norm:
+                    dropped.append(f"{c} (collinear)")
+                    continue
+                kept.append(c)
+                basis = np.column_stack([basis, r / np.linalg.norm(r)])
+            mat = np.column_stack([self.tilde[c] * self.sqrt_w for c in kept]) if kept else basis
+            self._controls[controls] = (mat, basis, kept, dropped)
+        return self._controls[controls]
+
+    def regressors(self, focal: str, controls: tuple[str, ...]):
+        """``(X, (X'X)^{-1}, dropped, problem)`` for the focal regressor with a control set."""
+        key = (focal, controls)
+        if key not in self._regressors:
+            mat, basis, kept, dropped = self.controls(controls)
+            x = self.tilde[focal] * self.sqrt_w
+            raw_norm = self.centered_norm(focal)
+            problem = ""
+            if raw_norm == 0:
+                problem = f"the focal regressor '{focal}' is constant in this sample"
+            elif np.linalg.norm(x) <= self.ident_tol * raw_norm:
+                problem = (f"the focal regressor '{focal}' is absorbed by the fixed effects "
+                           f"({', '.join(self.absorber.levels) or 'intercept'}): it does not vary "
+                           "within their groups")
+            else:
+                r = x - basis @ (basis.T @ x)
+                if np.linalg.norm(r) <= 1e-7 * np.linalg.norm(x):
+                    problem = (f"the focal regressor '{focal}' is collinear with the controls "
+                               f"{', '.join(kept)}")
+            if problem:
+                self._regressors[key] = (None, None, dropped, problem)
+            else:
+                X = np.column_stack([x, mat])
+                self._regressors[key] = (X, np.linalg.inv(X.T @ X), dropped, "")
+        return self._regressors[key]
+
+    def fit(self, outcome: str, focal: str, controls: tuple[str, ...]):
+        key = (outcome, focal, controls)
+        if key not in self._fits:
+            X, bread, _, _ = self.regressors(focal, controls)
+            y = self.tilde[outcome] * self.sqrt_w
+            beta = bread @ (X.T @ y)
+            e = y - X @ beta
+            tss = float(y @ y)
+            r2 = 1.0 - float(e @ e) / tss if tss > 0 else float("nan")
+            self._fits[key] = (float(beta[0]), e, X, r2)
+        return self._fits[key]
+
+    def focal_diagnostics(self, focal: str) -> dict[str, object]:
+        x = self.frame[focal].to_numpy(dtype=float)
+        n = len(x)
+        xt = self.tilde[focal]
+        raw = self.centered_norm(focal)
+        out: dict[str, object] = {
+            "focal_sd": float(np.std(x, ddof=1)) if n > 1 else float("nan"),
+            "focal_sd_within": float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
+            "focal_variance_share": float(np.sum(self.w * xt * xt)) / raw**2 if raw > 0 else 0.0,
+            "units_with_variation": 0,
+        }
+        unit = self.settings.unit
+        if unit is not None and unit in self.frame:
+            codes, n_units = factorize(self.frame, (unit,))
+            cnt = np.bincount(codes, minlength=n_units)
+            mean = np.bincount(codes, x, minlength=n_units) / np.maximum(cnt, 1)
+            ss = np.bincount(codes, (x - mean[codes]) ** 2, minlength=n_units)
+            scale = max(float(np.max(np.abs(x))), 1e-300) if n else 1.0
+            out["units_with_variation"] = int(np.count_nonzero(ss > (1e-12 * scale) ** 2))
+        return out
+
+
+def _needed(spec: SpecRequest, settings: BlockSettings) -> list[str]:
+    cols = [spec.outcome, spec.focal, *spec.controls, *spec.inference.columns()]
+    for term in settings.absorb:
+        cols.extend(term.needed_columns(settings.time))
+    if settings.weights:
+        cols.append(settings.weights)
+    return list(dict.fromkeys(cols))
+
+
+def fit_block(
+    frame: pd.DataFrame,
+    settings: BlockSettings,
+    specs: Sequence[SpecRequest],
+    *,
+    store: DemeanStore | None = None,
+    data_key: str = "",
+) -> BlockFit:
+    """Fit every specification of a block.
+
+    Parameters
+    ----------
+    frame
+        The block's sample (already filtered), with every column the specifications use.
+    settings
+        Absorbed effects, weights, panel keys, tolerance and confidence level.
+    specs
+        The specifications; each is evaluated independently of the others' presence.
+    store
+        Optional store of demeaned columns, reused across calls and runs.
+    data_key
+        A string identifying the data and sample (e.g. their content hashes); it is part of every
+        key in ``store``, so different data never share demeaned columns.
+
+    Returns
+    -------
+    BlockFit
+        One :class:`SpecResult` per specification, in the order given.
+    """
+    notna: dict[str, np.ndarray] = {}
+    groups: dict[bytes, tuple[np.ndarray, list[int]]] = {}
+    for i, spec in enumerate(specs):
+        mask = np.ones(len(frame), dtype=bool)
+        for col in _needed(spec, settings):
+            if col not in notna:
+                notna[col] = frame[col].notna().to_numpy()
+            mask &= notna[col]
+        key = hashlib.sha256(np.packbits(mask).tobytes() + str(len(mask)).encode()).digest()
+        groups.setdefault(key, (mask, []))[1].append(i)
+
+    results: list[SpecResult | None] = [None] * len(specs)
+    fit = BlockFit(results=[])
+    for mask_key, (mask, members) in groups.items():
+        sub = frame.loc[mask]
+        keep = np.ones(len(sub), dtype=bool)
+        if settings.absorb and not settings.keep_singletons:
+            keep = drop_singletons(sub, settings.absorb)
+        rows = sub.loc[keep]
+        if len(rows) == 0:
+            for i in members:
+                results[i] = SpecResult(specs[i].spec_id, STATUS_FAILED,
+                                        "no observations are left after dropping rows with missing "
+                                        "values and singletons")
+            continue
+        design = _Design(rows, settings, int((~keep).sum()),
+                         _hash(data_key, mask_key, settings.demean_key()))
+        fit.designs += 1
+        cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls)})
+        done, reused = design.demean(cols, store)
+        fit.columns_demeaned += done
+        fit.columns_reused += reused
+        for i in members:
+            results[i] = _evaluate(design, specs[i])
+    fit.results = [r for r in results if r is not None]
+    return fit
+
+
+def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
+    s = design.settings
+    cols = (spec.outcome, spec.focal, *spec.controls)
+    common = dict(
+        spec_id=spec.spec_id,
+        n_obs=len(design.frame),
+        n_singletons=design.n_singletons,
+        absorbed_df=design.absorber.absorbed_df,
+        absorb_levels=_fmt_counts(design.absorber.levels),
+        iterations=max(design.iterations[c] for c in cols),
+        converged=all(design.converged[c] for c in cols),
+    )
+    common.update(design.focal_diagnostics(spec.focal))
+    X, bread, dropped, problem = design.regressors(spec.focal, spec.controls)
+    common["controls_dropped"] = "; ".join(dropped)
+    if problem:
+        return SpecResult(status=STATUS_NOT_IDENTIFIED, message=problem, **common)  # type: ignore[arg-type]
+    beta, e, X, r2 = design.fit(spec.outcome, spec.focal, spec.controls)
+    codes = [design.cluster_codes(dim) for dim in spec.inference.by]
+    try:
+        cov = covariance_kind(spec.inference.kind)(
+            X, e, bread, n_params=X.shape[1], absorbed_df=design.absorber.absorbed_df,
+            nested_df=design.absorber.nested_df, clusters=codes)
+    except EstimationError as exc:
+        return SpecResult(status=STATUS_FAILED, message=str(exc), estimate=beta, within_r2=r2,
+                          **common)  # type: ignore[arg-type]
+    se = float(np.sqrt(cov.matrix[0, 0]))
+    t = beta / se if se > 0 else float("nan")
+    p = float(2 * stats.t.sf(abs(t), cov.df)) if se > 0 else float("nan")
+    crit = float(stats.t.ppf(0.5 + s.level / 2, cov.df))
+    message = "" if common["converged"] else (
+        f"alternating projections did not reach the tolerance in {s.max_iterations} iterations")
+    if cov.psd_adjusted:
+        message = "; ".join(m for m in (message, "two-way covariance was not positive "
+                                                  "semi-definite: negative eigenvalues set to zero") if m)
+    clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
+    return SpecResult(
+        status=STATUS_OK, message=message, estimate=beta, std_error=se, t_stat=t, p_value=p,
+        ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
+        n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
+        within_r2=r2, psd_adjusted=cov.psd_adjusted, **common)  # type: ignore[arg-type]
+
+
+def fit_one(
+    frame: pd.DataFrame,
+    outcome: str,
+    focal: str,
+    *,
+    controls: Sequence[str] = (),
+    absorb: tuple[Term, ...] = (),
+    inference: Inference | None = None,
+    weights: str | None = None,
+    unit: str | None = None,
+    time: str | None = None,
+    keep_singletons: bool = False,
+    tolerance: float = 1e-10,
+    level: float = 0.95,
+) -> SpecResult:
+    """Fit one specification; a convenience wrapper around :func:`fit_block`.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> from fegrid.absorb import parse_absorb
+    >>> df = pd.DataFrame({"u": [1, 1, 2, 2, 3, 3], "x": [0., 1, 0, 2, 1, 0],
+    ...                    "y": [1., 3, 0, 4, 5, 3]})
+    >>> r = fit_one(df, "y", "x", absorb=parse_absorb(["u"]), inference=Inference("iid"))
+    >>> round(r.estimate, 6), r.status
+    (2.0, 'ok')
+    """
+    settings = BlockSettings(absorb=absorb, weights=weights, unit=unit, time=time,
+                             keep_singletons=keep_singletons, tolerance=tolerance, level=level)
+    spec = SpecRequest("one", outcome, focal, tuple(controls), inference or Inference())
+    return fit_block(frame, settings, [spec]).results[0]

@@ -1,0 +1,484 @@
+"""The specification grid: load and check the YAML config, expand it, cut it into jobs.
+
+The grid is data. :func:`load_config` turns the YAML file into a :class:`Grid` (checked against the
+JSON Schema in ``workflow/schemas/`` and then for meaning: unknown choice names, duplicate names).
+:meth:`Grid.expand` gives one :class:`Spec` per specification, with a stable id: the first 12 hex
+characters of the SHA-256 of its canonical content (what is estimated, never what it is called or
+where it stands in the file), so reordering or renaming choices changes no id.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import jsonschema
+import pandas as pd
+import yaml
+
+from . import __version__
+from .absorb import Term, parse_absorb, term_label
+from .errors import ConfigError, EstimationError
+from .estimate import BlockSettings, Inference, SpecRequest
+from .samples import Panel, SampleDef, parse_sample
+
+__all__ = [
+    "DIMENSIONS",
+    "SCHEMA_PATH",
+    "Grid",
+    "Spec",
+    "Job",
+    "load_config",
+    "read_yaml",
+    "plan_jobs",
+    "spec_table",
+]
+
+#: The grid's dimensions, in the order the ledger shows them.
+DIMENSIONS: tuple[str, ...] = ("outcome", "focal", "absorb", "clustering", "sample", "controls", "weights")
+
+SCHEMA_PATH = Path(__file__).resolve().parents[1] / "schemas" / "config.schema.yaml"
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """A safe YAML loader that refuses a key given twice in one mapping."""
+
+
+def _construct_mapping(loader: _UniqueKeyLoader, node: yaml.MappingNode, deep: bool = False) -> dict:
+    seen: dict[object, int] = {}
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if key in seen:
+            raise ConfigError(
+                f"The name '{key}' is given twice in the same block of the config (lines "
+                f"{seen[key] + 1} and {key_node.start_mark.line + 1}); every choice needs its own name."
+            )
+        seen[key] = key_node.start_mark.line
+    return loader.construct_mapping(node, deep=deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def read_yaml(path: str | Path) -> dict[str, Any]:
+    """Read a YAML config; broken YAML becomes a :class:`ConfigError` naming the line."""
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(f"The config file '{path}' does not exist.")
+    try:
+        raw = yaml.load(path.read_text(), Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        problem = getattr(exc, "problem", None) or str(exc)
+        raise ConfigError(f"The config file '{path}' is not valid YAML{where}: {problem}.") from None
+    if not isinstance(raw, dict):
+        raise ConfigError(f"The config file '{path}' must hold a mapping of keys, not {type(raw).__name__}.")
+    return raw
+
+
+def _schema() -> dict[str, Any]:
+    return yaml.safe_load(SCHEMA_PATH.read_text())
+
+
+def _schema_error(raw: Mapping[str, Any]) -> None:
+    validator = jsonschema.Draft202012Validator(_schema())
+    errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), str(e.absolute_path)))
+    if not errors:
+        return
+    err = jsonschema.exceptions.best_match(errors)
+    where = ".".join(str(p) for p in err.absolute_path) or "(top level)"
+    if err.validator == "additionalProperties":
+        extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
+        allowed = ", ".join(sorted(err.schema.get("properties", {})))
+        raise ConfigError(
+            f"Unknown key(s) {', '.join(repr(e) for e in extra)} under '{where}' in the config; the "
+            f"keys allowed there are: {allowed}."
+        )
+    raise ConfigError(f"The config key '{where}' is invalid: {err.message}.")
+
+
+@dataclass(frozen=True)
+class Spec:
+    """One specification of the grid."""
+
+    spec_id: str
+    names: tuple[tuple[str, str], ...]
+    outcome: str
+    focal: str
+    absorb: tuple[Term, ...]
+    inference: Inference
+    sample: SampleDef
+    controls: tuple[str, ...]
+    weights: str | None
+    canonical: str
+
+    def name(self, dimension: str) -> str:
+        return dict(self.names)[dimension]
+
+    @property
+    def block_key(self) -> str:
+        """Specifications with equal block keys share a sample, absorbed effects and weights."""
+        body = json.loads(self.canonical)
+        return json.dumps([body["sample"], body["absorb"], body["weights"]], sort_keys=True)
+
+    def request(self) -> SpecRequest:
+        return SpecRequest(self.spec_id, self.outcome, self.focal, self.controls, self.inference)
+
+
+@dataclass(frozen=True)
+class Job:
+    """A Snakemake job: specifications of one sample and weights, sharing data loading."""
+
+    key: str
+    specs: tuple[Spec, ...]
+
+
+@dataclass(frozen=True)
+class Grid:
+    """A checked grid declaration."""
+
+    run_name: str
+    data_path: str
+    panel: Panel
+    outcomes: tuple[str, ...]
+    focals: tuple[str, ...]
+    absorb: dict[str, tuple[Term, ...]]
+    clustering: dict[str, Inference]
+    samples: dict[str, Mapping[str, Any]]
+    controls: dict[str, tuple[str, ...]]
+    weights: dict[str, str | None]
+    exclude: tuple[dict[str, Any], ...]
+    baseline: dict[str, str]
+    level: float
+    tolerance: float
+    max_iterations: int
+    keep_singletons: bool
+    specs_per_job: int
+    raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
+
+    # ---- columns ----------------------------------------------------------------------------
+    def roles(self) -> dict[str, list[str]]:
+        """Every column the grid uses, by role (for checking the data)."""
+        absorb_cols: list[str] = []
+        for terms in self.absorb.values():
+            for t in terms:
+                absorb_cols.extend(t.needed_columns(self.panel.time))
+        sample_cols: list[str] = []
+        for raw in self.samples.values():
+            sample_cols.extend(parse_sample("", raw).columns())
+            if raw.get("drop_each"):
+                sample_cols.append(raw["drop_each"])
+        return {
+            "unit": [self.panel.unit],
+            "time": [self.panel.time] if self.panel.time else [],
+            "outcome": list(self.outcomes),
+            "focal regressor": list(self.focals),
+            "control": sorted({c for cs in self.controls.values() for c in cs}),
+            "absorbed effect": sorted(set(absorb_cols)),
+            "cluster": sorted({c for inf in self.clustering.values() for c in inf.columns()}),
+            "sample filter": sorted(set(sample_cols)),
+            "weights": sorted({w for w in self.weights.values() if w}),
+        }
+
+    def columns(self) -> list[str]:
+        return sorted({c for cols in self.roles().values() for c in cols})
+
+    def level_columns(self) -> list[str]:
+        """Columns whose levels the expansion needs (``drop_each`` generators)."""
+        return sorted({raw["drop_each"] for raw in self.samples.values() if raw.get("drop_each")})
+
+    # ---- expansion --------------------------------------------------------------------------
+    def sample_defs(self, levels: Mapping[str, Sequence[Any]]) -> dict[str, tuple[str, SampleDef]]:
+        """Expanded samples: expanded name -> (declared name, definition)."""
+        out: dict[str, tuple[str, SampleDef]] = {}
+        for name, raw in self.samples.items():
+            col = raw.get("drop_each")
+            if not col:
+                out[name] = (name, parse_sample(name, raw))
+                continue
+            for level in levels[col]:
+                level = level.item() if hasattr(level, "item") else level
+                sub = f"{name}:{level}"
+                body = dict(raw)
+                body.pop("drop_each")
+                drops = {k: list(v) for k, v in body.get("drop", {}).items()}
+                drops.setdefault(col, [])
+                if level not in drops[col]:
+                    drops[col].append(level)
+                body["drop"] = drops
+                if sub in out:
+                    raise ConfigError(f"The sample name '{sub}' is produced twice; rename one.")
+                out[sub] = (name, parse_sample(sub, body))
+        return out
+
+    def expand(self, levels: Mapping[str, Sequence[Any]] | None = None) -> list[Spec]:
+        """All specifications of the grid, less the excluded ones, sorted by id."""
+        levels = levels or {}
+        samples = self.sample_defs(levels)
+        panel = {"unit": self.panel.unit, "time": self.panel.time}
+        specs: dict[str, Spec] = {}
+        dims = (self.outcomes, self.focals, self.absorb, self.clustering, samples, self.controls,
+                self.weights)
+        for combo in itertools.product(*dims):
+            outcome, focal, absorb, clus, sample, controls, weights = combo
+            names = dict(zip(DIMENSIONS, combo))
+            declared = dict(names, sample=samples[sample][0])
+            if any(_matches(rule, names, declared) for rule in self.exclude):
+                continue
+            if focal == outcome:
+                continue
+            ctrl = tuple(sorted(c for c in self.controls[controls] if c not in (focal, outcome)))
+            inference = self.clustering[clus]
+            body = {
+                "outcome": outcome,
+                "focal": focal,
+                "absorb": sorted((t.canonical() for t in self.absorb[absorb]), key=json.dumps),
+                "inference": {"kind": inference.kind, "by": sorted(list(d) for d in inference.by)},
+                "sample": samples[sample][1].canonical(),
+                "controls": list(ctrl),
+                "weights": self.weights[weights],
+                "panel": panel,
+            }
+            canonical = json.dumps(body, sort_keys=True)
+            spec_id = hashlib.sha256(canonical.encode()).hexdigest()[:12]
+            if spec_id in specs:
+                other = specs[spec_id]
+                raise ConfigError(
+                    "Two specifications of the grid are the same regression under different names: "
+                    f"{_describe(other.names)} and {_describe(tuple(names.items()))}. Remove one of "
+                    "the duplicate choices or exclude the pair."
+                )
+            specs[spec_id] = Spec(
+                spec_id=spec_id,
+                names=tuple(names.items()),
+                outcome=outcome,
+                focal=focal,
+                absorb=tuple(sorted(self.absorb[absorb], key=lambda t: json.dumps(t.canonical()))),
+                inference=inference,
+                sample=samples[sample][1],
+                controls=ctrl,
+                weights=self.weights[weights],
+                canonical=canonical,
+            )
+        if not specs:
+            raise ConfigError("The exclusion rules remove every specification of the grid.")
+        return [specs[k] for k in sorted(specs)]
+
+    def baseline_id(self, specs: Sequence[Spec]) -> str:
+        """The id of the baseline specification (the first one when no baseline is declared)."""
+        if not self.baseline:
+            return specs[0].spec_id
+        wanted = dict(self.baseline)
+        matches = [s for s in specs if all(s.name(d) == v for d, v in wanted.items())]
+        if len(matches) != 1:
+            free = [d for d in DIMENSIONS if d not in wanted and len({s.name(d) for s in matches}) > 1]
+            reason = (
+                "no specification of the grid (after exclusions) matches it"
+                if not matches
+                else f"{len(matches)} specifications match it; name a choice for: {', '.join(free)}"
+            )
+            raise ConfigError(f"The baseline {json.dumps(wanted)} is ambiguous or missing: {reason}.")
+        return matches[0].spec_id
+
+    def block_settings(self, spec: Spec) -> BlockSettings:
+        return BlockSettings(
+            absorb=spec.absorb,
+            weights=spec.weights,
+            unit=self.panel.unit,
+            time=self.panel.time,
+            keep_singletons=self.keep_singletons,
+            tolerance=self.tolerance,
+            max_iterations=self.max_iterations,
+            level=self.level,
+        )
+
+    def settings_key(self) -> str:
+        """What, besides a job's specifications and the data, changes its results."""
+        return json.dumps(
+            {
+                "fegrid": __version__,
+                "level": self.level,
+                "tolerance": self.tolerance,
+                "max_iterations": self.max_iterations,
+                "keep_singletons": self.keep_singletons,
+            },
+            sort_keys=True,
+        )
+
+
+def _describe(names: Sequence[tuple[str, str]]) -> str:
+    return "(" + ", ".join(f"{d}={n}" for d, n in names) + ")"
+
+
+def _matches(rule: Mapping[str, Any], names: Mapping[str, str], declared: Mapping[str, str]) -> bool:
+    for dim, sel in rule.items():
+        value, parent = names[dim], declared[dim]
+        if isinstance(sel, str):
+            ok = sel in (value, parent)
+        elif isinstance(sel, list):
+            ok = value in sel or parent in sel
+        else:
+            ok = value not in sel["not"] and parent not in sel["not"]
+        if not ok:
+            return False
+    return True
+
+
+def _choices(raw: Mapping[str, Any], key: str, default: Any) -> Any:
+    value = raw.get(key)
+    if value is None:
+        return default
+    if isinstance(value, Mapping) and not value:
+        raise ConfigError(f"The config key '{key}' declares no choices; give at least one or remove it.")
+    return value
+
+
+def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
+    """Check a config (a path or an already-read mapping) and return its :class:`Grid`."""
+    raw = read_yaml(source) if isinstance(source, (str, Path)) else dict(source)
+    _schema_error(raw)
+    data = raw["data"]
+    panel = Panel(unit=data["unit"], time=data.get("time"))
+    absorb_raw = _choices(raw, "absorb", {panel.unit: [panel.unit]})
+    absorb = {name: parse_absorb(terms, where=f"absorb.{name}") for name, terms in absorb_raw.items()}
+    clustering: dict[str, Inference] = {}
+    for name, body in _choices(raw, "clustering", {"robust": {"kind": "robust"}}).items():
+        by = body.get("by", [])
+        by = [by] if isinstance(by, str) else list(by)
+        dims = tuple(tuple(term_label(t).split(" x ")) for t in parse_absorb(by, where=f"clustering.{name}.by"))
+        try:
+            clustering[name] = Inference(body["kind"], dims)
+        except EstimationError as exc:
+            raise ConfigError(f"clustering.{name}: {exc}") from None
+    samples = dict(_choices(raw, "samples", {"all": {}}))
+    for name, body in samples.items():
+        if body.get("drop_each") and ":" in name:
+            raise ConfigError(f"samples.{name}: a sample with drop_each cannot have ':' in its name.")
+    cs_raw = raw.get("control_sets") or {"named": {"none": []}}
+    controls: dict[str, tuple[str, ...]] = {n: tuple(c) for n, c in (cs_raw.get("named") or {}).items()}
+    combos = cs_raw.get("combinations_of") or []
+    if len(set(combos)) != len(combos):
+        raise ConfigError("control_sets.combinations_of lists a column twice.")
+    for r in range(len(combos) + 1):
+        for subset in itertools.combinations(combos, r):
+            name = "+".join(subset) if subset else "none"
+            if name in controls and tuple(sorted(controls[name])) != tuple(sorted(subset)):
+                raise ConfigError(
+                    f"control_sets: the generated control set '{name}' has the same name as a named "
+                    "set with other columns; rename the named set."
+                )
+            controls[name] = tuple(subset)
+    if not controls:
+        raise ConfigError("control_sets declares no control set; use named: {none: []} for none.")
+    weights = dict(_choices(raw, "weights", {"unweighted": None}))
+    grid_names = {
+        "outcome": list(raw["outcomes"]),
+        "focal": list(raw["focal_regressors"]),
+        "absorb": list(absorb),
+        "clustering": list(clustering),
+        "sample": list(samples),
+        "controls": list(controls),
+        "weights": list(weights),
+    }
+    for dim in ("outcome", "focal"):
+        if len(set(grid_names[dim])) != len(grid_names[dim]):
+            raise ConfigError(f"The list of {dim}s names a column twice.")
+    exclude = tuple(raw.get("exclude") or ())
+    for i, rule in enumerate(exclude):
+        for dim, sel in rule.items():
+            named = [sel] if isinstance(sel, str) else (sel if isinstance(sel, list) else sel["not"])
+            unknown = [n for n in named if n not in grid_names[dim]]
+            if unknown:
+                raise ConfigError(
+                    f"exclude[{i}] names {dim} choice(s) {unknown} that the grid does not declare; "
+                    f"the {dim} choices are: {', '.join(map(str, grid_names[dim]))}."
+                )
+    baseline = dict(raw.get("baseline") or {})
+    for dim, name in baseline.items():
+        if name not in grid_names[dim] and not (dim == "sample" and ":" in name and name.split(":")[0] in samples):
+            raise ConfigError(
+                f"baseline.{dim} is '{name}', which the grid does not declare; the {dim} choices "
+                f"are: {', '.join(map(str, grid_names[dim]))}."
+            )
+    est = raw.get("estimation") or {}
+    return Grid(
+        run_name=raw["run_name"],
+        data_path=data["path"],
+        panel=panel,
+        outcomes=tuple(raw["outcomes"]),
+        focals=tuple(raw["focal_regressors"]),
+        absorb=absorb,
+        clustering=clustering,
+        samples=samples,
+        controls=controls,
+        weights=weights,
+        exclude=exclude,
+        baseline=baseline,
+        level=float(raw.get("confidence_level", 0.95)),
+        tolerance=float(est.get("tolerance", 1e-10)),
+        max_iterations=int(est.get("max_iterations", 10_000)),
+        keep_singletons=bool(est.get("keep_singletons", False)),
+        specs_per_job=int((raw.get("jobs") or {}).get("specs_per_job", 2000)),
+        raw=raw,
+    )
+
+
+def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[Job]:
+    """Cut the grid into jobs.
+
+    Blocks (same sample, absorbed effects, weights) of one sample and weights share a job while
+    they hold at most ``specs_per_job`` specifications together; otherwise each block is a job,
+    and a block larger than that is split between control sets. A job's key hashes ``salt`` (data
+    and settings) with its specifications' canonical content, so an unchanged job keeps its key.
+    """
+    by_sample: dict[str, list[Spec]] = {}
+    for s in specs:
+        body = json.loads(s.canonical)
+        by_sample.setdefault(json.dumps([body["sample"], body["weights"]], sort_keys=True), []).append(s)
+    groups: list[list[Spec]] = []
+    for key in sorted(by_sample):
+        members = by_sample[key]
+        if len(members) <= specs_per_job:
+            groups.append(members)
+            continue
+        blocks: dict[str, list[Spec]] = {}
+        for s in members:
+            blocks.setdefault(s.block_key, []).append(s)
+        for bkey in sorted(blocks):
+            block = blocks[bkey]
+            if len(block) <= specs_per_job:
+                groups.append(block)
+                continue
+            by_controls: dict[tuple[str, ...], list[Spec]] = {}
+            for s in block:
+                by_controls.setdefault(s.controls, []).append(s)
+            current: list[Spec] = []
+            for ckey in sorted(by_controls):
+                part = by_controls[ckey]
+                if current and len(current) + len(part) > specs_per_job:
+                    groups.append(current)
+                    current = []
+                current = current + part
+            if current:
+                groups.append(current)
+    jobs = []
+    for members in groups:
+        members = sorted(members, key=lambda s: s.spec_id)
+        h = hashlib.sha256(salt.encode())
+        for s in members:
+            h.update(s.canonical.encode())
+        jobs.append(Job(h.hexdigest()[:16], tuple(members)))
+    return sorted(jobs, key=lambda j: j.key)
+
+
+def spec_table(grid: Grid, specs: Sequence[Spec]) -> pd.DataFrame:
+    """One row per specification: id, the choice name per dimension, and the baseline flag."""
+    base = grid.baseline_id(specs)
+    rows = [{"spec_id": s.spec_id, **dict(s.names), "is_baseline": s.spec_id == base} for s in specs]
+    return pd.DataFrame(rows, columns=["spec_id", *DIMENSIONS, "is_baseline"])

@@ -1,0 +1,230 @@
+"""The steps the Snakemake rules and the command line call: plan, snapshot, fit a job, gather.
+
+Content addressing makes reruns cheap and safe. The data snapshot is named by the hash of the data
+file's bytes and the columns used; a job's results file by the hash of that snapshot, the engine's
+settings and its specifications' canonical content. A file that exists under its name is therefore
+up to date whatever its time stamp, and a changed job gets a new name. Demeaned columns live in a
+store keyed the same way, so a job whose specifications changed (say, a clustering was added)
+refits without demeaning anything again.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import time
+from collections.abc import Callable
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from . import __version__
+from .data import check_data, file_sha256, levels_for, read_table
+from .errors import DataError, FegridError
+from .estimate import RESULT_COLUMNS, fit_block
+from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
+from .samples import apply_sample
+from .demo import write_demo_data
+from .store import FileDemeanStore, RunPaths, write_csv, write_json, write_parquet
+
+__all__ = [
+    "LEDGER_COLUMNS",
+    "Plan",
+    "make_plan",
+    "load_checked",
+    "snapshot_data",
+    "fit_job",
+    "gather_ledger",
+    "plan_status",
+    "run_logged",
+]
+
+_FRONT = ["spec_id", *DIMENSIONS, "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
+          "df_inference", "n_obs", "n_clusters", "n_singletons", "within_r2", "status", "message",
+          "is_baseline"]
+#: Ledger columns, in order: identity and choices, the estimate, then the engine's diagnostics.
+LEDGER_COLUMNS: tuple[str, ...] = tuple(_FRONT + [c for c in RESULT_COLUMNS if c not in _FRONT])
+
+
+@dataclass(frozen=True)
+class Plan:
+    """A grid resolved against its data file: specifications, jobs and file names."""
+
+    grid: Grid
+    data_sha256: str
+    snapshot_key: str
+    specs: tuple[Spec, ...]
+    jobs: tuple[Job, ...]
+    paths: RunPaths
+
+    @property
+    def snapshot_path(self) -> Path:
+        return self.paths.snapshot(self.snapshot_key)
+
+    def fit_paths(self) -> list[Path]:
+        return [self.paths.fit(j.key) for j in self.jobs]
+
+
+def _salt(snapshot_key: str, grid: Grid) -> str:
+    return hashlib.sha256((snapshot_key + grid.settings_key()).encode()).hexdigest()
+
+
+def _snapshot_key(data_sha: str, grid: Grid) -> str:
+    body = json.dumps({"data": data_sha, "columns": grid.columns(), "fegrid": __version__})
+    return hashlib.sha256(body.encode()).hexdigest()[:16]
+
+
+def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports",
+              prepare: bool = False) -> Plan:
+    """Read the config, hash the data file and expand the grid into jobs (no fitting).
+
+    With ``prepare``, a config whose ``data.demo`` is true gets the invented demo data written to
+    ``data.path`` when that file is missing.
+    """
+    grid = load_config(config)
+    path = Path(grid.data_path)
+    if prepare and grid.raw["data"].get("demo") and not path.exists():
+        write_demo_data(path)
+    if not path.is_file():
+        raise DataError(f"The data file '{path}' (data.path in the config) does not exist.")
+    data_sha = file_sha256(path)
+    levels: dict[str, list] = {}
+    if grid.level_columns():
+        levels = levels_for(read_table(path, grid.level_columns()), grid)
+    specs = grid.expand(levels)
+    grid.baseline_id(specs)
+    key = _snapshot_key(data_sha, grid)
+    jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
+    return Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
+
+
+def load_checked(grid: Grid) -> pd.DataFrame:
+    """Read the grid's columns from the data file and check them (see :func:`check_data`)."""
+    frame = read_table(grid.data_path, grid.columns())
+    check_data(frame, grid, path=f"the data file '{grid.data_path}'")
+    return frame
+
+
+def snapshot_data(grid: Grid, out: str | Path) -> None:
+    """Check the data and write the grid's columns as a Parquet snapshot."""
+    write_parquet(out, load_checked(grid).reset_index(drop=True))
+
+
+def _jobs_from_snapshot(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> list[Job]:
+    specs = grid.expand(levels_for(frame, grid))
+    return plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(snapshot.stem, grid))
+
+
+def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
+            store_dir: str | Path | None = None) -> dict[str, Any]:
+    """Fit the specifications of one job and write their results (Parquet, one row per spec)."""
+    started = time.perf_counter()
+    snapshot = Path(snapshot)
+    frame = pd.read_parquet(snapshot)
+    jobs = {j.key: j for j in _jobs_from_snapshot(grid, snapshot, frame)}
+    if job_key not in jobs:
+        raise FegridError(
+            f"Job {job_key} is not part of the grid any more (the config or data changed during the "
+            "run). Run again."
+        )
+    store = FileDemeanStore(store_dir) if store_dir is not None else None
+    data_key = snapshot.stem
+    by_block: dict[str, list[Spec]] = {}
+    for spec in jobs[job_key].specs:
+        by_block.setdefault(spec.block_key, []).append(spec)
+    samples: dict[str, pd.DataFrame] = {}
+    rows: list[dict[str, Any]] = []
+    counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0}
+    for bkey in sorted(by_block):
+        specs = by_block[bkey]
+        sample_key = json.dumps(specs[0].sample.canonical(), sort_keys=True)
+        if sample_key not in samples:
+            samples[sample_key] = apply_sample(frame, specs[0].sample, grid.panel)
+        block = fit_block(samples[sample_key], grid.block_settings(specs[0]),
+                          [s.request() for s in specs], store=store,
+                          data_key=data_key + sample_key)
+        counts["designs"] += block.designs
+        counts["columns_demeaned"] += block.columns_demeaned
+        counts["columns_reused"] += block.columns_reused
+        rows.extend(r.record() for r in block.results)
+    results = pd.DataFrame(rows, columns=list(RESULT_COLUMNS)).sort_values("spec_id", ignore_index=True)
+    log = {"job": job_key, "specs": len(results), **counts,
+           "seconds": round(time.perf_counter() - started, 3)}
+    out = Path(out)
+    write_json(out.with_suffix(".json"), log)
+    write_parquet(out, results)
+    return log
+
+
+def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Path],
+                  paths: RunPaths) -> pd.DataFrame:
+    """Join the jobs' results with the grid's names into the ledger (CSV and Parquet).
+
+    The ledger is sorted by spec id and holds no timings, so the same inputs give the same bytes;
+    the jobs' timings and work counts go to ``timings.csv``.
+    """
+    frame = pd.read_parquet(snapshot)
+    specs = grid.expand(levels_for(frame, grid))
+    table = spec_table(grid, specs)
+    fit_files = [Path(f) for f in fit_files]
+    results = pd.concat([pd.read_parquet(f) for f in fit_files], ignore_index=True)
+    ledger = table.merge(results, on="spec_id", how="left", validate="one_to_one")
+    missing = ledger["status"].isna()
+    if missing.any():
+        raise FegridError(f"{int(missing.sum())} specifications have no results; run the fit step again.")
+    ledger = ledger[list(LEDGER_COLUMNS)].sort_values("spec_id", ignore_index=True)
+    logs = [json.loads(f.with_suffix(".json").read_text()) for f in fit_files if f.with_suffix(".json").is_file()]
+    write_csv(paths.timings, pd.DataFrame(logs).sort_values("job") if logs else pd.DataFrame())
+    write_parquet(paths.ledger_parquet, ledger)
+    write_csv(paths.ledger_csv, ledger)
+    return ledger
+
+
+def plan_status(plan: Plan) -> dict[str, Any]:
+    """Size per dimension, jobs, and how many specifications are already fitted."""
+    sizes = {d: len({s.name(d) for s in plan.specs}) for d in DIMENSIONS}
+    done_jobs = [j for j in plan.jobs if plan.paths.fit(j.key).is_file()]
+    fitted = sum(len(j.specs) for j in done_jobs)
+    return {
+        "run_name": plan.grid.run_name,
+        "specifications": len(plan.specs),
+        "sizes": sizes,
+        "jobs": len(plan.jobs),
+        "jobs_done": len(done_jobs),
+        "specs_fitted": fitted,
+        "specs_to_fit": len(plan.specs) - fitted,
+        "data_sha256": plan.data_sha256,
+    }
+
+
+def describe_sizes(specs: Sequence[Spec]) -> list[tuple[str, int, str]]:
+    """Per dimension: number of choices and their names (for the terminal)."""
+    out = []
+    for d in DIMENSIONS:
+        names = sorted({s.name(d) for s in specs})
+        shown = ", ".join(names[:6]) + (f", ... ({len(names) - 6} more)" if len(names) > 6 else "")
+        out.append((d, len(names), shown))
+    return out
+
+
+def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
+    """Run one pipeline step for a Snakemake rule, with its output and errors in the rule's log.
+
+    A :class:`FegridError` (the user's mistake) is written as its one-paragraph message and ends
+    the process with exit code 1; anything else keeps its traceback, since it is a bug.
+    """
+    log = Path(log)
+    log.parent.mkdir(parents=True, exist_ok=True)
+    with open(log, "w") as fh, contextlib.redirect_stderr(fh), contextlib.redirect_stdout(fh):
+        try:
+            result = step(*args)
+        except FegridError as exc:
+            print(f"fegrid: {exc}", file=fh)
+            raise SystemExit(1) from None
+        if isinstance(result, dict):
+            print(json.dumps(result, sort_keys=True), file=fh)
+    return result

@@ -1,0 +1,26 @@
+# Fitting: one snapshot of the data, then one job per block group (named by content hash).
+
+
+rule snapshot_data:
+    output:
+        snapshot=str(PLAN.snapshot_path),
+    log:
+        f"{RUN}/logs/snapshot_data.log",
+    script:
+        "../scripts/snapshot_data.py"
+
+
+rule fit_job:
+    input:
+        snapshot=str(PLAN.snapshot_path),
+    output:
+        results=f"{RUN}/cache/fits/{{job}}.parquet",
+        work=f"{RUN}/cache/fits/{{job}}.json",
+    params:
+        store=str(PLAN.paths.demeaned),
+    log:
+        f"{RUN}/logs/fit_job/{{job}}.log",
+    wildcard_constraints:
+        job="[0-9a-f]{16}",
+    script:
+        "../scripts/fit_job.py"

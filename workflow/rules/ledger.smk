@@ -1,0 +1,17 @@
+# Gathering: every job's results joined with the grid's names, sorted by spec id.
+
+
+rule gather_ledger:
+    input:
+        snapshot=str(PLAN.snapshot_path),
+        fits=[str(p) for p in PLAN.fit_paths()],
+    output:
+        csv=str(PLAN.paths.ledger_csv),
+        parquet=str(PLAN.paths.ledger_parquet),
+        timings=str(PLAN.paths.timings),
+    params:
+        grid_digest=GRID_DIGEST,
+    log:
+        f"{RUN}/logs/gather_ledger.log",
+    script:
+        "../scripts/gather_ledger.py"

@@ -231,6 +231,14 @@ def _components(a: np.ndarray, la: int, b: np.ndarray, lb: int) -> int:
     return int(connected_components(graph, directed=False)[0])
 
 
+def _constant_within(values: np.ndarray | None, codes: np.ndarray) -> bool:
+    """True when ``values`` take a single value within every level of ``codes``."""
+    if values is None or len(values) == 0:
+        return False
+    pairs = pd.DataFrame({"c": codes, "v": values}).drop_duplicates()
+    return bool(pairs["c"].is_unique)
+
+
 def _nested(inner: np.ndarray, outer: np.ndarray) -> bool:
     """True when every level of ``inner`` falls within a single level of ``outer``."""
     if len(inner) == 0:
@@ -240,7 +248,8 @@ def _nested(inner: np.ndarray, outer: np.ndarray) -> bool:
 
 
 def _outranks(other: Term, other_levels: int, other_pos: int, levels: int, pos: int) -> bool:
-    """Whether ``other`` keeps its place when a term with ``levels`` levels is nested in it."""
+    """Whether ``other`` stays when it refines a term with ``levels`` levels (identical partitions:
+    the earlier term stays; a trend term always stays)."""
     if isinstance(other, TrendTerm):
         return True
     return other_levels > levels or (other_levels == levels and other_pos < pos)
@@ -266,8 +275,8 @@ class Absorber:
     Notes
     -----
     The degrees of freedom taken by the absorbed terms (:attr:`absorbed_df`) are the rank of their
-    dummy (and slope) columns. Terms nested in another term are redundant and skipped. For the
-    remaining categorical terms, the first two count ``L1 + L2 - C`` where ``C`` is the number of
+    dummy (and slope) columns. A term that a finer term refines is redundant and skipped. For the
+    remaining categorical terms, the two with the most levels count ``L1 + L2 - C`` where ``C`` is the number of
     connected components of their bipartite graph (Abowd, Kramarz & Margolis 1999), which is exact;
     each further term counts ``L_j - 1``, an upper bound (conservative standard errors). A trend term
     counts one slope per group in which time varies, plus its group intercepts as a categorical term.
@@ -293,6 +302,7 @@ class Absorber:
         self._codes: list[np.ndarray] = []
         self._nlev: list[int] = []
         slopes: list[np.ndarray | None] = []
+        self._time = frame[time].to_numpy(dtype=float) if time and time in frame else None
         for term in self.terms:
             codes = _term_codes(frame, term)
             nlev = int(codes.max()) + 1 if n else 0
@@ -302,12 +312,13 @@ class Absorber:
             slopes.append(
                 frame[time].to_numpy(dtype=float) if isinstance(term, TrendTerm) and time else None
             )
-        # skip terms nested in another effect term: their columns are already in its span
+        # skip a term that a finer term refines (each of the finer term's groups lies inside one of
+        # its groups): its dummies are sums of the finer term's dummies
         active = []
         for i, term in enumerate(self.terms):
             redundant = isinstance(term, EffectTerm) and any(
                 j != i and _outranks(self.terms[j], self._nlev[j], j, self._nlev[i], i)
-                and _nested(self._codes[i], self._codes[j])
+                and _nested(self._codes[j], self._codes[i])
                 for j in range(len(self.terms))
             )
             if not redundant:
@@ -336,6 +347,14 @@ class Absorber:
         if len(cats) >= 2:
             a, b = cats[0], cats[1]
             df -= _components(self._codes[a], self._nlev[a], self._codes[b], self._nlev[b])
+        for i in self._active:
+            proj = self._projections[self._active.index(i)]
+            if proj.slope is None:
+                continue
+            # the slopes sum to the time variable itself, which an effect constant in time spans
+            if any(j != i and isinstance(self.terms[j], EffectTerm)
+                   and _constant_within(self._time, self._codes[j]) for j in self._active):
+                df -= 1
         return df
 
     def nested_df(self, cluster_codes: Sequence[np.ndarray]) -> int:

@@ -1,0 +1,247 @@
+"""The estimation engine: textbook examples, dummy-variable regressions, ranks, block evaluation."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from fegrid.absorb import Absorber, EffectTerm, TrendTerm, drop_singletons, parse_absorb
+from fegrid.errors import ConfigError, EstimationError
+from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block, fit_one
+from fegrid.store import FileDemeanStore
+
+IID = Inference("iid")
+
+
+# ---- textbook worked examples (published values recalled from memory) ---------------------------
+
+def test_wooldridge_example_14_4_wage_panel(wage_panel: pd.DataFrame) -> None:
+    """Wooldridge, Introductory Econometrics, Example 14.4 / Table 14.2, fixed-effects column
+    (from memory): married .047 (.018), union .080 (.019), exper^2 -.0052 (.0007), year dummies."""
+    ab = parse_absorb(["nr", "year"])
+    union = fit_one(wage_panel, "lwage", "union", controls=["married", "expersq"], absorb=ab, inference=IID)
+    married = fit_one(wage_panel, "lwage", "married", controls=["union", "expersq"], absorb=ab, inference=IID)
+    expersq = fit_one(wage_panel, "lwage", "expersq", controls=["union", "married"], absorb=ab, inference=IID)
+    assert (round(union.estimate, 3), round(union.std_error, 3)) == (0.080, 0.019)
+    assert (round(married.estimate, 3), round(married.std_error, 3)) == (0.047, 0.018)
+    assert (round(expersq.estimate, 4), round(expersq.std_error, 4)) == (-0.0052, 0.0007)
+    assert union.n_obs == 4360
+
+
+def test_wooldridge_example_14_1_job_training(jobtraining: pd.DataFrame) -> None:
+    """Wooldridge, Introductory Econometrics, Example 14.1 (from memory): fixed effects on log scrap,
+    1987-89, n = 162: grant -.252 (.151), grant_1 -.422 (.210); year effects replace d88, d89."""
+    ab = parse_absorb(["fcode", "year"])
+    grant = fit_one(jobtraining, "lscrap", "grant", controls=["grant_1"], absorb=ab, inference=IID)
+    lag = fit_one(jobtraining, "lscrap", "grant_1", controls=["grant"], absorb=ab, inference=IID)
+    assert grant.n_obs == 162  # rows with a missing log scrap rate are dropped for this spec only
+    assert (round(grant.estimate, 3), round(grant.std_error, 3)) == (-0.252, 0.151)
+    assert (round(lag.estimate, 3), round(lag.std_error, 3)) == (-0.422, 0.210)
+
+
+def test_grunfeld_ten_firm_within_estimates(grunfeld: pd.DataFrame) -> None:
+    """Baltagi, Econometric Analysis of Panel Data, Table 2.1, within estimator on the classic
+    ten-firm Grunfeld data (from memory): value 0.1101 (0.0119), capital 0.3101 (0.0174).
+    statsmodels' copy adds American Steel, which is left out here."""
+    ten = grunfeld[grunfeld["firm"] != "American Steel"]
+    ab = parse_absorb(["firm"])
+    value = fit_one(ten, "invest", "value", controls=["capital"], absorb=ab, inference=IID)
+    capital = fit_one(ten, "invest", "capital", controls=["value"], absorb=ab, inference=IID)
+    assert value.n_obs == 200
+    assert (round(value.estimate, 4), round(value.std_error, 4)) == (0.1101, 0.0119)
+    assert (round(capital.estimate, 4), round(capital.std_error, 4)) == (0.3101, 0.0174)
+
+
+# ---- a second algorithm: least squares with explicit dummy variables (statsmodels) ---------------
+
+def _lsdv(frame: pd.DataFrame, formula: str, weights: str | None = None):
+    smf = pytest.importorskip("statsmodels.formula.api")
+    if weights:
+        return smf.wls(formula, data=frame, weights=frame[weights]).fit()
+    return smf.ols(formula, data=frame).fit()
+
+
+def test_three_effects_weighted_equal_dummy_regression(wage_panel: pd.DataFrame) -> None:
+    """Source: statsmodels WLS with explicit dummies for worker, year and occupation, weighted by
+    hours, on linearmodels' wage_panel: same coefficient to 1e-8 (relative)."""
+    lsdv = _lsdv(wage_panel, "lwage ~ union + married + expersq + C(nr) + C(year) + C(occupation)",
+                 weights="hours")
+    res = fit_one(wage_panel, "lwage", "union", controls=["married", "expersq"],
+                  absorb=parse_absorb(["nr", "year", "occupation"]), weights="hours", inference=IID)
+    assert res.converged
+    assert res.estimate == pytest.approx(lsdv.params["union"], rel=1e-8)
+    # the absorbed df is the rank of the dummies: their count less the redundant ones
+    assert res.absorbed_df == int(lsdv.df_model) + 1 - 3
+
+
+def test_unit_trends_equal_dummy_regression(wage_panel: pd.DataFrame) -> None:
+    """Source: statsmodels OLS with a dummy and a linear trend per worker plus year dummies, on
+    linearmodels' wage_panel: same coefficient, SE and absorbed df. The dummy matrix is built full
+    rank (one year dummy and one worker slope left out: the slopes sum to t, which the year dummies
+    span), since a rank-deficient one makes the pseudo-inverse inaccurate at this size."""
+    sm = pytest.importorskip("statsmodels.api")
+    df = wage_panel.assign(t=wage_panel["year"] - 1980)
+    unit = pd.get_dummies(df["nr"]).to_numpy(dtype=float)
+    slopes = unit * df["t"].to_numpy()[:, None]
+    years = pd.get_dummies(df["year"]).to_numpy(dtype=float)
+    design = np.hstack([df[["union", "married"]].to_numpy(float), unit, slopes[:, :-1], years[:, 1:]])
+    lsdv = sm.OLS(df["lwage"].to_numpy(), design).fit()
+    res = fit_one(df, "lwage", "union", controls=["married"],
+                  absorb=(TrendTerm("nr"), EffectTerm(("year",))), time="t", inference=IID)
+    assert res.estimate == pytest.approx(lsdv.params[0], rel=1e-8)
+    assert res.absorbed_df == design.shape[1] - 2
+    assert res.df_inference == pytest.approx(lsdv.df_resid)
+    assert res.std_error == pytest.approx(lsdv.bse[0], rel=1e-6)
+
+
+def test_unbalanced_two_way_equals_dummy_regression(jobtraining: pd.DataFrame) -> None:
+    """Source: statsmodels OLS with firm and year dummies on linearmodels' jobtraining (unbalanced
+    once rows with missing scrap rates are dropped), and its classical SE."""
+    df = jobtraining.dropna(subset=["lscrap"])
+    df = df[df.groupby("fcode")["year"].transform("size") > 1]
+    df = df.iloc[5:]  # make it unbalanced
+    lsdv = _lsdv(df, "lscrap ~ grant + grant_1 + C(fcode) + C(year)")
+    res = fit_one(df, "lscrap", "grant", controls=["grant_1"], absorb=parse_absorb(["fcode", "year"]),
+                  inference=IID)
+    assert res.estimate == pytest.approx(lsdv.params["grant"], rel=1e-8)
+    assert res.std_error == pytest.approx(lsdv.bse["grant"], rel=1e-6)
+
+
+def test_absorbed_df_equals_rank_of_dummies(wage_panel: pd.DataFrame) -> None:
+    """Source: numpy's matrix_rank of the explicit dummy matrix (worker, year x occupation, year),
+    where year is nested in year x occupation and so redundant."""
+    df = wage_panel[wage_panel["nr"] < 2000]
+    terms = parse_absorb(["nr", "year x occupation", "year"])
+    absorber = Absorber(df, terms)
+    dummies = pd.get_dummies(df[["nr"]].astype(str)).join(
+        pd.get_dummies(df["year"].astype(str) + "_" + df["occupation"].astype(str), prefix="yo")
+    ).join(pd.get_dummies(df["year"].astype(str), prefix="y"))
+    assert absorber.absorbed_df == np.linalg.matrix_rank(dummies.to_numpy(dtype=float))
+
+
+# ---- singletons, rank, identification, convergence -------------------------------------------------
+
+def test_singletons_are_removed_until_none_remain() -> None:
+    """Correia (2015): dropping one singleton can create another; removal repeats (common practice).
+    Keys only: worker a appears once; after it goes, firm F holds one row, and so on."""
+    keys = pd.DataFrame({
+        "worker": ["a", "b", "b", "c", "c", "d", "d", "e", "e"],
+        "firm":   ["F", "F", "G", "G", "H", "H", "H", "H", "H"],
+    })
+    keep = drop_singletons(keys, parse_absorb(["worker", "firm"]))
+    # a (singleton worker) -> F holds only b's row -> b holds only its G row -> G holds only c's
+    # row -> c holds only its H row; d, e and H keep two or more rows each
+    assert keep.tolist() == [False] * 5 + [True] * 4
+    assert drop_singletons(keys, parse_absorb(["firm"])).tolist() == [True] * 9
+
+
+def test_singleton_count_recorded_and_option_keeps_them(wage_panel: pd.DataFrame) -> None:
+    """Source: the wage panel with one worker cut to one year: one singleton dropped by default."""
+    df = wage_panel[~((wage_panel["nr"] == 13) & (wage_panel["year"] > 1980))]
+    dropped = fit_one(df, "lwage", "union", absorb=parse_absorb(["nr", "year"]))
+    kept = fit_one(df, "lwage", "union", absorb=parse_absorb(["nr", "year"]), keep_singletons=True)
+    assert dropped.n_singletons == 1 and dropped.n_obs == len(df) - 1
+    assert kept.n_singletons == 0 and kept.n_obs == len(df)
+    # a singleton's own dummy fits it exactly: the coefficient does not move
+    assert kept.estimate == pytest.approx(dropped.estimate, rel=1e-9)
+
+
+def test_focal_absorbed_by_unit_effects_is_not_identified(wage_panel: pd.DataFrame) -> None:
+    """Years of schooling never change within a worker in wage_panel: unit effects absorb them."""
+    res = fit_one(wage_panel, "lwage", "educ", absorb=parse_absorb(["nr"]), unit="nr")
+    assert res.status == "not_identified"
+    assert "absorbed by the fixed effects" in res.message and np.isnan(res.estimate)
+    assert res.units_with_variation == 0
+    pooled = fit_one(wage_panel, "lwage", "educ", absorb=(), unit="nr")
+    assert pooled.status == "ok"
+
+
+def test_collinear_focal_and_controls(wage_panel: pd.DataFrame) -> None:
+    df = wage_panel.assign(union_copy=wage_panel["union"] * 2.0, married_copy=wage_panel["married"])
+    res = fit_one(df, "lwage", "union", controls=["union_copy"], absorb=parse_absorb(["nr"]))
+    assert res.status == "not_identified" and "collinear with the controls" in res.message
+    # a collinear control is dropped (the later one in sorted order), an absorbed one too
+    ok = fit_one(df, "lwage", "union", controls=["married", "married_copy", "educ"],
+                 absorb=parse_absorb(["nr"]))
+    assert ok.status == "ok"
+    assert ok.controls_dropped == "married_copy (collinear); educ (absorbed)"
+    ref = fit_one(df, "lwage", "union", controls=["married"], absorb=parse_absorb(["nr"]))
+    assert ok.estimate == pytest.approx(ref.estimate, rel=1e-10)
+
+
+def test_non_convergence_is_recorded(wage_panel: pd.DataFrame) -> None:
+    res = fit_one(wage_panel.iloc[:-7], "lwage", "union",
+                  absorb=parse_absorb(["nr", "year", "occupation"]), inference=IID)
+    capped = fit_block(
+        wage_panel.iloc[:-7],
+        BlockSettings(absorb=parse_absorb(["nr", "year", "occupation"]), max_iterations=2),
+        [SpecRequest("s", "lwage", "union")],
+    ).results[0]
+    assert res.converged and res.iterations < 100
+    assert not capped.converged and "did not reach the tolerance" in capped.message
+    assert capped.iterations == 2
+
+
+def test_identifying_variation_diagnostics(wage_panel: pd.DataFrame) -> None:
+    """Mummolo & Peterson (2018): report the SD of the focal regressor after the fixed effects."""
+    res = fit_one(wage_panel, "lwage", "union", absorb=parse_absorb(["nr"]), unit="nr")
+    x = wage_panel["union"]
+    within = x - x.groupby(wage_panel["nr"]).transform("mean")
+    assert res.focal_sd == pytest.approx(x.std(), rel=1e-12)
+    assert res.focal_sd_within == pytest.approx(within.std(), rel=1e-9)
+    assert res.focal_variance_share == pytest.approx((within**2).sum() / ((x - x.mean()) ** 2).sum(), rel=1e-9)
+    assert res.units_with_variation == int((x.groupby(wage_panel["nr"]).nunique() > 1).sum())
+
+
+# ---- block evaluation -------------------------------------------------------------------------------
+
+def test_block_equals_one_at_a_time_and_shares_demeaning(jobtraining: pd.DataFrame) -> None:
+    """Every spec of a block equals its separate fit; specs with the same complete-case rows share
+    one demeaning (lscrap and lsales have different missing rows, so two designs)."""
+    df = jobtraining
+    settings = BlockSettings(absorb=parse_absorb(["fcode", "year"]), unit="fcode", time="year")
+    infs = [Inference("iid"), Inference("robust"), Inference("cluster", (("fcode",),)),
+            Inference("twoway", (("fcode",), ("year",)))]
+    specs = []
+    for outcome in ("lscrap", "lemploy"):
+        for controls in ((), ("grant_1",)):
+            for j, inf in enumerate(infs):
+                specs.append(SpecRequest(f"{outcome}-{len(controls)}-{j}", outcome, "grant", controls, inf))
+    block = fit_block(df, settings, specs)
+    assert block.designs == 2
+    for spec, res in zip(specs, block.results):
+        one = fit_one(df, spec.outcome, spec.focal, controls=spec.controls, absorb=settings.absorb,
+                      inference=spec.inference, unit="fcode", time="year")
+        assert res.spec_id == spec.spec_id
+        assert res.estimate == pytest.approx(one.estimate, rel=1e-12)
+        assert res.std_error == pytest.approx(one.std_error, rel=1e-12)
+        assert res.n_obs == one.n_obs
+
+
+def test_store_reuses_demeaned_columns(tmp_path, wage_panel: pd.DataFrame) -> None:
+    store = FileDemeanStore(tmp_path)
+    settings = BlockSettings(absorb=parse_absorb(["nr", "year"]))
+    specs = [SpecRequest("a", "lwage", "union", ("married",), Inference("cluster", (("nr",),)))]
+    first = fit_block(wage_panel, settings, specs, store=store, data_key="wage")
+    more = specs + [SpecRequest("b", "lwage", "union", ("married",), Inference("robust"))]
+    second = fit_block(wage_panel, settings, more, store=store, data_key="wage")
+    assert first.columns_demeaned == 3 and first.columns_reused == 0
+    assert second.columns_demeaned == 0 and second.columns_reused == 3
+    assert second.results[0] == first.results[0]
+    other = fit_block(wage_panel, settings, specs, store=store, data_key="other data")
+    assert other.columns_demeaned == 3
+
+
+def test_unknown_covariance_kind_lists_the_kinds() -> None:
+    with pytest.raises(EstimationError, match="iid, robust, cluster, twoway"):
+        Inference("hc3")
+    with pytest.raises(EstimationError, match="takes 1 cluster"):
+        Inference("cluster", ())
+
+
+def test_parse_terms() -> None:
+    assert parse_absorb(["a", "b x c", {"trend": "a"}, "a"]) == (
+        EffectTerm(("a",)), EffectTerm(("b", "c")), TrendTerm("a"))
+    with pytest.raises(ConfigError, match="unknown kind"):
+        parse_absorb([{"slope": "a"}])

@@ -1,0 +1,221 @@
+"""The ``fegrid`` command line.
+
+Commands: ``check`` (config and data, no fitting), ``plan`` (grid size, jobs, what is fitted),
+``run`` (Snakemake, with visible progress), ``summary`` (a finished ledger in the terminal) and
+``demo`` (the invented demo, end to end). A user's mistake prints one paragraph and exits with 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import fcntl
+import os
+import subprocess
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+
+import pandas as pd
+from tabulate import tabulate
+
+from . import __version__
+from .errors import FegridError
+from .pipeline import describe_sizes, load_checked, make_plan, plan_status
+from .store import RunPaths
+from .summary import choice_medians, curve_summary
+
+__all__ = ["main", "workflow_root"]
+
+DEFAULT_CONFIG = "config/config.yaml"
+
+
+def workflow_root() -> Path:
+    """The folder holding the Snakefile (fegrid's source checkout)."""
+    return Path(__file__).resolve().parents[2]
+
+
+def _fmt(x: object, digits: int = 4) -> str:
+    if isinstance(x, float):
+        return f"{x:.{digits}g}" if abs(x) < 1e-3 or abs(x) >= 1e4 else f"{x:.{digits}f}"
+    return str(x)
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    plan = make_plan(args.config, prepare=True)
+    frame = load_checked(plan.grid)
+    print(f"config {args.config}: valid; data {plan.grid.data_path}: {len(frame)} rows, "
+          f"{frame[plan.grid.panel.unit].nunique()} units, checks passed.")
+    print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
+    print(f"{len(plan.specs)} specifications in {len(plan.jobs)} jobs.")
+    return 0
+
+
+def _cmd_plan(args: argparse.Namespace) -> int:
+    plan = make_plan(args.config, prepare=True)
+    st = plan_status(plan)
+    print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} jobs "
+          f"(data sha256 {st['data_sha256'][:12]}...)")
+    print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
+    print(f"already fitted: {st['specs_fitted']} specifications ({st['jobs_done']} jobs); "
+          f"to fit: {st['specs_to_fit']} ({st['jobs'] - st['jobs_done']} jobs).")
+    if args.list:
+        rows = []
+        for job in plan.jobs:
+            state = "fitted" if plan.paths.fit(job.key).is_file() else "to fit"
+            rows.extend((s.spec_id, state, *(n for _, n in s.names)) for s in job.specs)
+        rows.sort()
+        print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
+    return 0
+
+
+class _RunLock:
+    """An exclusive lock on one run's folder; the kernel releases it if the process dies."""
+
+    def __init__(self, path: Path) -> None:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        self.fh = open(path, "a")  # noqa: SIM115 - held for the lock's lifetime
+
+    def __enter__(self) -> _RunLock:
+        try:
+            fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise FegridError(
+                f"Another fegrid run holds the lock {self.fh.name}; wait for it to finish."
+            ) from None
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        fcntl.flock(self.fh, fcntl.LOCK_UN)
+        self.fh.close()
+
+
+def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ()) -> list[str]:
+    """The Snakemake call behind ``fegrid run``.
+
+    ``--rerun-incomplete`` and ``--nolock`` let a run killed at any point resume with the same
+    command: every output is written atomically and named by content, and fegrid's own lock (an
+    ``flock`` that dies with its process) keeps two runs of one grid apart.
+    """
+    root = workflow_root()
+    return [
+        sys.executable, "-m", "snakemake",
+        "--snakefile", str(root / "Snakefile"),
+        "--directory", os.getcwd(),
+        "--configfile", str(Path(config).resolve()),
+        "--cores", str(cores),
+        "--rerun-incomplete", "--nolock", "--show-failed-logs",
+        *extra,
+    ]
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    if not (workflow_root() / "Snakefile").is_file():
+        raise FegridError(
+            f"fegrid run needs fegrid's source checkout (no Snakefile in {workflow_root()}); install "
+            "it with 'pip install -e .' from the checkout."
+        )
+    plan = make_plan(args.config, prepare=True)
+    load_checked(plan.grid)
+    st = plan_status(plan)
+    print(f"fegrid: run '{plan.grid.run_name}': {st['specifications']} specifications, "
+          f"{st['specs_to_fit']} to fit in {st['jobs'] - st['jobs_done']} of {st['jobs']} jobs.",
+          flush=True)
+    with _RunLock(plan.paths.run / ".lock"):
+        code = subprocess.call(snakemake_command(args.config, args.cores, args.snakemake_args))
+    if code != 0:
+        print(f"fegrid: the Snakemake run failed (exit code {code}); see the log shown above. "
+              "Earlier results are untouched.", file=sys.stderr)
+        return code
+    if not args.quiet:
+        _print_summary(plan.paths.ledger_csv, plan.grid.level)
+    return 0
+
+
+def _print_summary(ledger_path: Path, level: float) -> None:
+    ledger = pd.read_csv(ledger_path, keep_default_na=False, na_values=[""])
+    ledger["is_baseline"] = ledger["is_baseline"].astype(str) == "True"
+    summ = curve_summary(ledger, level)
+    print(f"\nledger: {ledger_path} ({len(ledger)} specifications)")
+    cols = ["outcome", "focal", "specs", "fitted", "not_identified", "failed", "baseline_estimate",
+            "baseline_percentile", "median", "q25", "q75", "share_baseline_sign",
+            "share_significant_dominant"]
+    print(tabulate([[_fmt(v) for v in row] for row in summ[cols].itertuples(index=False)],
+                   headers=["outcome", "focal", "specs", "fitted", "not id.", "failed", "baseline",
+                            "base pct", "median", "q25", "q75", "same sign", f"signif. ({1 - level:.2g})"]))
+    moves = choice_medians(ledger)
+    if len(moves):
+        top = (moves.sort_values("range", ascending=False)
+               .drop_duplicates(PAIR_DIM := ["outcome", "focal", "dimension"]).head(6))
+        print("\ndimensions that move the median estimate most:")
+        print(tabulate([[r.outcome, r.focal, r.dimension, _fmt(r.range)] for r in top.itertuples()],
+                       headers=[*PAIR_DIM, "spread of choice medians"]))
+
+
+def _cmd_summary(args: argparse.Namespace) -> int:
+    if args.ledger:
+        path, level = Path(args.ledger), args.level
+    else:
+        plan = make_plan(args.config)
+        path, level = plan.paths.ledger_csv, plan.grid.level
+    if not path.is_file():
+        raise FegridError(f"There is no ledger at {path}; run 'fegrid run' first.")
+    _print_summary(path, level)
+    return 0
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    args.config = str(workflow_root() / DEFAULT_CONFIG)
+    cfg = make_plan(args.config, prepare=True).grid
+    print(f"fegrid demo: INVENTED orchard data at {cfg.data_path}; outputs in reports/{cfg.run_name}/")
+    return _cmd_run(args)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="fegrid",
+        description="Declare a grid of fixed-effects panel regressions in YAML; fit, cache and report it.",
+    )
+    parser.add_argument("--version", action="version", version=f"fegrid {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def with_config(p: argparse.ArgumentParser) -> argparse.ArgumentParser:
+        p.add_argument("--config", default=DEFAULT_CONFIG, help="the grid's YAML file (default: %(default)s)")
+        return p
+
+    with_config(sub.add_parser("check", help="check the config and the data without fitting"))
+    p = with_config(sub.add_parser("plan", help="grid size per dimension; what is fitted and what is left"))
+    p.add_argument("--list", action="store_true", help="list every specification with its state")
+    for name, text in (("run", "fit the grid through Snakemake and gather the ledger"),
+                       ("demo", "run the invented demo grid end to end")):
+        p = with_config(sub.add_parser(name, help=text))
+        p.add_argument("-c", "--cores", type=int, default=max(1, (os.cpu_count() or 1)),
+                       help="jobs run in parallel (default: all cores)")
+        p.add_argument("--quiet", action="store_true", help="no summary at the end")
+        p.add_argument("snakemake_args", nargs=argparse.REMAINDER,
+                       help="after '--': extra arguments passed to Snakemake")
+    p = with_config(sub.add_parser("summary", help="summarise a finished ledger in the terminal"))
+    p.add_argument("--ledger", help="a ledger.csv to summarise instead of the config's")
+    p.add_argument("--level", type=float, default=0.95, help="confidence level with --ledger")
+    return parser
+
+
+COMMANDS = {"check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
+            "demo": _cmd_demo}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
+        args.snakemake_args = args.snakemake_args[1:]
+    try:
+        return COMMANDS[args.command](args)
+    except FegridError as exc:
+        print(f"fegrid: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("fegrid: interrupted; run the same command again to resume.", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,88 @@
+"""Summaries of a ledger: how the curve of estimates looks and how robust the baseline is."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .grid import DIMENSIONS
+
+__all__ = ["curve_summary", "choice_medians", "PAIR"]
+
+#: A specification curve is drawn and summarised for each outcome x focal regressor pair.
+PAIR = ["outcome", "focal"]
+
+
+def _percentile_of(values: np.ndarray, x: float) -> float:
+    """Share (in %) of the curve at or below ``x``, ties counted half (mid-rank)."""
+    if len(values) == 0 or not np.isfinite(x):
+        return float("nan")
+    below = np.sum(values < x)
+    equal = np.sum(values == x)
+    return float(100.0 * (below + 0.5 * equal) / len(values))
+
+
+def curve_summary(ledger: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+    """One row per outcome x focal pair.
+
+    Columns: counts by status; the baseline's estimate, its percentile in the curve and its
+    p-value; the share of fitted estimates with the baseline's sign; the dominant sign (the sign of
+    the median) and the share significant at ``1 - level`` with that sign; median, quartiles,
+    minimum and maximum of the fitted estimates.
+    """
+    alpha = 1.0 - level
+    rows = []
+    for (outcome, focal), part in ledger.groupby(PAIR, sort=True):
+        ok = part[part["status"] == "ok"]
+        est = ok["estimate"].to_numpy(dtype=float)
+        base = part[part["is_baseline"]]
+        base_est = float(base["estimate"].iloc[0]) if len(base) else float("nan")
+        median = float(np.median(est)) if len(est) else float("nan")
+        dominant = np.sign(median) if len(est) else 0.0
+        base_sign = np.sign(base_est) if np.isfinite(base_est) else dominant
+        significant = (ok["p_value"] < alpha) & (np.sign(ok["estimate"]) == dominant)
+        rows.append({
+            "outcome": outcome,
+            "focal": focal,
+            "specs": len(part),
+            "fitted": len(ok),
+            "not_identified": int((part["status"] == "not_identified").sum()),
+            "failed": int((part["status"] == "failed").sum()),
+            "baseline_estimate": base_est,
+            "baseline_p_value": float(base["p_value"].iloc[0]) if len(base) else float("nan"),
+            "baseline_percentile": _percentile_of(est, base_est),
+            "share_baseline_sign": float(np.mean(np.sign(est) == base_sign)) if len(est) else float("nan"),
+            "dominant_sign": "+" if dominant > 0 else ("-" if dominant < 0 else "0"),
+            "share_significant_dominant": float(significant.mean()) if len(est) else float("nan"),
+            "median": median,
+            "q25": float(np.quantile(est, 0.25)) if len(est) else float("nan"),
+            "q75": float(np.quantile(est, 0.75)) if len(est) else float("nan"),
+            "min": float(est.min()) if len(est) else float("nan"),
+            "max": float(est.max()) if len(est) else float("nan"),
+        })
+    return pd.DataFrame(rows)
+
+
+def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
+    """Median fitted estimate under each choice of each dimension, per outcome x focal pair.
+
+    ``shift`` is the choice's median less the pair's overall median; the dimension whose choices
+    spread the most (``range`` within a dimension) is the one that moves the estimate most.
+    """
+    ok = ledger[ledger["status"] == "ok"]
+    rows = []
+    for (outcome, focal), part in ok.groupby(PAIR, sort=True):
+        overall = float(part["estimate"].median())
+        for dim in DIMENSIONS:
+            if dim in PAIR:
+                continue
+            meds = part.groupby(dim, sort=True)["estimate"].agg(["median", "size"])
+            spread = float(meds["median"].max() - meds["median"].min())
+            for choice, row in meds.iterrows():
+                rows.append({
+                    "outcome": outcome, "focal": focal, "dimension": dim, "choice": choice,
+                    "specs": int(row["size"]), "median": float(row["median"]),
+                    "shift": float(row["median"]) - overall, "range": spread,
+                })
+    return pd.DataFrame(rows, columns=["outcome", "focal", "dimension", "choice", "specs", "median",
+                                       "shift", "range"])

@@ -45,3 +45,32 @@ def fegrid_env() -> dict[str, str]:
     env = dict(os.environ)
     env["PATH"] = str(Path(sys.executable).parent) + os.pathsep + env.get("PATH", "")
     return env
+
+
+TINY_CONFIG = """\
+run_name: tiny
+data: {path: grunfeld.csv, unit: firm, time: year}
+outcomes: [invest]
+focal_regressors: [value, capital]
+absorb:
+  firm: [firm]
+  firm_year: [firm, year]
+clustering:
+  robust: {kind: robust}
+  firm: {kind: cluster, by: firm}
+samples:
+  all: {}
+  postwar: {range: {year: {min: 1946}}}
+control_sets:
+  combinations_of: [capital, value]
+baseline: {focal: value, absorb: firm_year, clustering: firm, sample: all, controls: capital}
+jobs: {specs_per_job: 4}
+"""
+
+
+@pytest.fixture()
+def tiny_project(tmp_path: Path, grunfeld: pd.DataFrame) -> Path:
+    """A folder with statsmodels' Grunfeld data as CSV and a small grid over it."""
+    grunfeld.to_csv(tmp_path / "grunfeld.csv", index=False)
+    (tmp_path / "grid.yaml").write_text(TINY_CONFIG)
+    return tmp_path

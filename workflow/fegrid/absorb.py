@@ -279,7 +279,9 @@ class Absorber:
     remaining categorical terms, the two with the most levels count ``L1 + L2 - C`` where ``C`` is the number of
     connected components of their bipartite graph (Abowd, Kramarz & Margolis 1999), which is exact;
     each further term counts ``L_j - 1``, an upper bound (conservative standard errors). A trend term
-    counts one slope per group in which time varies, plus its group intercepts as a categorical term.
+    counts one slope per group in which time varies, plus its group intercepts as a categorical term,
+    less one when an effect constant in time (a time effect) spans the sum of the slopes.
+    The columns are centred (weighted) before iterating, so ``x_0`` above is the centred column.
     """
 
     def __init__(

@@ -20,8 +20,8 @@ from tabulate import tabulate
 
 from . import __version__
 from .errors import FegridError
-from .pipeline import describe_sizes, load_checked, make_plan, plan_status
-from .store import RunPaths
+from .pipeline import describe_sizes, load_checked, make_plan, plan_status, result_key
+from .store import FileResultStore
 from .summary import choice_medians, curve_summary
 
 __all__ = ["main", "workflow_root"]
@@ -56,14 +56,12 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} jobs "
           f"(data sha256 {st['data_sha256'][:12]}...)")
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
-    print(f"already fitted: {st['specs_fitted']} specifications ({st['jobs_done']} jobs); "
-          f"to fit: {st['specs_to_fit']} ({st['jobs'] - st['jobs_done']} jobs).")
+    print(f"already fitted: {st['specs_fitted']} specifications; to fit: {st['specs_to_fit']} "
+          f"(jobs to run: {st['jobs'] - st['jobs_done']} of {st['jobs']}).")
     if args.list:
-        rows = []
-        for job in plan.jobs:
-            state = "fitted" if plan.paths.fit(job.key).is_file() else "to fit"
-            rows.extend((s.spec_id, state, *(n for _, n in s.names)) for s in job.specs)
-        rows.sort()
+        store = FileResultStore(plan.paths.results)
+        rows = [(s.spec_id, "fitted" if store.has(result_key(plan.snapshot_key, plan.grid, s)) else "to fit",
+                 *(n for _, n in s.names)) for s in plan.specs]
         print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
     return 0
 
@@ -118,7 +116,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     load_checked(plan.grid)
     st = plan_status(plan)
     print(f"fegrid: run '{plan.grid.run_name}': {st['specifications']} specifications, "
-          f"{st['specs_to_fit']} to fit in {st['jobs'] - st['jobs_done']} of {st['jobs']} jobs.",
+          f"{st['specs_to_fit']} to fit; {st['jobs'] - st['jobs_done']} of {st['jobs']} jobs to run.",
           flush=True)
     with _RunLock(plan.paths.run / ".lock"):
         code = subprocess.call(snakemake_command(args.config, args.cores, args.snakemake_args))

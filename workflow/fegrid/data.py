@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import DataError, FegridError
+from .errors import DataError
 from .grid import Grid
 from .samples import apply_sample
 
@@ -42,7 +42,10 @@ def file_sha256(path: str | Path) -> str:
 
 
 def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.DataFrame:
-    """Read a CSV, Parquet or Stata file, only ``columns`` if given (unknown ones are an error)."""
+    """Read a CSV, Parquet or Stata file; with ``columns``, only those of them that exist.
+
+    Columns the file lacks are left for :func:`check_data` to name together with their role.
+    """
     path = Path(path)
     reader = READERS.get(path.suffix.lower())
     if reader is None:
@@ -51,39 +54,27 @@ def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.Dat
             f"{', '.join(READERS)}."
         )
     if not path.is_file():
-        raise DataError(f"The data file '{path}' does not exist (data.path in the config).")
-    wanted = list(columns) if columns is not None else None
+        raise DataError(f"The data file '{path}' (data.path in the config) does not exist.")
+    wanted = list(dict.fromkeys(columns)) if columns is not None else None
     try:
         if wanted is not None and reader is _read_csv:
-            header = pd.read_csv(path, nrows=0).columns
-            missing = [c for c in wanted if c not in set(header)]
-            if missing:
-                raise DataError(_missing_message(path, missing, header))
-            return reader(path, wanted)
+            header = set(pd.read_csv(path, nrows=0).columns)
+            return reader(path, [c for c in wanted if c in header])
         frame = reader(path, None)
-    except FegridError:
-        raise
     except Exception as exc:  # any parser's failure is the user's file, not our bug
         raise DataError(f"The data file '{path}' cannot be read as {path.suffix}: {exc}") from None
-    if wanted is None:
-        return frame
-    missing = [c for c in wanted if c not in frame.columns]
-    if missing:
-        raise DataError(_missing_message(path, missing, frame.columns))
-    return frame[wanted]
-
-
-def _missing_message(path: Path, missing: list[str], header: Iterable[str]) -> str:
-    return (
-        f"The data file '{path}' has no column(s) {', '.join(repr(m) for m in missing)}, which the "
-        f"config uses. Its columns are: {', '.join(map(str, header))}."
-    )
+    return frame if wanted is None else frame[[c for c in wanted if c in frame.columns]]
 
 
 def levels_for(frame: pd.DataFrame, grid: Grid) -> dict[str, list]:
     """Sorted levels of the columns the grid expansion needs (``drop_each`` generators)."""
     out = {}
     for col in grid.level_columns():
+        if col not in frame.columns:
+            raise DataError(
+                f"The sample filter column '{col}' (drop_each) named in the config is not in the "
+                f"data. Its columns are: {', '.join(map(str, frame.columns))}."
+            )
         values = frame[col].dropna().unique()
         out[col] = sorted(values.tolist(), key=lambda v: (str(type(v)), v))
     return out

@@ -231,9 +231,11 @@ class Grid:
             declared = dict(names, sample=samples[sample][0])
             if any(_matches(rule, names, declared) for rule in self.exclude):
                 continue
-            if focal == outcome:
+            # a regression of a variable on itself, or controlling for the focal regressor or the
+            # outcome, makes no sense: such combinations are left out of the grid
+            if focal == outcome or {focal, outcome} & set(self.controls[controls]):
                 continue
-            ctrl = tuple(sorted(c for c in self.controls[controls] if c not in (focal, outcome)))
+            ctrl = tuple(sorted(self.controls[controls]))
             inference = self.clustering[clus]
             body = {
                 "outcome": outcome,

@@ -29,7 +29,7 @@ from .estimate import RESULT_COLUMNS, fit_block
 from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .samples import apply_sample
 from .demo import write_demo_data
-from .store import FileDemeanStore, RunPaths, write_csv, write_json, write_parquet
+from .store import FileDemeanStore, FileResultStore, RunPaths, write_csv, write_json, write_parquet
 
 __all__ = [
     "LEDGER_COLUMNS",
@@ -41,6 +41,7 @@ __all__ = [
     "gather_ledger",
     "plan_status",
     "run_logged",
+    "result_key",
 ]
 
 _FRONT = ["spec_id", *DIMENSIONS, "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
@@ -74,8 +75,20 @@ def _salt(snapshot_key: str, grid: Grid) -> str:
 
 
 def _snapshot_key(data_sha: str, grid: Grid) -> str:
-    body = json.dumps({"data": data_sha, "columns": grid.columns(), "fegrid": __version__})
-    return hashlib.sha256(body.encode()).hexdigest()[:16]
+    """``<data hash>-<columns hash>``: a new column gives a new snapshot of the same data."""
+    body = json.dumps({"columns": grid.columns(), "fegrid": __version__})
+    return f"{data_sha[:16]}-{hashlib.sha256(body.encode()).hexdigest()[:8]}"
+
+
+def _data_key(snapshot_key: str) -> str:
+    """The data part of a snapshot key: what demeaned columns and results are keyed by."""
+    return snapshot_key.split("-")[0]
+
+
+def result_key(snapshot_key: str, grid: Grid, spec: Spec) -> str:
+    """Key of one specification's stored results: data, settings and the specification."""
+    body = _data_key(snapshot_key) + grid.settings_key() + spec.canonical
+    return hashlib.sha256(body.encode()).hexdigest()[:24]
 
 
 def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports",
@@ -121,7 +134,11 @@ def _jobs_from_snapshot(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> list
 
 def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
             store_dir: str | Path | None = None) -> dict[str, Any]:
-    """Fit the specifications of one job and write their results (Parquet, one row per spec)."""
+    """Fit the specifications of one job and write their results (Parquet, one row per spec).
+
+    With ``store_dir`` (the run's cache folder), specifications whose results are stored are not
+    fitted again, and demeaned columns are reused; the work log beside ``out`` counts both.
+    """
     started = time.perf_counter()
     snapshot = Path(snapshot)
     frame = pd.read_parquet(snapshot)
@@ -131,14 +148,21 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
             f"Job {job_key} is not part of the grid any more (the config or data changed during the "
             "run). Run again."
         )
-    store = FileDemeanStore(store_dir) if store_dir is not None else None
-    data_key = snapshot.stem
+    store = FileDemeanStore(Path(store_dir) / "demeaned") if store_dir is not None else None
+    results_store = FileResultStore(Path(store_dir) / "results") if store_dir is not None else None
+    data_key = _data_key(snapshot.stem)
+    rows: dict[str, dict[str, Any]] = {}
+    keys = {s.spec_id: result_key(snapshot.stem, grid, s) for s in jobs[job_key].specs}
     by_block: dict[str, list[Spec]] = {}
     for spec in jobs[job_key].specs:
-        by_block.setdefault(spec.block_key, []).append(spec)
+        stored = results_store.get(keys[spec.spec_id]) if results_store is not None else None
+        if stored is not None:
+            rows[spec.spec_id] = stored
+        else:
+            by_block.setdefault(spec.block_key, []).append(spec)
     samples: dict[str, pd.DataFrame] = {}
-    rows: list[dict[str, Any]] = []
-    counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0}
+    counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0,
+              "specs_fitted": 0, "specs_reused": len(rows)}
     for bkey in sorted(by_block):
         specs = by_block[bkey]
         sample_key = json.dumps(specs[0].sample.canonical(), sort_keys=True)
@@ -150,8 +174,13 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
         counts["designs"] += block.designs
         counts["columns_demeaned"] += block.columns_demeaned
         counts["columns_reused"] += block.columns_reused
-        rows.extend(r.record() for r in block.results)
-    results = pd.DataFrame(rows, columns=list(RESULT_COLUMNS)).sort_values("spec_id", ignore_index=True)
+        counts["specs_fitted"] += len(block.results)
+        for res in block.results:
+            record = res.record()
+            rows[res.spec_id] = record
+            if results_store is not None:
+                results_store.put(keys[res.spec_id], record)
+    results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=list(RESULT_COLUMNS))
     log = {"job": job_key, "specs": len(results), **counts,
            "seconds": round(time.perf_counter() - started, 3)}
     out = Path(out)
@@ -188,7 +217,8 @@ def plan_status(plan: Plan) -> dict[str, Any]:
     """Size per dimension, jobs, and how many specifications are already fitted."""
     sizes = {d: len({s.name(d) for s in plan.specs}) for d in DIMENSIONS}
     done_jobs = [j for j in plan.jobs if plan.paths.fit(j.key).is_file()]
-    fitted = sum(len(j.specs) for j in done_jobs)
+    store = FileResultStore(plan.paths.results)
+    fitted = sum(store.has(result_key(plan.snapshot_key, plan.grid, s)) for s in plan.specs)
     return {
         "run_name": plan.grid.run_name,
         "specifications": len(plan.specs),

@@ -25,19 +25,26 @@ __all__ = [
     "write_json",
     "RunPaths",
     "FileDemeanStore",
+    "FileResultStore",
 ]
 
 
-def atomic_write(path: str | Path, writer: Callable[[io.BufferedWriter], None]) -> Path:
-    """Call ``writer`` on a temporary file beside ``path``, then rename it to ``path``."""
+def atomic_write(path: str | Path, writer: Callable[[io.BufferedWriter], None], *,
+                 durable: bool = True) -> Path:
+    """Call ``writer`` on a temporary file beside ``path``, then rename it to ``path``.
+
+    ``durable`` also flushes the file to disk before the rename (survives a power cut, not only a
+    killed process); small per-specification files skip it for speed.
+    """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     try:
         with os.fdopen(fd, "wb") as fh:
             writer(fh)
-            fh.flush()
-            os.fsync(fh.fileno())
+            if durable:
+                fh.flush()
+                os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
@@ -90,6 +97,10 @@ class RunPaths:
         return self.cache / "demeaned"
 
     @property
+    def results(self) -> Path:
+        return self.cache / "results"
+
+    @property
     def ledger_csv(self) -> Path:
         return self.run / "ledger.csv"
 
@@ -134,3 +145,29 @@ class FileDemeanStore:
         # the metadata is written last: get() reads a column only once both files exist
         write_json(path.with_suffix(".json"), {"iterations": iterations, "converged": converged})
         self.writes += 1
+
+
+class FileResultStore:
+    """One specification's results, kept as a small JSON file named by the hash of everything that
+    determines them (data, settings, the specification's canonical content).
+
+    Jobs look here before fitting, so a job whose other specifications changed (a clustering or a
+    control set was added) fits only the new ones. JSON keeps floats exactly (shortest repr).
+    """
+
+    def __init__(self, folder: str | Path) -> None:
+        self.folder = Path(folder)
+
+    def path(self, key: str) -> Path:
+        return self.folder / key[:2] / f"{key}.json"
+
+    def has(self, key: str) -> bool:
+        return self.path(key).is_file()
+
+    def get(self, key: str) -> dict | None:
+        path = self.path(key)
+        return json.loads(path.read_text()) if path.is_file() else None
+
+    def put(self, key: str, record: dict) -> None:
+        text = json.dumps(record, sort_keys=True)
+        atomic_write(self.path(key), lambda fh: fh.write(text.encode()), durable=False)

@@ -1,6 +1,7 @@
 # Parse time: check the config, resolve the grid against the data, name every job's file.
-import json
 import hashlib
+import json
+from pathlib import Path
 
 from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate

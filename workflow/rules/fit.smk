@@ -6,6 +6,8 @@ rule snapshot_data:
         snapshot=str(PLAN.snapshot_path),
     log:
         f"{RUN}/logs/snapshot_data.log",
+    conda:
+        "../envs/fegrid.yaml"
     script:
         "../scripts/snapshot_data.py"
 
@@ -17,10 +19,13 @@ rule fit_job:
         results=f"{RUN}/cache/fits/{{job}}.parquet",
         work=f"{RUN}/cache/fits/{{job}}.json",
     params:
-        store=str(PLAN.paths.demeaned),
+        # the run's cache folder: fits/ sits beside demeaned/ and results/
+        store=lambda wildcards, output: str(Path(output.results).parent.parent),
     log:
         f"{RUN}/logs/fit_job/{{job}}.log",
     wildcard_constraints:
         job="[0-9a-f]{16}",
+    conda:
+        "../envs/fegrid.yaml"
     script:
         "../scripts/fit_job.py"

@@ -13,5 +13,7 @@ rule gather_ledger:
         grid_digest=GRID_DIGEST,
     log:
         f"{RUN}/logs/gather_ledger.log",
+    conda:
+        "../envs/fegrid.yaml"
     script:
         "../scripts/gather_ledger.py"

@@ -1,0 +1,120 @@
+"""Bad input: one clear paragraph naming the key, column or specification; exit code 2; earlier
+results untouched. Data: statsmodels' Grunfeld investment data (see conftest.py)."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.cli import main
+from fegrid.pipeline import fit_job, gather_ledger, make_plan, snapshot_data
+
+
+@pytest.fixture()
+def fitted(tiny_project: Path, monkeypatch) -> Path:
+    """The tiny grid fitted in-process (same functions as the Snakemake rules call)."""
+    monkeypatch.chdir(tiny_project)
+    plan = make_plan("grid.yaml")
+    snapshot_data(plan.grid, plan.snapshot_path)
+    for job in plan.jobs:
+        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+    gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+    return tiny_project
+
+
+def _edit(text: str, old: str, new: str) -> str:
+    assert old in text, old
+    return text.replace(old, new)
+
+
+CONFIG_CASES = {
+    "broken YAML": (("outcomes: [invest]", "outcomes: [invest"), r"not valid YAML at line \d+"),
+    "unknown key": (("outcomes:", "colour: red\noutcomes:"), r"Unknown key\(s\) 'colour' under '\(top level\)'"),
+    "wrong type": (("jobs: {specs_per_job: 4}", "jobs: {specs_per_job: four}"), r"'jobs.specs_per_job' is invalid"),
+    "unknown control column": (("combinations_of: [capital, value]", "combinations_of: [capital, rain]"),
+                               r"control column\(s\) 'rain'"),
+    "unknown cluster column": (("by: firm}", "by: industry}"), r"cluster column\(s\) 'industry'"),
+    "unknown outcome column": (("outcomes: [invest]", "outcomes: [investment]"), r"outcome column\(s\) 'investment'"),
+    "empty sample": (("min: 1946", "min: 2046"), r"Sample 'postwar' keeps no rows"),
+    "exclusion names no choice": (("jobs:", "exclude: [{absorb: firm_month}]\njobs:"),
+                                  r"exclude\[0\] names absorb choice\(s\) \['firm_month'\]"),
+    "same name twice": (("  robust: {kind: robust}", "  robust: {kind: robust}\n  robust: {kind: iid}"),
+                        r"name 'robust' is given twice"),
+    "data file missing": (("path: grunfeld.csv", "path: nowhere.csv"), r"'nowhere.csv'.*does not exist"),
+    "baseline names no choice": (("sample: all,", "sample: everything,"), r"baseline.sample is 'everything'"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CONFIG_CASES))
+def test_bad_config_gives_one_paragraph_and_leaves_results(case: str, fitted: Path, capsys) -> None:
+    (old, new), pattern = CONFIG_CASES[case]
+    ledger = (fitted / "reports/tiny/ledger.csv").read_bytes()
+    bad = fitted / "bad.yaml"
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), old, new))
+    for command in ("check", "run"):
+        assert main([command, "--config", str(bad)]) == 2
+        err = capsys.readouterr().err
+        assert err.startswith("fegrid: error: ")
+        assert "Traceback" not in err and err.count("\n") == 1  # one paragraph
+        assert pd.Series([err]).str.contains(pattern, regex=True).iloc[0], err
+    assert (fitted / "reports/tiny/ledger.csv").read_bytes() == ledger
+
+
+DATA_CASES = {
+    "duplicate panel keys": (lambda d: pd.concat([d, d.iloc[[3]]]),
+                             r"panel keys \(firm, year\) are not unique.*firm=General Motors, year=1938"),
+    "non-numeric regressor": (lambda d: d.assign(value=d["value"].astype(str) + " USD"),
+                              r"focal regressor column 'value' is not numeric"),
+    "cluster variable with missing values": (lambda d: d.assign(firm=d["firm"].where(d.index != 5)),
+                                             r"column 'firm' has 1 missing value"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(DATA_CASES))
+def test_bad_data_gives_one_paragraph_and_leaves_results(case: str, fitted: Path, capsys) -> None:
+    change, pattern = DATA_CASES[case]
+    ledger = (fitted / "reports/tiny/ledger.csv").read_bytes()
+    data = pd.read_csv(fitted / "grunfeld.csv")
+    change(data).to_csv(fitted / "grunfeld.csv", index=False)
+    assert main(["run", "--config", "grid.yaml"]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and pd.Series([err]).str.contains(pattern, regex=True).iloc[0], err
+    assert (fitted / "reports/tiny/ledger.csv").read_bytes() == ledger
+
+
+def test_unparseable_data_file(fitted: Path, capsys) -> None:
+    (fitted / "grunfeld.parquet").write_bytes(b"this is not parquet")
+    bad = fitted / "bad.yaml"
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "grunfeld.csv", "grunfeld.parquet"))
+    assert main(["check", "--config", str(bad)]) == 2
+    assert "cannot be read as .parquet" in capsys.readouterr().err
+
+
+def test_absorbed_focal_is_a_ledger_row_not_an_error(fitted: Path) -> None:
+    """A firm-invariant regressor under firm effects: status not_identified, with the reason."""
+    data = pd.read_csv(fitted / "grunfeld.csv")
+    data["founded"] = data.groupby("firm")["year"].transform("min") - data["firm"].str.len()
+    data.to_csv(fitted / "grunfeld.csv", index=False)
+    text = _edit((fitted / "grid.yaml").read_text(), "[value, capital]", "[value, capital, founded]")
+    (fitted / "grid.yaml").write_text(text)
+    plan = make_plan("grid.yaml")
+    snapshot_data(plan.grid, plan.snapshot_path)
+    for job in plan.jobs:
+        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+    ledger = gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+    founded = ledger[ledger["focal"] == "founded"]
+    assert len(founded) > 0 and (founded["status"] == "not_identified").all()
+    assert founded["message"].str.contains("absorbed by the fixed effects").all()
+    assert founded["estimate"].isna().all()
+
+
+def test_cli_exit_code_in_a_real_process(tiny_project: Path, fegrid_env) -> None:
+    (tiny_project / "grid.yaml").write_text("run_name: [unclosed\n")
+    proc = subprocess.run([sys.executable, "-m", "fegrid.cli", "check", "--config", "grid.yaml"],
+                          cwd=tiny_project, capture_output=True, text=True, env=fegrid_env)
+    assert proc.returncode == 2
+    assert proc.stderr.startswith("fegrid: error: The config file 'grid.yaml' is not valid YAML")

@@ -1,0 +1,103 @@
+"""The grid language: expansion, stable ids, exclusions, generators, baseline, jobs."""
+
+from __future__ import annotations
+
+import copy
+
+import pytest
+
+from fegrid.errors import ConfigError
+from fegrid.grid import load_config, plan_jobs
+
+BASE = {
+    "run_name": "t",
+    "data": {"path": "x.csv", "unit": "firm", "time": "year"},
+    "outcomes": ["invest"],
+    "focal_regressors": ["value", "capital"],
+    "absorb": {"firm": ["firm"], "firm_year": ["firm", "year"], "pooled": []},
+    "clustering": {"robust": {"kind": "robust"}, "firm": {"kind": "cluster", "by": "firm"}},
+    "samples": {"all": {}, "late": {"range": {"year": {"min": 1946}}}},
+    "control_sets": {"combinations_of": ["capital", "value"]},
+}
+
+
+def _ids(raw, levels=None) -> dict[str, tuple]:
+    return {s.spec_id: s.names for s in load_config(raw).expand(levels)}
+
+
+def test_size_and_self_controls_left_out() -> None:
+    specs = load_config(BASE).expand()
+    # 2 focal x 3 absorb x 2 clustering x 2 samples x 4 control sets, less the control sets that
+    # hold the focal regressor itself (2 of 4 for each focal)
+    assert len(specs) == 2 * 3 * 2 * 2 * 2
+    assert all(s.focal not in s.controls for s in specs)
+    assert len({s.spec_id for s in specs}) == len(specs)
+    assert all(len(s.spec_id) == 12 and int(s.spec_id, 16) >= 0 for s in specs)
+
+
+def test_ids_do_not_depend_on_order_or_names() -> None:
+    ids = set(_ids(BASE))
+    shuffled = copy.deepcopy(BASE)
+    shuffled["absorb"] = {"pooled": [], "firm_year": ["year", "firm"], "firm": ["firm"]}
+    shuffled["focal_regressors"] = ["capital", "value"]
+    shuffled["samples"] = {"late_years": {"range": {"year": {"min": 1946}}}, "everything": {}}
+    assert set(_ids(shuffled)) == ids
+    changed = copy.deepcopy(BASE)
+    changed["samples"]["late"] = {"range": {"year": {"min": 1947}}}
+    assert len(set(_ids(changed)) & ids) == len(ids) // 2
+
+
+def test_exclusion_rules_and_negation() -> None:
+    raw = copy.deepcopy(BASE)
+    raw["exclude"] = [{"absorb": "pooled", "clustering": "firm"},
+                      {"sample": "late", "absorb": {"not": ["firm_year"]}}]
+    names = list(_ids(raw).values())
+    assert not any(dict(n)["absorb"] == "pooled" and dict(n)["clustering"] == "firm" for n in names)
+    assert all(dict(n)["absorb"] == "firm_year" for n in names if dict(n)["sample"] == "late")
+
+
+def test_drop_each_generator_and_named_levels() -> None:
+    raw = copy.deepcopy(BASE)
+    raw["samples"] = {"all": {}, "without": {"drop_each": "firm"}}
+    specs = load_config(raw).expand({"firm": ["A", "B", "C"]})
+    samples = {s.name("sample") for s in specs}
+    assert samples == {"all", "without:A", "without:B", "without:C"}
+    s = next(s for s in specs if s.name("sample") == "without:B")
+    assert s.sample.canonical() == {"drop": {"firm": ["B"]}}
+    # an exclusion rule may name the generator: it covers every sample it produced
+    raw["exclude"] = [{"sample": "without", "clustering": "robust"}]
+    specs = load_config(raw).expand({"firm": ["A", "B", "C"]})
+    assert all(s.name("clustering") == "firm" for s in specs if s.name("sample") != "all")
+
+
+def test_baseline_must_match_exactly_one() -> None:
+    raw = copy.deepcopy(BASE)
+    raw["baseline"] = {"focal": "value", "absorb": "firm_year", "clustering": "firm", "sample": "all",
+                       "controls": "capital"}
+    grid = load_config(raw)
+    specs = grid.expand()
+    base = [s for s in specs if s.spec_id == grid.baseline_id(specs)]
+    assert base[0].name("absorb") == "firm_year"
+    del raw["baseline"]["controls"]
+    with pytest.raises(ConfigError, match="name a choice for: controls"):
+        load_config(raw).baseline_id(load_config(raw).expand())
+
+
+def test_same_regression_under_two_names_is_an_error() -> None:
+    raw = copy.deepcopy(BASE)
+    raw["absorb"]["firm_again"] = ["firm"]
+    with pytest.raises(ConfigError, match="same regression under different names"):
+        load_config(raw).expand()
+
+
+def test_jobs_respect_size_and_keep_keys_when_a_sample_is_added() -> None:
+    specs = load_config(BASE).expand()
+    jobs = plan_jobs(specs, specs_per_job=1000, salt="s")
+    assert len(jobs) == 2  # one per sample
+    small = plan_jobs(specs, specs_per_job=5, salt="s")
+    assert all(len(j.specs) <= 8 for j in small)  # a control set's specs stay together
+    assert sorted(s.spec_id for j in small for s in j.specs) == sorted(s.spec_id for s in specs)
+    more = copy.deepcopy(BASE)
+    more["samples"]["early"] = {"range": {"year": {"max": 1945}}}
+    keys = {j.key for j in plan_jobs(load_config(more).expand(), specs_per_job=1000, salt="s")}
+    assert {j.key for j in jobs} <= keys and len(keys) == 3

@@ -1,0 +1,164 @@
+"""Real Snakemake runs of a small grid in a temporary folder (subprocesses, as a user runs them).
+
+Data: statsmodels' Grunfeld investment data (see conftest.py). Checked: the ledger's columns and
+content, a rerun that fits nothing (also after the data file is touched or rewritten with the same
+bytes), an added clustering choice that only adds specifications and demeans nothing again, a run
+killed with SIGKILL that resumes to a byte-identical ledger, parallel and serial runs giving the
+same bytes, and ``snakemake --lint``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.absorb import parse_absorb
+from fegrid.cli import workflow_root
+from fegrid.estimate import Inference, fit_one
+from fegrid.pipeline import LEDGER_COLUMNS
+
+pytestmark = pytest.mark.slow
+
+SNAKEFILE = workflow_root() / "Snakefile"
+
+
+def _snakemake(folder: Path, env: dict, *args: str) -> subprocess.CompletedProcess:
+    cmd = [sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE), "--directory", str(folder),
+           "--configfile", str(folder / "grid.yaml"), "--cores", "2", *args]
+    return subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=folder, timeout=600)
+
+
+def _fegrid(folder: Path, env: dict, *args: str, **kw) -> subprocess.CompletedProcess:
+    cmd = [sys.executable, "-m", "fegrid.cli", *args]
+    return subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=folder, timeout=600, **kw)
+
+
+def _fitted_jobs(result: subprocess.CompletedProcess) -> int:
+    return result.stdout.count("rule fit_job:") + result.stderr.count("rule fit_job:")
+
+
+def _work_logs(folder: Path) -> dict[str, dict]:
+    return {p.stem: json.loads(p.read_text()) for p in (folder / "reports/tiny/cache/fits").glob("*.json")}
+
+
+def test_full_run_rerun_and_incremental(tiny_project: Path, fegrid_env: dict) -> None:
+    first = _snakemake(tiny_project, fegrid_env)
+    assert first.returncode == 0, first.stderr[-3000:]
+    ledger_path = tiny_project / "reports/tiny/ledger.csv"
+    ledger = pd.read_csv(ledger_path)
+    assert list(ledger.columns) == list(LEDGER_COLUMNS)
+    assert ledger["spec_id"].is_monotonic_increasing and ledger["spec_id"].is_unique
+    assert len(ledger) == 2 * 2 * 2 * 2 * 2  # focal x absorb x clustering x sample x usable controls
+    assert ledger["is_baseline"].sum() == 1 and (ledger["status"] == "ok").all()
+    assert (tiny_project / "reports/tiny/ledger.parquet").is_file()
+    assert _fitted_jobs(first) > 1  # several jobs (specs_per_job: 4)
+
+    # the ledger's numbers are the engine's: check the baseline against a direct fit
+    base = ledger[ledger["is_baseline"]].iloc[0]
+    data = pd.read_csv(tiny_project / "grunfeld.csv")
+    direct = fit_one(data, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm", "year"]),
+                     inference=Inference("cluster", (("firm",),)))
+    assert base["estimate"] == pytest.approx(direct.estimate, rel=1e-12)
+    assert base["std_error"] == pytest.approx(direct.std_error, rel=1e-12)
+
+    before = ledger_path.read_bytes()
+    again = _snakemake(tiny_project, fegrid_env)
+    assert again.returncode == 0 and "Nothing to be done" in again.stdout + again.stderr
+
+    # touching the data or rewriting it with the same bytes fits nothing
+    data_file = tiny_project / "grunfeld.csv"
+    os.utime(data_file, (time.time() + 100, time.time() + 100))
+    data_file.write_bytes(data_file.read_bytes())
+    touched = _snakemake(tiny_project, fegrid_env)
+    assert touched.returncode == 0 and _fitted_jobs(touched) == 0
+    assert ledger_path.read_bytes() == before
+
+    # one more clustering choice: only additions in the ledger, no demeaning redone
+    logs_before = set(_work_logs(tiny_project))
+    config = (tiny_project / "grid.yaml").read_text()
+    config = config.replace("  firm: {kind: cluster, by: firm}",
+                            "  firm: {kind: cluster, by: firm}\n  firm_year: {kind: twoway, by: [firm, year]}")
+    (tiny_project / "grid.yaml").write_text(config)
+    plan = _fegrid(tiny_project, fegrid_env, "plan", "--config", "grid.yaml")
+    assert plan.returncode == 0 and "to fit: 16" in plan.stdout, plan.stdout
+    added = _snakemake(tiny_project, fegrid_env)
+    assert added.returncode == 0, added.stderr[-3000:]
+    new_logs = {k: v for k, v in _work_logs(tiny_project).items() if k not in logs_before}
+    assert new_logs and all(v["columns_demeaned"] == 0 for v in new_logs.values())
+    assert sum(v["specs_fitted"] for v in new_logs.values()) == 16
+    assert sum(v["specs_reused"] for v in new_logs.values()) == len(ledger)
+    grown = pd.read_csv(ledger_path)
+    assert len(grown) == len(ledger) + 16
+    old = grown[grown["spec_id"].isin(ledger["spec_id"])].reset_index(drop=True)
+    pd.testing.assert_frame_equal(old, ledger)
+
+
+def test_kill_and_resume_gives_identical_ledger(tiny_project: Path, tmp_path_factory, fegrid_env) -> None:
+    config = (tiny_project / "grid.yaml").read_text().replace(
+        "  postwar: {range: {year: {min: 1946}}}",
+        "  postwar: {range: {year: {min: 1946}}}\n  without: {drop_each: firm}")
+    config = config.replace("jobs: {specs_per_job: 4}", "jobs: {specs_per_job: 16}")
+    (tiny_project / "grid.yaml").write_text(config)
+
+    reference = tmp_path_factory.mktemp("uninterrupted")
+    for name in ("grunfeld.csv", "grid.yaml"):
+        (reference / name).write_bytes((tiny_project / name).read_bytes())
+    clean = _fegrid(reference, fegrid_env, "run", "--config", "grid.yaml", "-c", "2", "--quiet")
+    assert clean.returncode == 0, clean.stderr[-3000:]
+
+    proc = subprocess.Popen([sys.executable, "-m", "fegrid.cli", "run", "--config", "grid.yaml", "-c", "1",
+                             "--quiet"], cwd=tiny_project, env=fegrid_env, stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL, start_new_session=True)
+    fits = tiny_project / "reports/tiny/cache/fits"
+    deadline = time.time() + 300
+    while time.time() < deadline and len(list(fits.glob("*.parquet"))) < 3:
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait()
+    done_before = len(list(fits.glob("*.parquet")))
+    assert 3 <= done_before
+    assert not (tiny_project / "reports/tiny/ledger.csv").exists()
+
+    resumed = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "-c", "2", "--quiet")
+    assert resumed.returncode == 0, resumed.stderr[-3000:]
+    # the jobs finished before the kill are not fitted again (but one killed between writing its
+    # file and Snakemake's bookkeeping may run again)
+    assert _fitted_jobs(resumed) <= len(list(fits.glob("*.parquet"))) - done_before + 1
+    assert (tiny_project / "reports/tiny/ledger.csv").read_bytes() == (
+        reference / "reports/tiny/ledger.csv").read_bytes()
+
+
+def test_serial_and_parallel_runs_give_the_same_bytes(tiny_project: Path, tmp_path_factory,
+                                                      fegrid_env) -> None:
+    other = tmp_path_factory.mktemp("serial")
+    for name in ("grunfeld.csv", "grid.yaml"):
+        (other / name).write_bytes((tiny_project / name).read_bytes())
+    a = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "-c", "2", "--quiet")
+    b = _fegrid(other, fegrid_env, "run", "--config", "grid.yaml", "-c", "1", "--quiet")
+    assert a.returncode == 0 and b.returncode == 0, a.stderr[-2000:] + b.stderr[-2000:]
+    for name in ("ledger.csv", "ledger.parquet"):
+        assert (tiny_project / "reports/tiny" / name).read_bytes() == (other / "reports/tiny" / name).read_bytes()
+
+
+def test_bad_data_through_snakemake_leaves_the_ledger(tiny_project: Path, fegrid_env) -> None:
+    assert _snakemake(tiny_project, fegrid_env).returncode == 0
+    ledger = (tiny_project / "reports/tiny/ledger.csv").read_bytes()
+    data = pd.read_csv(tiny_project / "grunfeld.csv")
+    pd.concat([data, data.iloc[[0]]]).to_csv(tiny_project / "grunfeld.csv", index=False)
+    failed = _snakemake(tiny_project, fegrid_env, "--show-failed-logs")
+    assert failed.returncode != 0
+    assert "panel keys (firm, year) are not unique" in failed.stdout + failed.stderr
+    assert (tiny_project / "reports/tiny/ledger.csv").read_bytes() == ledger
+
+
+def test_snakemake_lint(tiny_project: Path, fegrid_env) -> None:
+    lint = _snakemake(tiny_project, fegrid_env, "--lint")
+    assert lint.returncode == 0, lint.stdout[-3000:] + lint.stderr[-3000:]

@@ -10,9 +10,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block
+
+pytestmark = pytest.mark.slow
 
 TRUE = 0.5
 SEEDS = range(400)

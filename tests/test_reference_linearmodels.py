@@ -17,7 +17,6 @@ import math
 from pathlib import Path
 
 import pytest
-
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import Inference, fit_one
 

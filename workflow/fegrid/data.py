@@ -127,5 +127,5 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
         bad = np.isfinite(w) & (w <= 0)
         if bad.any():
             raise DataError(f"The weights column '{col}' has {int(bad.sum())} value(s) that are not positive.")
-    for name, (_, sample) in grid.sample_defs(levels_for(frame, grid)).items():
+    for _, sample in grid.sample_defs(levels_for(frame, grid)).values():
         apply_sample(frame, sample, grid.panel)

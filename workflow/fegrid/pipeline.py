@@ -14,8 +14,7 @@ import contextlib
 import hashlib
 import json
 import time
-from collections.abc import Callable
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -24,11 +23,11 @@ import pandas as pd
 
 from . import __version__
 from .data import check_data, file_sha256, levels_for, read_table
+from .demo import write_demo_data
 from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block
 from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .samples import apply_sample
-from .demo import write_demo_data
 from .store import FileDemeanStore, FileResultStore, RunPaths, write_csv, write_json, write_parquet
 
 __all__ = [

@@ -235,16 +235,18 @@ def _constant_within(values: np.ndarray | None, codes: np.ndarray) -> bool:
     """True when ``values`` take a single value within every level of ``codes``."""
     if values is None or len(values) == 0:
         return False
-    pairs = pd.DataFrame({"c": codes, "v": values}).drop_duplicates()
-    return bool(pairs["c"].is_unique)
+    last = np.empty(int(codes.max()) + 1)
+    last[codes] = values  # one value per level survives; all must equal it
+    return bool(np.all(last[codes] == values))
 
 
 def _nested(inner: np.ndarray, outer: np.ndarray) -> bool:
     """True when every level of ``inner`` falls within a single level of ``outer``."""
     if len(inner) == 0:
         return True
-    pairs = pd.DataFrame({"i": inner, "o": outer}).drop_duplicates()
-    return bool(pairs["i"].is_unique)
+    last = np.empty(int(inner.max()) + 1, dtype=np.int64)
+    last[inner] = outer
+    return bool(np.all(last[inner] == outer))
 
 
 def _outranks(other: Term, other_levels: int, other_pos: int, levels: int, pos: int) -> bool:

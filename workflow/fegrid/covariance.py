@@ -30,7 +30,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
+import pandas as pd
 
 from .errors import EstimationError
 
@@ -48,10 +48,10 @@ class CovarianceOutcome:
 
 
 def _cluster_meat(scores: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
+    """``sum_g u_g u_g'`` with ``u_g`` the sum of the scores in cluster ``g``; and ``G``."""
     n_groups = int(codes.max()) + 1
-    summer = sp.csr_array((np.ones(len(codes)), (codes, np.arange(len(codes)))), shape=(n_groups, len(codes)))
-    u = summer @ scores
-    return u.T @ u, n_groups
+    u = np.column_stack([np.bincount(codes, scores[:, j], minlength=n_groups) for j in range(scores.shape[1])])
+    return u.T @ u, int(np.count_nonzero(np.bincount(codes, minlength=n_groups)))
 
 
 def _sandwich(bread: np.ndarray, meat: np.ndarray) -> np.ndarray:
@@ -136,10 +136,10 @@ class TwoWay(_Kind):
             raise EstimationError("no residual degrees of freedom are left")
         scores = x * e[:, None]
         a, b = clusters
-        both = a * (int(b.max()) + 1) + b
+        both = pd.factorize(a * (int(b.max()) + 1) + b)[0]
         total = np.zeros((x.shape[1], x.shape[1]))
         counts = []
-        for codes, sign in ((a, 1.0), (b, 1.0), (np.unique(both, return_inverse=True)[1], -1.0)):
+        for codes, sign in ((a, 1.0), (b, 1.0), (both, -1.0)):
             meat, g = _cluster_meat(scores, codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")

@@ -190,6 +190,14 @@ class _Design:
         self._controls: dict[tuple[str, ...], tuple[np.ndarray, np.ndarray, list[str], list[str]]] = {}
         self._regressors: dict[tuple[str, tuple[str, ...]], object] = {}
         self._fits: dict[tuple[str, str, tuple[str, ...]], tuple[float, np.ndarray, np.ndarray, float]] = {}
+        self._diagnostics: dict[str, dict[str, object]] = {}
+        self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
+
+    def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
+        """Absorbed df nested in every cluster dimension (memoised per clustering)."""
+        if dims not in self._nested:
+            self._nested[dims] = self.absorber.nested_df([self.cluster_codes(d) for d in dims])
+        return self._nested[dims]
 
     def demean(self, columns: Sequence[str], store: DemeanStore | None) -> tuple[int, int]:
         todo = [c for c in columns if c not in self.tilde]
@@ -288,6 +296,11 @@ class _Design:
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> dict[str, object]:
+        if focal not in self._diagnostics:
+            self._diagnostics[focal] = self._focal_diagnostics(focal)
+        return self._diagnostics[focal]
+
+    def _focal_diagnostics(self, focal: str) -> dict[str, object]:
         x = self.frame[focal].to_numpy(dtype=float)
         n = len(x)
         xt = self.tilde[focal]
@@ -407,7 +420,7 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
     try:
         cov = covariance_kind(spec.inference.kind)(
             X, e, bread, n_params=X.shape[1], absorbed_df=design.absorber.absorbed_df,
-            nested_df=design.absorber.nested_df, clusters=codes)
+            nested_df=lambda _codes: design.nested_df(spec.inference.by), clusters=codes)
     except EstimationError as exc:
         return SpecResult(status=STATUS_FAILED, message=str(exc), estimate=beta, within_r2=r2,
                           **common)  # type: ignore[arg-type]

@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+
 from fegrid.cli import main
 from fegrid.pipeline import fit_job, gather_ledger, make_plan, snapshot_data
 

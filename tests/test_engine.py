@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+
 from fegrid.absorb import Absorber, EffectTerm, TrendTerm, drop_singletons, parse_absorb
 from fegrid.errors import ConfigError, EstimationError
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block, fit_one

@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 
 import pytest
+
 from fegrid.errors import ConfigError
 from fegrid.grid import load_config, plan_jobs
 

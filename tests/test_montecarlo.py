@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block
 

@@ -17,6 +17,7 @@ import math
 from pathlib import Path
 
 import pytest
+
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import Inference, fit_one
 

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+
 from fegrid.absorb import parse_absorb
 from fegrid.cli import workflow_root
 from fegrid.estimate import Inference, fit_one

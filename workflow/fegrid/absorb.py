@@ -18,7 +18,7 @@ by alternating projections (Gaure 2013) with the line-search acceleration of Gea
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -38,6 +38,7 @@ __all__ = [
     "term_label",
     "factorize",
     "drop_singletons",
+    "LevelCodes",
     "Absorber",
     "DemeanOutcome",
 ]
@@ -160,12 +161,55 @@ def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, 
     return codes, int(codes.max()) + 1 if len(codes) else 0
 
 
-def _term_codes(frame: pd.DataFrame, term: Term) -> np.ndarray:
-    cols = term.columns if isinstance(term, EffectTerm) else (term.group,)
-    return factorize(frame, cols)[0]
+CodesOf = Callable[[tuple[str, ...]], np.ndarray]
 
 
-def drop_singletons(frame: pd.DataFrame, terms: Sequence[Term]) -> np.ndarray:
+class LevelCodes:
+    """Integer codes of columns (or column combinations) of one frame, each computed once.
+
+    :meth:`on_rows` gives the codes of a subset of the rows, renumbered ``0..L-1`` in the same
+    sorted order, without factorizing again: the block's sample is factorized once and every design
+    (complete-case rows less singletons) reuses it.
+    """
+
+    def __init__(self, frame: pd.DataFrame) -> None:
+        self.frame = frame
+        self._codes: dict[tuple[str, ...], np.ndarray] = {}
+
+    def __call__(self, columns: tuple[str, ...]) -> np.ndarray:
+        if columns not in self._codes:
+            self._codes[columns] = factorize(self.frame, columns)[0]
+        return self._codes[columns]
+
+    def on_rows(self, positions: np.ndarray) -> CodesOf:
+        cache: dict[tuple[str, ...], np.ndarray] = {}
+
+        def codes_of(columns: tuple[str, ...]) -> np.ndarray:
+            if columns not in cache:
+                cache[columns] = _densify(self(columns)[positions])
+            return cache[columns]
+
+        return codes_of
+
+
+def _densify(codes: np.ndarray) -> np.ndarray:
+    """Renumber codes to ``0..L-1`` keeping their order."""
+    if len(codes) == 0:
+        return codes
+    present = np.zeros(int(codes.max()) + 1, dtype=bool)
+    present[codes] = True
+    return (np.cumsum(present) - 1)[codes]
+
+
+def _term_columns(term: Term) -> tuple[str, ...]:
+    return term.columns if isinstance(term, EffectTerm) else (term.group,)
+
+
+def _default_codes(frame: pd.DataFrame) -> CodesOf:
+    return lambda columns: factorize(frame, columns)[0]
+
+
+def drop_singletons(frame: pd.DataFrame, terms: Sequence[Term], *, codes_of: CodesOf | None = None) -> np.ndarray:
     """Boolean mask of rows kept after removing singletons iteratively.
 
     A singleton is an observation alone in a group of some absorbed term. Removing one can create
@@ -175,7 +219,8 @@ def drop_singletons(frame: pd.DataFrame, terms: Sequence[Term]) -> np.ndarray:
     keep = np.ones(len(frame), dtype=bool)
     if not terms:
         return keep
-    codes = [_term_codes(frame, t) for t in terms]
+    codes_of = codes_of or _default_codes(frame)
+    codes = [codes_of(_term_columns(t)) for t in terms]
     while True:
         changed = False
         for c in codes:
@@ -295,8 +340,10 @@ class Absorber:
         time: str | None = None,
         tolerance: float = 1e-10,
         max_iterations: int = 10_000,
+        codes_of: CodesOf | None = None,
     ) -> None:
         n = len(frame)
+        codes_of = codes_of or _default_codes(frame)
         self.n_obs = n
         self.tolerance = float(tolerance)
         self.max_iterations = int(max_iterations)
@@ -308,7 +355,7 @@ class Absorber:
         slopes: list[np.ndarray | None] = []
         self._time = frame[time].to_numpy(dtype=float) if time and time in frame else None
         for term in self.terms:
-            codes = _term_codes(frame, term)
+            codes = codes_of(_term_columns(term))
             nlev = int(codes.max()) + 1 if n else 0
             self.levels[term_label(term)] = nlev
             self._codes.append(codes)

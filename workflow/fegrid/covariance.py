@@ -30,33 +30,54 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 
 from .errors import EstimationError
 
-__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "covariance_kind", "cluster_dimensions"]
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_dimensions"]
+
+
+@dataclass(frozen=True)
+class FitPieces:
+    """What a covariance kind needs from one fitted specification.
+
+    ``e`` are the residuals and ``h = X B[:, 0]`` the focal row of ``B X'`` (both scaled by the
+    square root of the weights), so that the focal element of every sandwich ``B M B`` is a sum
+    over observations or clusters of ``h e``: one pass over the data per clustering, whatever the
+    number of controls. ``regressors()`` gives ``X`` itself, for the kinds that need the whole matrix.
+    """
+
+    estimate: float
+    e: np.ndarray
+    h: np.ndarray
+    rss: float
+    bread: np.ndarray
+    within_r2: float
+    regressors: Callable[[], np.ndarray]
 
 
 @dataclass(frozen=True)
 class CovarianceOutcome:
-    """Covariance of the kept regressors with the df of its t distribution."""
+    """Variance of the focal coefficient with the df of its t distribution."""
 
-    matrix: np.ndarray
+    variance: float
     df: float
     n_clusters: tuple[int, ...]
     psd_adjusted: bool = False
 
 
-def _cluster_meat(scores: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
-    """``sum_g u_g u_g'`` with ``u_g`` the sum of the scores in cluster ``g``; and ``G``."""
+def _cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
+    """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``."""
     n_groups = int(codes.max()) + 1
-    u = np.column_stack([np.bincount(codes, scores[:, j], minlength=n_groups) for j in range(scores.shape[1])])
-    return u.T @ u, int(np.count_nonzero(np.bincount(codes, minlength=n_groups)))
+    if values.ndim == 1:
+        return np.bincount(codes, values, minlength=n_groups), n_groups
+    return np.column_stack([np.bincount(codes, values[:, j], minlength=n_groups)
+                            for j in range(values.shape[1])]), n_groups
 
 
-def _sandwich(bread: np.ndarray, meat: np.ndarray) -> np.ndarray:
-    out = bread @ meat @ bread
-    return (out + out.T) / 2
+def _dof(n: int, k_total: int) -> int:
+    if n - k_total <= 0:
+        raise EstimationError("no residual degrees of freedom are left")
+    return n - k_total
 
 
 class _Kind:
@@ -65,17 +86,8 @@ class _Kind:
     name = ""
     dimensions = 0
 
-    def __call__(
-        self,
-        x: np.ndarray,
-        e: np.ndarray,
-        bread: np.ndarray,
-        *,
-        n_params: int,
-        absorbed_df: int,
-        nested_df: Callable[[Sequence[np.ndarray]], int],
-        clusters: Sequence[np.ndarray],
-    ) -> CovarianceOutcome:
+    def __call__(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
+                 clusters: Sequence[np.ndarray]) -> CovarianceOutcome:
         raise NotImplementedError
 
 
@@ -84,25 +96,21 @@ class Iid(_Kind):
 
     name = "iid"
 
-    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        dof = len(e) - n_params - absorbed_df
-        if dof <= 0:
-            raise EstimationError("no residual degrees of freedom are left")
-        return CovarianceOutcome(float(e @ e) / dof * bread, dof, ())
+    def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        dof = _dof(len(fit.e), n_params + absorbed_df)
+        return CovarianceOutcome(fit.rss / dof * float(fit.bread[0, 0]), dof, ())
 
 
-class Robust(Iid):
+class Robust(_Kind):
     """Heteroskedasticity-robust errors with the HC1 factor ``N / (N - k - A)``."""
 
     name = "robust"
 
-    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        n = len(e)
-        dof = n - n_params - absorbed_df
-        if dof <= 0:
-            raise EstimationError("no residual degrees of freedom are left")
-        scores = x * e[:, None]
-        return CovarianceOutcome(n / dof * _sandwich(bread, scores.T @ scores), dof, ())
+    def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(fit.e)
+        dof = _dof(n, n_params + absorbed_df)
+        he = fit.h * fit.e
+        return CovarianceOutcome(n / dof * float(he @ he), dof, ())
 
 
 class OneWay(_Kind):
@@ -111,46 +119,45 @@ class OneWay(_Kind):
     name = "cluster"
     dimensions = 1
 
-    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        n = len(e)
-        k_total = n_params + absorbed_df - nested_df(clusters)
-        if n - k_total <= 0:
-            raise EstimationError("no residual degrees of freedom are left")
-        meat, g = _cluster_meat(x * e[:, None], clusters[0])
+    def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(fit.e)
+        dof = _dof(n, n_params + absorbed_df - nested_df)
+        sums, g = _cluster_sums(fit.h * fit.e, clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
-        factor = g / (g - 1) * (n - 1) / (n - k_total)
-        return CovarianceOutcome(factor * _sandwich(bread, meat), g - 1, (g,))
+        return CovarianceOutcome(g / (g - 1) * (n - 1) / dof * float(sums @ sums), g - 1, (g,))
 
 
 class TwoWay(_Kind):
-    """Errors correlated within the groups of either of two cluster variables."""
+    """Errors correlated within the groups of either of two cluster variables.
+
+    ``clusters`` holds the codes of the two variables and of their intersection.
+    """
 
     name = "twoway"
     dimensions = 2
 
-    def __call__(self, x, e, bread, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        n = len(e)
-        k_total = n_params + absorbed_df - nested_df(clusters)
-        if n - k_total <= 0:
-            raise EstimationError("no residual degrees of freedom are left")
-        scores = x * e[:, None]
-        a, b = clusters
-        both = pd.factorize(a * (int(b.max()) + 1) + b)[0]
-        total = np.zeros((x.shape[1], x.shape[1]))
+    def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = len(fit.e)
+        dof = _dof(n, n_params + absorbed_df - nested_df)
+        scores = fit.regressors() * fit.e[:, None]
+        a, b, both = clusters
+        meat = np.zeros((scores.shape[1], scores.shape[1]))
         counts = []
         for codes, sign in ((a, 1.0), (b, 1.0), (both, -1.0)):
-            meat, g = _cluster_meat(scores, codes)
+            u, g = _cluster_sums(scores, codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
-            total += sign * g / (g - 1) * (n - 1) / (n - k_total) * meat
+            meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)
             counts.append(g)
-        v = _sandwich(bread, total)
+        v = fit.bread @ meat @ fit.bread
+        v = (v + v.T) / 2
         eigval, eigvec = np.linalg.eigh(v)
         adjusted = bool(eigval.min() < 0)
         if adjusted:
             v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
-        return CovarianceOutcome(v, min(counts[0], counts[1]) - 1, (counts[0], counts[1]), adjusted)
+        return CovarianceOutcome(float(v[0, 0]), min(counts[0], counts[1]) - 1, (counts[0], counts[1]),
+                                 adjusted)
 
 
 #: Registry of covariance kinds: the config's name -> estimator.

@@ -26,8 +26,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from .absorb import Absorber, Term, drop_singletons, factorize
-from .covariance import covariance_kind
+from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
+from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError
 
 __all__ = [
@@ -171,8 +171,9 @@ class _Design:
     """Rows, absorbed effects and demeaned columns shared by specifications with the same rows."""
 
     def __init__(self, frame: pd.DataFrame, settings: BlockSettings, n_singletons: int,
-                 design_key: str) -> None:
+                 design_key: str, codes_of: CodesOf) -> None:
         self.frame = frame
+        self.codes_of = codes_of
         self.settings = settings
         self.n_singletons = n_singletons
         self.key = design_key
@@ -181,15 +182,15 @@ class _Design:
         self.sqrt_w = np.sqrt(self.w)
         self.absorber = Absorber(frame, settings.absorb, weights=w, time=settings.time,
                                  tolerance=settings.tolerance,
-                                 max_iterations=settings.max_iterations)
+                                 max_iterations=settings.max_iterations, codes_of=codes_of)
         self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
         self.tilde: dict[str, np.ndarray] = {}
         self.iterations: dict[str, int] = {}
         self.converged: dict[str, bool] = {}
         self._clusters: dict[tuple[str, ...], np.ndarray] = {}
-        self._controls: dict[tuple[str, ...], tuple[np.ndarray, np.ndarray, list[str], list[str]]] = {}
-        self._regressors: dict[tuple[str, tuple[str, ...]], object] = {}
-        self._fits: dict[tuple[str, str, tuple[str, ...]], tuple[float, np.ndarray, np.ndarray, float]] = {}
+        self._controls: dict[tuple[str, ...], tuple[list[str], list[str]]] = {}
+        self._regressors: dict[tuple[str, tuple[str, ...]], tuple] = {}
+        self._fits: dict[tuple[str, str, tuple[str, ...]], FitPieces] = {}
         self._diagnostics: dict[str, dict[str, object]] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
 
@@ -226,73 +227,98 @@ class _Design:
 
     def cluster_codes(self, dim: tuple[str, ...]) -> np.ndarray:
         if dim not in self._clusters:
-            self._clusters[dim] = factorize(self.frame, dim)[0]
+            self._clusters[dim] = self.codes_of(dim)
         return self._clusters[dim]
 
-    def centered_norm(self, col: str) -> float:
-        x = self.frame[col].to_numpy(dtype=float)
-        xc = x - np.average(x, weights=self.w)
-        return float(np.sqrt(np.sum(self.w * xc * xc)))
+    def prepare(self, columns: Sequence[str]) -> None:
+        """Stack the demeaned (weight-scaled) columns into ``Z`` and keep the R factor of ``Z = QR``.
 
-    def controls(self, controls: tuple[str, ...]):
-        """Kept controls' weighted demeaned matrix, its orthonormal basis and what was dropped."""
+        Every specification of the design is then a column subset: ``X'X = R_s'R_s`` for the
+        subset's columns ``R_s`` of ``R``, so collinearity checks, coefficients and residual sums
+        of squares are small dense algebra, exactly as stable as a QR of ``X`` itself.
+        """
+        self.columns = list(columns)
+        self.pos = {c: j for j, c in enumerate(self.columns)}
+        n, m = len(self.frame), len(self.columns)
+        self.Z = np.empty((n, m), order="F")
+        for j, c in enumerate(self.columns):
+            self.Z[:, j] = self.tilde[c] * self.sqrt_w
+        self.R = np.linalg.qr(self.Z, mode="r")
+        self.norm = np.linalg.norm(self.R, axis=0)
+        raw = self.frame[self.columns].to_numpy(dtype=float)
+        raw = raw - (self.w @ raw) / self.w.sum()
+        self.raw_norm = np.sqrt(self.w @ (raw * raw))
+
+    def _absorbed(self, j: int) -> bool:
+        return bool(self.norm[j] <= self.ident_tol * max(self.raw_norm[j], 1e-300))
+
+    def _residual_norm(self, j: int, kept: list[int]) -> float:
+        if not kept:
+            return float(self.norm[j])
+        rk = self.R[:, kept]
+        coef = np.linalg.lstsq(rk, self.R[:, j], rcond=None)[0]
+        return float(np.linalg.norm(self.R[:, j] - rk @ coef))
+
+    def controls(self, controls: tuple[str, ...]) -> tuple[list[str], list[str]]:
+        """Kept controls and the dropped ones with the reason, in the controls' (sorted) order."""
         if controls not in self._controls:
             kept: list[str] = []
             dropped: list[str] = []
-            basis = np.empty((len(self.frame), 0))
             for c in controls:
-                v = self.tilde[c] * self.sqrt_w
-                norm = np.linalg.norm(v)
-                if norm <= self.ident_tol * max(self.centered_norm(c), 1e-300):
+                j = self.pos[c]
+                if self._absorbed(j):
                     dropped.append(f"{c} (absorbed)")
-                    continue
-                r = v - basis @ (basis.T @ v)
-                r = r - basis @ (basis.T @ r)
-                if np.linalg.norm(r) <= 1e-7 * norm:
+                elif self._residual_norm(j, [self.pos[k] for k in kept]) <= 1e-7 * self.norm[j]:
                     dropped.append(f"{c} (collinear)")
-                    continue
-                kept.append(c)
-                basis = np.column_stack([basis, r / np.linalg.norm(r)])
-            mat = np.column_stack([self.tilde[c] * self.sqrt_w for c in kept]) if kept else basis
-            self._controls[controls] = (mat, basis, kept, dropped)
+                else:
+                    kept.append(c)
+            self._controls[controls] = (kept, dropped)
         return self._controls[controls]
 
     def regressors(self, focal: str, controls: tuple[str, ...]):
-        """``(X, (X'X)^{-1}, dropped, problem)`` for the focal regressor with a control set."""
+        """``(columns, (X'X)^{-1}, dropped, problem)`` for the focal regressor with a control set."""
         key = (focal, controls)
         if key not in self._regressors:
-            mat, basis, kept, dropped = self.controls(controls)
-            x = self.tilde[focal] * self.sqrt_w
-            raw_norm = self.centered_norm(focal)
+            kept, dropped = self.controls(controls)
+            j = self.pos[focal]
+            idx = [j] + [self.pos[c] for c in kept]
             problem = ""
-            if raw_norm == 0:
+            if self.raw_norm[j] == 0:
                 problem = f"the focal regressor '{focal}' is constant in this sample"
-            elif np.linalg.norm(x) <= self.ident_tol * raw_norm:
+            elif self._absorbed(j):
                 problem = (f"the focal regressor '{focal}' is absorbed by the fixed effects "
                            f"({', '.join(self.absorber.levels) or 'intercept'}): it does not vary "
                            "within their groups")
-            else:
-                r = x - basis @ (basis.T @ x)
-                if np.linalg.norm(r) <= 1e-7 * np.linalg.norm(x):
-                    problem = (f"the focal regressor '{focal}' is collinear with the controls "
-                               f"{', '.join(kept)}")
+            elif self._residual_norm(j, idx[1:]) <= 1e-7 * self.norm[j]:
+                problem = (f"the focal regressor '{focal}' is collinear with the controls "
+                           f"{', '.join(kept)}")
             if problem:
                 self._regressors[key] = (None, None, dropped, problem)
             else:
-                X = np.column_stack([x, mat])
-                self._regressors[key] = (X, np.linalg.inv(X.T @ X), dropped, "")
+                rs = self.R[:, idx]
+                self._regressors[key] = (idx, np.linalg.inv(rs.T @ rs), dropped, "")
         return self._regressors[key]
 
-    def fit(self, outcome: str, focal: str, controls: tuple[str, ...]):
+    def fit(self, outcome: str, focal: str, controls: tuple[str, ...]) -> FitPieces:
         key = (outcome, focal, controls)
         if key not in self._fits:
-            X, bread, _, _ = self.regressors(focal, controls)
-            y = self.tilde[outcome] * self.sqrt_w
-            beta = bread @ (X.T @ y)
-            e = y - X @ beta
-            tss = float(y @ y)
-            r2 = 1.0 - float(e @ e) / tss if tss > 0 else float("nan")
-            self._fits[key] = (float(beta[0]), e, X, r2)
+            idx, bread, _, _ = self.regressors(focal, controls)
+            yi = self.pos[outcome]
+            rs = self.R[:, idx]
+            beta = bread @ (rs.T @ self.R[:, yi])
+            resid = self.R[:, yi] - rs @ beta
+            rss = float(resid @ resid)
+            tss = float(self.norm[yi] ** 2)
+            # residuals e and the focal row of (X'X)^{-1} X' (h), in one pass over Z
+            weights = np.zeros((len(self.columns), 2))
+            weights[yi, 0] = 1.0
+            weights[idx, 0] -= beta
+            weights[idx, 1] = bread[:, 0]
+            eh = self.Z @ weights
+            self._fits[key] = FitPieces(
+                estimate=float(beta[0]), e=eh[:, 0], h=eh[:, 1], rss=rss, bread=bread,
+                within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
+                regressors=lambda idx=idx: self.Z[:, idx])
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> dict[str, object]:
@@ -304,7 +330,7 @@ class _Design:
         x = self.frame[focal].to_numpy(dtype=float)
         n = len(x)
         xt = self.tilde[focal]
-        raw = self.centered_norm(focal)
+        raw = float(self.raw_norm[self.pos[focal]])
         out: dict[str, object] = {
             "focal_sd": float(np.std(x, ddof=1)) if n > 1 else float("nan"),
             "focal_sd_within": float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
@@ -313,7 +339,8 @@ class _Design:
         }
         unit = self.settings.unit
         if unit is not None and unit in self.frame:
-            codes, n_units = factorize(self.frame, (unit,))
+            codes = self.codes_of((unit,))
+            n_units = int(codes.max()) + 1
             cnt = np.bincount(codes, minlength=n_units)
             mean = np.bincount(codes, x, minlength=n_units) / np.maximum(cnt, 1)
             ss = np.bincount(codes, (x - mean[codes]) ** 2, minlength=n_units)
@@ -372,12 +399,14 @@ def fit_block(
         groups.setdefault(key, (mask, []))[1].append(i)
 
     results: list[SpecResult | None] = [None] * len(specs)
+    level_codes = LevelCodes(frame)
     fit = BlockFit(results=[])
     for mask_key, (mask, members) in groups.items():
         sub = frame.loc[mask]
+        positions = np.flatnonzero(mask)
         keep = np.ones(len(sub), dtype=bool)
         if settings.absorb and not settings.keep_singletons:
-            keep = drop_singletons(sub, settings.absorb)
+            keep = drop_singletons(sub, settings.absorb, codes_of=level_codes.on_rows(positions))
         rows = sub.loc[keep]
         if len(rows) == 0:
             for i in members:
@@ -386,10 +415,12 @@ def fit_block(
                                         "values and singletons")
             continue
         design = _Design(rows, settings, int((~keep).sum()),
-                         _hash(data_key, mask_key, settings.demean_key()))
+                         _hash(data_key, mask_key, settings.demean_key()),
+                         level_codes.on_rows(positions[keep]))
         fit.designs += 1
         cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls)})
         done, reused = design.demean(cols, store)
+        design.prepare(cols)
         fit.columns_demeaned += done
         fit.columns_reused += reused
         for i in members:
@@ -411,20 +442,23 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
         converged=all(design.converged[c] for c in cols),
     )
     common.update(design.focal_diagnostics(spec.focal))
-    X, bread, dropped, problem = design.regressors(spec.focal, spec.controls)
+    _, _, dropped, problem = design.regressors(spec.focal, spec.controls)
     common["controls_dropped"] = "; ".join(dropped)
     if problem:
         return SpecResult(status=STATUS_NOT_IDENTIFIED, message=problem, **common)  # type: ignore[arg-type]
-    beta, e, X, r2 = design.fit(spec.outcome, spec.focal, spec.controls)
+    pieces = design.fit(spec.outcome, spec.focal, spec.controls)
+    beta, r2 = pieces.estimate, pieces.within_r2
     codes = [design.cluster_codes(dim) for dim in spec.inference.by]
+    if len(codes) == 2:  # two-way clustering also sums over the intersection of the two
+        codes.append(design.cluster_codes(spec.inference.by[0] + spec.inference.by[1]))
     try:
         cov = covariance_kind(spec.inference.kind)(
-            X, e, bread, n_params=X.shape[1], absorbed_df=design.absorber.absorbed_df,
-            nested_df=lambda _codes: design.nested_df(spec.inference.by), clusters=codes)
+            pieces, n_params=pieces.bread.shape[0], absorbed_df=design.absorber.absorbed_df,
+            nested_df=design.nested_df(spec.inference.by), clusters=codes)
     except EstimationError as exc:
         return SpecResult(status=STATUS_FAILED, message=str(exc), estimate=beta, within_r2=r2,
                           **common)  # type: ignore[arg-type]
-    se = float(np.sqrt(cov.matrix[0, 0]))
+    se = float(np.sqrt(cov.variance))
     t = beta / se if se > 0 else float("nan")
     p = float(2 * stats.t.sf(abs(t), cov.df)) if se > 0 else float("nan")
     crit = float(stats.t.ppf(0.5 + s.level / 2, cov.df))

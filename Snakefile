@@ -14,6 +14,7 @@ if not config:
 include: "workflow/rules/common.smk"
 include: "workflow/rules/fit.smk"
 include: "workflow/rules/ledger.smk"
+include: "workflow/rules/report.smk"
 
 
 rule all:

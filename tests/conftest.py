@@ -65,6 +65,7 @@ control_sets:
   combinations_of: [capital, value]
 baseline: {focal: value, absorb: firm_year, clustering: firm, sample: all, controls: capital}
 jobs: {specs_per_job: 4}
+joint_inference: {draws: 20, draws_per_job: 10, seed: 7}
 """
 
 

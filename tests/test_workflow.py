@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -162,3 +163,24 @@ def test_bad_data_through_snakemake_leaves_the_ledger(tiny_project: Path, fegrid
 def test_snakemake_lint(tiny_project: Path, fegrid_env) -> None:
     lint = _snakemake(tiny_project, fegrid_env, "--lint")
     assert lint.returncode == 0, lint.stdout[-3000:] + lint.stderr[-3000:]
+
+
+def test_reports_and_snakemake_report(tiny_project: Path, fegrid_env) -> None:
+    assert _snakemake(tiny_project, fegrid_env).returncode == 0
+    run = tiny_project / "reports/tiny"
+    for name in ("summary.csv", "summary.md", "summary.tex", "choices.csv", "joint_tests.csv", "appendix.tex",
+                 "manifest.json", "REPLICATION.md", "figures/curve-invest--value.png",
+                 "figures/curve-invest--capital.pdf"):
+        assert (run / name).is_file(), name
+    manifest = json.loads((run / "manifest.json").read_text())
+    assert manifest["specifications"] == 32 and manifest["seeds"] == {"joint_inference.seed": 7}
+    assert {"fit_job", "gather_ledger", "draw_null_curves"} <= set(manifest["stages"])
+    joint = pd.read_csv(run / "joint_tests.csv")
+    assert set(joint["statistic"]) == {"median_estimate", "share_significant", "stouffer_z"}
+    assert (joint["draws"] == 20).all()
+    if shutil.which("pdflatex"):
+        assert (run / "appendix.pdf").read_bytes()[:4] == b"%PDF"
+    html = tiny_project / "report.html"
+    made = _snakemake(tiny_project, fegrid_env, "--report", str(html))
+    assert made.returncode == 0, made.stderr[-3000:]
+    assert html.stat().st_size > 10_000

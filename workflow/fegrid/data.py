@@ -104,7 +104,7 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
                     f"The {role} column '{col}' is not numeric (values such as {example}); recode it "
                     "as numbers before fitting."
                 )
-    for role in ("unit", "time", "cluster"):
+    for role in ("unit", "time", "cluster", "resampling"):
         for col in roles[role]:
             n_missing = int(frame[col].isna().sum())
             if n_missing:

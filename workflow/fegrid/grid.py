@@ -160,6 +160,10 @@ class Grid:
     max_iterations: int
     keep_singletons: bool
     specs_per_job: int
+    draws: int = 500
+    seed: int = 20201
+    resample: str = ""
+    draws_per_job: int = 50
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     # ---- columns ----------------------------------------------------------------------------
@@ -184,6 +188,7 @@ class Grid:
             "cluster": sorted({c for inf in self.clustering.values() for c in inf.columns()}),
             "sample filter": sorted(set(sample_cols)),
             "weights": sorted({w for w in self.weights.values() if w}),
+            "resampling": [self.resample] if self.draws and self.resample != self.panel.unit else [],
         }
 
     def columns(self) -> list[str]:
@@ -409,6 +414,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
                 f"are: {', '.join(map(str, grid_names[dim]))}."
             )
     est = raw.get("estimation") or {}
+    joint = raw.get("joint_inference") or {}
     return Grid(
         run_name=raw["run_name"],
         data_path=data["path"],
@@ -427,6 +433,10 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         max_iterations=int(est.get("max_iterations", 10_000)),
         keep_singletons=bool(est.get("keep_singletons", False)),
         specs_per_job=int((raw.get("jobs") or {}).get("specs_per_job", 2000)),
+        draws=int(joint.get("draws", 500)),
+        seed=int(joint.get("seed", 20201)),
+        resample=str(joint.get("resample", panel.unit)),
+        draws_per_job=int(joint.get("draws_per_job", 50)),
         raw=raw,
     )
 

@@ -13,6 +13,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import math
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -26,9 +27,10 @@ from .data import check_data, file_sha256, levels_for, read_table
 from .demo import write_demo_data
 from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block
+from .figures import draw_curve, pair_slug, save_curve
 from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .samples import apply_sample
-from .store import FileDemeanStore, FileResultStore, RunPaths, write_csv, write_json, write_parquet
+from .store import FileDemeanStore, FileResultStore, RunPaths, write_csv, write_json, write_parquet, write_text
 
 __all__ = [
     "LEDGER_COLUMNS",
@@ -64,6 +66,22 @@ class Plan:
     @property
     def snapshot_path(self) -> Path:
         return self.paths.snapshot(self.snapshot_key)
+
+    @property
+    def pairs(self) -> list[tuple[str, str]]:
+        """Outcome x focal pairs of the grid, sorted."""
+        return sorted({(s.outcome, s.focal) for s in self.specs})
+
+    def figure_paths(self, ext: str) -> list[Path]:
+        return [self.paths.figure(pair_slug(o, f), ext) for o, f in self.pairs]
+
+    @property
+    def joint_key(self) -> str:
+        return joint_key(self.grid, self.snapshot_key, self.specs)
+
+    def joint_paths(self) -> list[Path]:
+        chunks = math.ceil(self.grid.draws / self.grid.draws_per_job) if self.grid.draws else 0
+        return [self.paths.joint_draws(self.joint_key, i) for i in range(chunks)]
 
     def fit_paths(self) -> list[Path]:
         return [self.paths.fit(j.key) for j in self.jobs]
@@ -257,3 +275,99 @@ def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
         if isinstance(result, dict):
             print(json.dumps(result, sort_keys=True), file=fh)
     return result
+
+
+# ---- reports ---------------------------------------------------------------------------------------
+
+def joint_key(grid: Grid, snapshot_key: str, specs: Sequence[Spec]) -> str:
+    """Key of a grid's bootstrap draws: data, settings, specifications and the draws' settings."""
+    h = hashlib.sha256((_salt(snapshot_key, grid) + json.dumps(
+        [grid.seed, grid.resample, grid.draws_per_job])).encode())
+    for s in sorted(specs, key=lambda s: s.spec_id):
+        h.update(s.canonical.encode())
+    return h.hexdigest()[:16]
+
+
+def read_ledger(path: str | Path) -> pd.DataFrame:
+    return pd.read_parquet(path)
+
+
+def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf: str | Path) -> None:
+    """The specification-curve figure of the outcome x focal pair named by ``slug``."""
+    led = read_ledger(ledger)
+    part = led[[pair_slug(o, f) == slug for o, f in zip(led["outcome"], led["focal"])]]
+    if part.empty:
+        raise FegridError(f"No specification of the ledger belongs to the pair '{slug}'.")
+    save_curve(draw_curve(part, level=grid.level), png, pdf)
+
+
+def summarise(grid: Grid, ledger: str | Path, out_dir: str | Path) -> None:
+    from .report import write_summaries
+
+    write_summaries(read_ledger(ledger), grid.level, out_dir)
+
+
+def draw_null_chunk(grid: Grid, snapshot: str | Path, key: str, chunk: int, out: str | Path) -> dict[str, Any]:
+    """Bootstrap draws ``chunk * draws_per_job ...`` of the whole grid (see :mod:`fegrid.joint`)."""
+    from .joint import draw_curves
+
+    started = time.perf_counter()
+    snapshot = Path(snapshot)
+    frame = pd.read_parquet(snapshot)
+    specs = grid.expand(levels_for(frame, grid))
+    if joint_key(grid, snapshot.stem, specs) != key:
+        raise FegridError(f"The bootstrap draws {key} are not those of the current grid; run again.")
+    first = chunk * grid.draws_per_job
+    draws = range(first, min(first + grid.draws_per_job, grid.draws))
+    table = draw_curves(grid, frame, specs, draws, seed=grid.seed, column=grid.resample)
+    write_parquet(out, table)
+    return {"chunk": chunk, "draws": len(draws), "seconds": round(time.perf_counter() - started, 3)}
+
+
+def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path], out_csv: str | Path,
+               out_md: str | Path) -> pd.DataFrame:
+    """Joint tests of every outcome x focal pair from the ledger and the bootstrap draws."""
+    from tabulate import tabulate
+
+    from .joint import joint_tests
+
+    led = read_ledger(ledger)
+    draws = (pd.concat([pd.read_parquet(f) for f in draw_files], ignore_index=True) if draw_files
+             else pd.DataFrame(columns=["draw", "spec_id", "estimate", "std_error", "df_inference"]))
+    table = joint_tests(led, draws, grid.level) if draw_files else joint_tests(led.iloc[0:0], draws, grid.level)
+    write_csv(out_csv, table)
+    md = ["# Joint tests across the specification curve", "",
+          f"{grid.draws} bootstrap draws under the null (seed {grid.seed}, resampling `{grid.resample}`).", ""]
+    md.append(tabulate(table, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g")
+              if len(table) else "No joint tests were run.")
+    write_text(out_md, "\n".join(md) + "\n")
+    return table
+
+
+def appendix(grid: Grid, ledger: str | Path, joint_csv: str | Path, out: str | Path) -> None:
+    from .report import figure_names, render_appendix
+
+    led = read_ledger(ledger)
+    joint = pd.read_csv(joint_csv) if Path(joint_csv).stat().st_size > 1 else None
+    render_appendix(grid, led, joint, figure_names(led), out, draws=grid.draws, seed=grid.seed,
+                    resample=grid.resample)
+
+
+def compile_appendix(tex: str | Path, pdf: str | Path) -> None:
+    from .report import compile_latex
+
+    try:
+        compile_latex(tex, pdf)
+    except RuntimeError as exc:
+        raise FegridError(f"The appendix {tex} did not compile: {exc}") from None
+
+
+def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs: Mapping[str, str],
+               benchmarks: Sequence[str], manifest: str | Path, replication: str | Path, n_specs: int) -> None:
+    from .cli import workflow_root
+    from .provenance import build_manifest, write_provenance
+
+    man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs,
+                         seeds={"joint_inference.seed": grid.seed if grid.draws else None},
+                         outputs=outputs, benchmarks=benchmarks, workflow_root=workflow_root())
+    write_provenance(man, manifest, replication, config_path=config_path, draws=grid.draws, seed=grid.seed)

@@ -112,6 +112,19 @@ class RunPaths:
     def timings(self) -> Path:
         return self.run / "timings.csv"
 
+    def figure(self, slug: str, ext: str) -> Path:
+        return self.run / "figures" / f"curve-{slug}.{ext}"
+
+    def joint_draws(self, key: str, chunk: int) -> Path:
+        return self.cache / "joint" / key / f"draws-{chunk:04d}.parquet"
+
+    def file(self, name: str) -> Path:
+        """A report file directly in the run folder (summary.csv, appendix.tex, manifest.json...)."""
+        return self.run / name
+
+    def benchmark(self, rule: str, name: str) -> Path:
+        return self.run / "benchmarks" / rule / f"{name}.tsv"
+
 
 class FileDemeanStore:
     """Demeaned columns kept as ``.npy`` files named by the hash of their content's recipe.

@@ -6,6 +6,8 @@ rule snapshot_data:
         snapshot=str(PLAN.snapshot_path),
     log:
         f"{RUN}/logs/snapshot_data.log",
+    benchmark:
+        f"{RUN}/benchmarks/snapshot_data/all.tsv"
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -23,6 +25,8 @@ rule fit_job:
         store=lambda wildcards, output: str(Path(output.results).parent.parent),
     log:
         f"{RUN}/logs/fit_job/{{job}}.log",
+    benchmark:
+        f"{RUN}/benchmarks/fit_job/{{job}}.tsv"
     wildcard_constraints:
         job="[0-9a-f]{16}",
     conda:

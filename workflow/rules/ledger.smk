@@ -13,6 +13,8 @@ rule gather_ledger:
         grid_digest=GRID_DIGEST,
     log:
         f"{RUN}/logs/gather_ledger.log",
+    benchmark:
+        f"{RUN}/benchmarks/gather_ledger/all.tsv"
     conda:
         "../envs/fegrid.yaml"
     script:

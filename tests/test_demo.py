@@ -1,0 +1,44 @@
+"""The README's demo, end to end, in a fresh folder: INVENTED orchard data, the demo grid, every
+report; the appendix PDF must show the baseline estimate as the ledger has it."""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.cli import workflow_root
+from fegrid.demo import TRUE_EFFECT
+
+pytestmark = pytest.mark.slow
+
+
+def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
+    config = workflow_root() / "config" / "config.yaml"
+    proc = subprocess.run([sys.executable, "-m", "fegrid.cli", "run", "--config", str(config), "-c", "2"],
+                          cwd=tmp_path, capture_output=True, text=True, env=fegrid_env, timeout=3000)
+    assert proc.returncode == 0, proc.stderr[-4000:]
+    run = tmp_path / "reports" / "demo"
+    ledger = pd.read_csv(run / "ledger.csv")
+    assert len(ledger) == 494
+    base = ledger[ledger["is_baseline"]].iloc[0]
+    # the invented truth is recovered by the baseline within its interval; pooled OLS overstates it
+    assert base["ci_low"] <= TRUE_EFFECT <= base["ci_high"]
+    pooled = ledger[(ledger["absorb"] == "pooled") & (ledger["focal"] == "irrigation")]
+    assert (pooled["estimate"] > 3 * TRUE_EFFECT).all()
+    organic = ledger[(ledger["focal"] == "organic") & (ledger["absorb"] != "pooled")]
+    assert (organic["status"] == "not_identified").all()
+    assert "fertilizer" in ledger["controls"].to_string()
+    joint = pd.read_csv(run / "joint_tests.csv")
+    assert (joint["draws"] == 500).all()
+    for name in ("manifest.json", "REPLICATION.md", "summary.tex", "appendix.tex",
+                 "figures/curve-log_yield--irrigation.pdf"):
+        assert (run / name).is_file(), name
+    if shutil.which("pdflatex"):
+        text = subprocess.run(["pdftotext", "-layout", str(run / "appendix.pdf"), "-"], capture_output=True,
+                              text=True).stdout
+        assert f"{base['estimate']:.4f}" in text

@@ -1,0 +1,155 @@
+"""Joint inference across the specification curve (Simonsohn, Simmons & Nelson 2020).
+
+Is the curve as a whole more than the grid would give under the null of no effect? For every
+specification ``k`` with estimate ``b_k``, the null is imposed by ``y*_k = y - b_k x``; bootstrap
+samples are drawn (the same draw for every specification; whole units or clusters are drawn with
+replacement, never rows, and a unit drawn twice enters as two units); the whole grid is refitted
+on each draw. Because the fit is linear, the estimate on ``y*_k`` is the draw's ordinary estimate
+less ``b_k``, with the same residuals, so each draw is one ordinary refit of the grid.
+
+Three statistics of the curve are compared with their bootstrap distributions under the null,
+each curve (observed or drawn) read in its own dominant direction, the sign of its median:
+
+* the median estimate (compared in absolute value);
+* the share of specifications significant at ``1 - level`` with the dominant sign;
+* Stouffer's Z of the specifications' p-values: ``sum_k s_k Phi^{-1}(1 - p_k / 2) / sqrt(K)`` with
+  ``s_k = +1`` when estimate ``k`` has the dominant sign and ``-1`` otherwise.
+
+Draw ``d`` uses ``numpy.random.default_rng([seed, d])``, so results do not depend on how the draws
+are split into jobs or in which order jobs run.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from .errors import FegridError
+from .estimate import fit_block
+from .grid import Grid, Spec
+from .samples import apply_sample
+from .summary import PAIR
+
+__all__ = ["resample_panel", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS"]
+
+STATISTICS = ("median_estimate", "share_significant", "stouffer_z")
+
+
+def resample_panel(frame: pd.DataFrame, column: str, unit: str, rng: np.random.Generator) -> pd.DataFrame:
+    """Draw the levels of ``column`` with replacement and stack their rows.
+
+    Every draw of a level becomes a new level (its position in the draw), and the units inside it
+    are relabelled with that position, so that a unit drawn twice has two fixed effects.
+    """
+    codes, levels = pd.factorize(frame[column], sort=True)
+    n_levels = len(levels)
+    order = np.argsort(codes, kind="stable")
+    counts = np.bincount(codes, minlength=n_levels)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    picks = rng.integers(0, n_levels, size=n_levels)
+    lengths = counts[picks]
+    offsets = np.repeat(starts[picks] - np.concatenate([[0], np.cumsum(lengths)[:-1]]), lengths)
+    rows = order[offsets + np.arange(lengths.sum())]
+    out = frame.iloc[rows].reset_index(drop=True)
+    position = np.repeat(np.arange(n_levels), lengths)
+    unit_codes = pd.factorize(out[unit], sort=True)[0]
+    out[unit] = position * (int(unit_codes.max()) + 1) + unit_codes
+    if column != unit:
+        out[column] = position
+    return out
+
+
+def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: Sequence[int], *,
+                seed: int, column: str) -> pd.DataFrame:
+    """Refit ``specs`` on each bootstrap draw; one row per draw and specification."""
+    by_block: dict[str, list[Spec]] = {}
+    for spec in specs:
+        by_block.setdefault(spec.block_key, []).append(spec)
+    rows: list[dict[str, Any]] = []
+    for d in draws:
+        boot = resample_panel(frame, column, grid.panel.unit, np.random.default_rng([seed, d]))
+        samples: dict[str, pd.DataFrame | None] = {}
+        for bkey in sorted(by_block):
+            block = by_block[bkey]
+            skey = repr(block[0].sample.canonical())
+            if skey not in samples:
+                try:
+                    samples[skey] = apply_sample(boot, block[0].sample, grid.panel)
+                except FegridError:  # this draw left the sample empty
+                    samples[skey] = None
+            part = samples[skey]
+            if part is None:
+                rows.extend({"draw": d, "spec_id": s.spec_id, "estimate": np.nan, "std_error": np.nan,
+                             "df_inference": np.nan} for s in block)
+                continue
+            fit = fit_block(part, grid.block_settings(block[0]), [s.request() for s in block])
+            rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
+                         "df_inference": r.df_inference} for r in fit.results)
+    return pd.DataFrame(rows, columns=["draw", "spec_id", "estimate", "std_error", "df_inference"])
+
+
+def curve_statistics(estimate: np.ndarray, p_value: np.ndarray, dominant: float, alpha: float) -> dict[str, float]:
+    """The three statistics of one curve (see the module docstring)."""
+    ok = np.isfinite(estimate) & np.isfinite(p_value)
+    est, p = estimate[ok], np.clip(p_value[ok], 1e-300, 1.0)
+    if len(est) == 0:
+        return dict.fromkeys(STATISTICS, np.nan)
+    signs = np.where(np.sign(est) == dominant, 1.0, -1.0)
+    return {
+        "median_estimate": float(np.median(est)),
+        "share_significant": float(np.mean((p < alpha) & (np.sign(est) == dominant))),
+        "stouffer_z": float(np.sum(signs * stats.norm.isf(p / 2)) / np.sqrt(len(est))),
+    }
+
+
+def _dominant(estimates: np.ndarray | pd.Series) -> float:
+    """The curve's dominant sign: the sign of its median (+1 for a median of zero)."""
+    values = np.asarray(estimates, dtype=float)
+    values = values[np.isfinite(values)]
+    return float(np.sign(np.median(values))) or 1.0 if len(values) else 1.0
+
+
+def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.DataFrame:
+    """Observed statistics and bootstrap p-values per outcome x focal pair.
+
+    The p-value is the share of draws whose statistic, under the imposed null, is at least as
+    extreme as the observed one. The direction is not fixed in advance: each curve, observed or
+    drawn, is read in its own dominant direction (the median is compared in absolute value), so
+    that choosing the direction after seeing the data does not halve the p-values.
+    """
+    alpha = 1.0 - level
+    out = []
+    fitted = ledger[ledger["status"] == "ok"]
+    for (outcome, focal), part in fitted.groupby(PAIR, sort=True):
+        obs_est = part["estimate"].to_numpy(dtype=float)
+        dominant = _dominant(obs_est)
+        observed = curve_statistics(obs_est, part["p_value"].to_numpy(dtype=float), dominant, alpha)
+        merged = draws.merge(part[["spec_id", "estimate"]].rename(columns={"estimate": "observed"}),
+                             on="spec_id", how="inner")
+        merged["centered"] = merged["estimate"] - merged["observed"]
+        t = merged["centered"] / merged["std_error"]
+        merged["p_null"] = 2 * stats.t.sf(np.abs(t), merged["df_inference"])
+        per_draw = pd.DataFrame([
+            curve_statistics(g["centered"].to_numpy(), g["p_null"].to_numpy(), _dominant(g["centered"]), alpha)
+            for _, g in merged.groupby("draw", sort=True)
+        ])
+        n_draws = len(per_draw)
+        for stat in STATISTICS:
+            sim = per_draw[stat].to_numpy(dtype=float) if n_draws else np.array([])
+            sim = sim[np.isfinite(sim)]
+            if stat == "median_estimate":
+                extreme = np.abs(sim) >= abs(observed[stat])
+            else:
+                extreme = sim >= observed[stat]
+            out.append({
+                "outcome": outcome, "focal": focal, "statistic": stat, "observed": observed[stat],
+                "p_value": float(extreme.mean()) if len(sim) else float("nan"),
+                "draws": int(len(sim)), "specs": int(len(part)),
+                "dominant_sign": "+" if dominant > 0 else "-",
+            })
+    return pd.DataFrame(out, columns=["outcome", "focal", "statistic", "observed", "p_value", "draws", "specs",
+                                      "dominant_sign"])

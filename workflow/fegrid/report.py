@@ -1,0 +1,289 @@
+"""Reports from a ledger: summary tables (CSV, Markdown, LaTeX) and the LaTeX appendix.
+
+The appendix (``appendix.tex``) compiles on its own with pdflatex and can also be ``\\input`` into
+a paper: it detects whether a document has already begun and only then skips its own preamble.
+Figures are looked up under ``\\fegriddir`` (empty by default); a paper that inputs the appendix
+from elsewhere sets it first, e.g. ``\\newcommand{\\fegriddir}{reports/demo/}``. A paper needs the
+packages booktabs, longtable and graphicx.
+"""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import tempfile
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from tabulate import tabulate
+
+from . import __version__
+from .figures import pair_slug
+from .grid import DIMENSIONS, Grid
+from .store import write_csv, write_text
+from .summary import PAIR, choice_medians, curve_summary
+
+__all__ = ["latex_escape", "write_summaries", "render_appendix", "compile_latex", "significance_marks",
+           "figure_names"]
+
+_LATEX_SPECIAL = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
+                  "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}"}
+
+
+def latex_escape(text: object) -> str:
+    """Escape LaTeX's special characters in user-supplied names.
+
+    >>> latex_escape("R&D_share 10%")
+    'R\\\\&D\\\\_share 10\\\\%'
+    """
+    return "".join(_LATEX_SPECIAL.get(ch, ch) for ch in str(text))
+
+
+def significance_marks(p: float, level: float) -> str:
+    """``*`` at 1 - level, ``**`` at a fifth of it, ``***`` at a fiftieth (0.05/0.01/0.001 at 95%)."""
+    alpha = 1.0 - level
+    if not np.isfinite(p):
+        return ""
+    return "***" if p < alpha / 50 else "**" if p < alpha / 5 else "*" if p < alpha else ""
+
+
+def _num(x: float, digits: int = 4) -> str:
+    if x is None or not np.isfinite(x):
+        return ""
+    if x != 0 and (abs(x) < 10 ** (-digits + 1) or abs(x) >= 1e6):
+        return f"{x:.{digits - 1}e}"
+    return f"{x:.{digits}f}"
+
+
+def _p(p: float) -> str:
+    if not np.isfinite(p):
+        return ""
+    return "$<$0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def _pct(x: float) -> str:
+    return "" if not np.isfinite(x) else f"{100 * x:.1f}\\%"
+
+
+def write_summaries(ledger: pd.DataFrame, level: float, out_dir: str | Path) -> dict[str, Path]:
+    """summary.csv / .md / .tex (one row per outcome x focal) and choices.csv / .md (per choice)."""
+    out_dir = Path(out_dir)
+    summ = curve_summary(ledger, level)
+    moves = choice_medians(ledger)
+    paths = {
+        "summary_csv": write_csv(out_dir / "summary.csv", summ),
+        "choices_csv": write_csv(out_dir / "choices.csv", moves),
+        "summary_md": write_text(out_dir / "summary.md", _summary_markdown(summ, moves, level)),
+        "summary_tex": write_text(out_dir / "summary.tex", _summary_table(summ, level)),
+    }
+    return paths
+
+
+def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float) -> str:
+    lines = ["# Specification curve summary", ""]
+    cols = {"outcome": "outcome", "focal": "focal", "specs": "specs", "fitted": "fitted",
+            "not_identified": "not identified", "failed": "failed", "baseline_estimate": "baseline",
+            "baseline_percentile": "baseline percentile", "median": "median", "q25": "q25", "q75": "q75",
+            "min": "min", "max": "max", "share_baseline_sign": "share with baseline's sign",
+            "share_significant_dominant": f"share significant at {1 - level:.2g} (dominant sign)"}
+    lines.append(tabulate(summ[list(cols)].rename(columns=cols), headers="keys", tablefmt="github",
+                          showindex=False, floatfmt=".4g"))
+    lines += ["", "## Median estimate under each choice", ""]
+    if len(moves):
+        lines.append(tabulate(moves, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
+    return "\n".join(lines) + "\n"
+
+
+def _summary_table(summ: pd.DataFrame, level: float) -> str:
+    rows = []
+    for r in summ.itertuples(index=False):
+        rows.append(
+            f"{latex_escape(r.outcome)} & {latex_escape(r.focal)} & {r.specs} & {r.fitted} & "
+            f"{r.not_identified} & {r.failed} & {_num(r.baseline_estimate)} & "
+            f"{'' if not np.isfinite(r.baseline_percentile) else f'{r.baseline_percentile:.0f}'} & "
+            f"{_num(r.median)} & [{_num(r.q25)}, {_num(r.q75)}] & [{_num(r.min)}, {_num(r.max)}] & "
+            f"{_pct(r.share_baseline_sign)} & {_pct(r.share_significant_dominant)} \\\\")
+    return "\n".join([
+        r"\begin{tabular}{@{}llrrrrrrrccrr@{}}",
+        r"\toprule",
+        r"outcome & focal & specs & fitted & not id. & failed & baseline & pct. & median & IQR & range & "
+        r"same sign & signif. \\",
+        r"\midrule", *rows, r"\bottomrule", r"\end{tabular}", ""])
+
+
+def _joint_table(joint: pd.DataFrame | None) -> str:
+    if joint is None or joint.empty:
+        return "No joint tests were run (\\texttt{joint\\_inference.draws} is 0).\n"
+    names = {"median_estimate": "median estimate", "share_significant": "share significant, dominant sign",
+             "stouffer_z": "Stouffer's $Z$"}
+    rows = []
+    for r in joint.itertuples(index=False):
+        p = "" if not np.isfinite(r.p_value) else (f"$<{1 / r.draws:.3g}$" if r.p_value == 0 else f"{r.p_value:.3f}")
+        obs = _pct(r.observed) if r.statistic == "share_significant" else _num(r.observed)
+        rows.append(f"{latex_escape(r.outcome)} & {latex_escape(r.focal)} & {names[r.statistic]} & {obs} & {p} "
+                    f"& {r.draws} \\\\")
+    return "\n".join([r"\begin{tabular}{@{}lllrrr@{}}", r"\toprule",
+                      r"outcome & focal & statistic & observed & $p$ & draws \\", r"\midrule", *rows,
+                      r"\bottomrule", r"\end{tabular}", ""])
+
+
+def _choices_table(moves: pd.DataFrame) -> str:
+    rows = []
+    for (outcome, focal), part in moves.groupby(PAIR, sort=True):
+        for dim, sub in part.groupby("dimension", sort=False):
+            for i, r in enumerate(sub.itertuples(index=False)):
+                rows.append(f"{latex_escape(outcome) if i == 0 else ''} & {latex_escape(focal) if i == 0 else ''} & "
+                            f"{latex_escape(dim) if i == 0 else ''} & {latex_escape(r.choice)} & {r.specs} & "
+                            f"{_num(r.median)} & {r.shift:+.4f} \\\\")
+            rows.append(r"\addlinespace[2pt]")
+    return "\n".join([r"\begin{longtable}{@{}lllp{4.2cm}rrr@{}}", r"\toprule",
+                      r"outcome & focal & dimension & choice & specs & median & shift \\", r"\midrule",
+                      r"\endhead", *rows, r"\bottomrule", r"\end{longtable}", ""])
+
+
+def _spec_table(ledger: pd.DataFrame, level: float) -> str:
+    dims = [d for d in DIMENSIONS if d not in PAIR and ledger[d].nunique() > 1]
+    head = " & ".join(["id", *dims, "estimate", "s.e.", "$p$", "$N$"])
+    colspec = "@{}l" + "l" * len(dims) + "rrrr@{}"
+    body = []
+    order = ["outcome", "focal", *dims, "spec_id"]
+    for (outcome, focal), part in ledger.sort_values(order).groupby(PAIR, sort=True):
+        span = 5 + len(dims)
+        body.append(rf"\multicolumn{{{span}}}{{@{{}}l}}{{\textbf{{{latex_escape(outcome)} on "
+                    rf"{latex_escape(focal)}}}}} \\")
+        for r in part.itertuples(index=False):
+            cells = [r"\texttt{" + r.spec_id[:8] + "}"] + [latex_escape(getattr(r, d)) for d in dims]
+            if r.status == "ok":
+                marks = significance_marks(r.p_value, level)
+                bold = r"\bfseries " if r.is_baseline else ""
+                cells += [f"{bold}{_num(r.estimate)}{marks}", _num(r.std_error), _p(r.p_value),
+                          str(r.n_obs)]
+            else:
+                cells += [rf"\multicolumn{{3}}{{c}}{{\emph{{{latex_escape(r.status.replace('_', ' '))}}}}}",
+                          str(r.n_obs)]
+            body.append(" & ".join(cells) + r" \\")
+        body.append(r"\addlinespace[3pt]")
+    return "\n".join([r"{\scriptsize\setlength{\tabcolsep}{3.5pt}", rf"\begin{{longtable}}{{{colspec}}}",
+                      r"\toprule", head + r" \\", r"\midrule", r"\endfirsthead", r"\toprule", head + r" \\",
+                      r"\midrule", r"\endhead", r"\bottomrule", r"\endfoot", *body, r"\end{longtable}}", ""])
+
+
+_PREAMBLE = r"""% fegrid robustness appendix. Compiles on its own (pdflatex appendix.tex) or \input into a paper
+% that loads booktabs, longtable and graphicx. Set \fegriddir to this folder when inputting from elsewhere.
+\makeatletter
+\ifx\@onlypreamble\@notprerr
+  \def\fegrid@begin{}\def\fegrid@end{}%
+\else
+  \documentclass[11pt]{article}
+  \usepackage[margin=2.2cm]{geometry}
+  \usepackage{booktabs,longtable,graphicx}
+  \def\fegrid@begin{\begin{document}}\def\fegrid@end{\end{document}}%
+\fi
+\makeatother
+\providecommand{\fegriddir}{}
+\csname fegrid@begin\endcsname
+"""
+
+
+def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None, figures: Sequence[str],
+                    out: str | Path, *, draws: int = 0, seed: int | None = None,
+                    resample: str | None = None) -> Path:
+    """Write ``appendix.tex``: notes, summary, joint tests, figures, choices, every specification."""
+    level = grid.level
+    summ = curve_summary(ledger, level)
+    moves = choice_medians(ledger)
+    alpha = 1.0 - level
+    counts = ledger["status"].value_counts()
+    notes = (
+        "Each row of the grid is one regression of the outcome on the focal regressor, the controls and the "
+        "absorbed fixed effects, estimated by the within (fixed-effects) estimator: variables are demeaned by "
+        "alternating projections (Gaure 2013; relative tolerance "
+        f"{grid.tolerance:g}) and the demeaned outcome is regressed on the demeaned regressors. "
+        "Observations alone in a fixed-effect group (singletons) are "
+        + ("kept. " if grid.keep_singletons else "dropped, repeatedly until none remain (Correia 2015). ")
+        + "Rows with missing values in a specification's own variables are dropped for that specification only. "
+        "Standard errors: \\emph{iid} uses $s^2(X'X)^{-1}$ with $s^2=e'e/(N-K)$; \\emph{robust} is HC1, scaled "
+        "by $N/(N-K)$; clustered standard errors are scaled by $G/(G-1)\\cdot(N-1)/(N-K)$, where fixed effects "
+        "nested in the cluster variable do not count in $K$ (Cameron \\& Miller 2015); two-way clustering is "
+        "$V_1+V_2-V_{12}$ (Cameron, Gelbach \\& Miller 2011), with negative eigenvalues set to zero when needed. "
+        "$K$ counts the regressors and the rank of the absorbed effects. Tests and intervals use the $t$ "
+        "distribution with $N-K$ degrees of freedom, or $G-1$ when clustered ($\\min(G_1,G_2)-1$ for two-way). "
+        f"Confidence intervals are at {level:.0%}; significance marks: * $p<{alpha:g}$, ** $p<{alpha / 5:g}$, "
+        f"*** $p<{alpha / 50:g}$. ".replace("%", r"\%")
+        + f"The grid holds {len(ledger)} specifications: {int(counts.get('ok', 0))} fitted, "
+        f"{int(counts.get('not_identified', 0))} not identified (the focal regressor is absorbed by the fixed "
+        f"effects or collinear with the controls) and {int(counts.get('failed', 0))} failed. "
+    )
+    if draws:
+        notes += (
+            f"Joint tests (Simonsohn, Simmons \\& Nelson 2020) impose the null in each specification, draw "
+            f"{draws} bootstrap samples of whole levels of \\texttt{{{latex_escape(resample)}}} (seed {seed}; the "
+            "same draws for every specification), refit the grid on each draw and report the share of draws "
+            "whose median estimate, share of significant estimates with the dominant sign, and Stouffer's $Z$ "
+            "are at least as extreme as observed. "
+        )
+    notes += ("Fixed effects remove only what is fixed within their groups, and a stable curve is not proof of "
+              "causality: every specification can share the same flaw.")
+    figure_blocks = []
+    for (outcome, focal), path in zip(sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()}), figures):
+        figure_blocks.append("\n".join([
+            r"\begin{figure}[p]\centering",
+            rf"\includegraphics[width=\linewidth,height=0.85\textheight,keepaspectratio]{{\fegriddir {path}}}",
+            rf"\caption{{Specification curve: {latex_escape(outcome)} on {latex_escape(focal)}. Top: estimates "
+            rf"sorted, with {level:.0%} confidence intervals, coloured when significant; the baseline is marked. "
+            r"Bottom: the choices each specification uses.}".replace("%", r"\%"),
+            r"\end{figure}"]))
+    doc = [
+        _PREAMBLE,
+        rf"\section*{{Robustness appendix: {latex_escape(grid.run_name)}}}",
+        r"\paragraph{Notes.} " + notes,
+        "", r"\begin{table}[ht]\centering\footnotesize",
+        r"\caption{The specification curve in numbers: counts, the baseline's estimate and percentile in the curve, "
+        r"the median, interquartile range and range of the fitted estimates, the share with the baseline's sign and "
+        r"the share significant with the dominant sign.}",
+        r"\resizebox{\linewidth}{!}{%", _summary_table(summ, level).rstrip("\n") + "}", r"\end{table}",
+        "", r"\begin{table}[ht]\centering\footnotesize",
+        r"\caption{Joint tests across the curve (bootstrap under the null).}",
+        _joint_table(joint), r"\end{table}", "",
+        *figure_blocks, "", r"\clearpage",
+        r"\subsection*{Median estimate under each choice}",
+        r"{\footnotesize", _choices_table(moves), "}",
+        r"\subsection*{Every specification}",
+        r"Grouped by outcome and focal regressor; the baseline's estimate is in bold; ids are the first "
+        r"8 characters of the ledger's \texttt{spec\_id}.",
+        "", _spec_table(ledger, level),
+        r"\csname fegrid@end\endcsname", "",
+    ]
+    return write_text(out, "\n".join(doc))
+
+
+def compile_latex(tex: str | Path, pdf: str | Path) -> Path:
+    """Compile ``tex`` with pdflatex (twice, for longtable) in a scratch folder; write ``pdf``.
+
+    The scratch folder is a copy of the tex file's folder contents that the document uses, so no
+    auxiliary file is left beside the appendix and a failed compile leaves no PDF.
+    """
+    exe = shutil.which("pdflatex")
+    if exe is None:
+        raise RuntimeError("pdflatex is not installed (Debian: texlive-latex-recommended)")
+    tex = Path(tex).resolve()
+    with tempfile.TemporaryDirectory() as tmp:
+        for _ in range(2):
+            proc = subprocess.run([exe, "-interaction=nonstopmode", "-halt-on-error", f"-output-directory={tmp}",
+                                   tex.name], cwd=tex.parent, capture_output=True, text=True)
+            if proc.returncode != 0:
+                raise RuntimeError("pdflatex failed:\n" + proc.stdout[-4000:])
+        built = Path(tmp) / (tex.stem + ".pdf")
+        data = built.read_bytes()
+    from .store import atomic_write
+
+    return atomic_write(pdf, lambda fh: fh.write(data))
+
+
+def figure_names(ledger: pd.DataFrame) -> list[str]:
+    """Relative paths of the curve figures (PDF), in the order of the sorted outcome x focal pairs."""
+    pairs = sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()})
+    return [f"figures/curve-{pair_slug(o, f)}.pdf" for o, f in pairs]
+

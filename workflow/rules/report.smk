@@ -1,0 +1,125 @@
+# Reports: figures, summaries, joint tests, the LaTeX appendix and provenance, all from the ledger.
+
+
+rule draw_curve:
+    input:
+        ledger=str(PLAN.paths.ledger_parquet),
+    output:
+        png=report(
+            f"{RUN}/figures/curve-{{pair}}.png",
+            caption="../report/curve.rst",
+            category="Specification curves",
+        ),
+        pdf=f"{RUN}/figures/curve-{{pair}}.pdf",
+    log:
+        f"{RUN}/logs/draw_curve/{{pair}}.log",
+    benchmark:
+        f"{RUN}/benchmarks/draw_curve/{{pair}}.tsv"
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/draw_curve.py"
+
+
+rule summarise_curve:
+    input:
+        ledger=str(PLAN.paths.ledger_parquet),
+    output:
+        csv=report(PLAN.paths.file("summary.csv"), caption="../report/summary.rst", category="Tables"),
+        md=PLAN.paths.file("summary.md"),
+        tex=PLAN.paths.file("summary.tex"),
+        choices=PLAN.paths.file("choices.csv"),
+    log:
+        f"{RUN}/logs/summarise_curve.log",
+    benchmark:
+        f"{RUN}/benchmarks/summarise_curve/all.tsv"
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/summarise_curve.py"
+
+
+rule draw_null_curves:
+    input:
+        snapshot=str(PLAN.snapshot_path),
+    output:
+        draws=f"{RUN}/cache/joint/{{key}}/draws-{{chunk}}.parquet",
+    log:
+        f"{RUN}/logs/draw_null_curves/{{key}}-{{chunk}}.log",
+    benchmark:
+        f"{RUN}/benchmarks/draw_null_curves/{{key}}-{{chunk}}.tsv"
+    wildcard_constraints:
+        key="[0-9a-f]{16}",
+        chunk="[0-9]{4}",
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/draw_null_curves.py"
+
+
+rule test_curve:
+    input:
+        ledger=str(PLAN.paths.ledger_parquet),
+        draws=[str(p) for p in PLAN.joint_paths()],
+    output:
+        csv=report(PLAN.paths.file("joint_tests.csv"), caption="../report/joint.rst", category="Tables"),
+        md=PLAN.paths.file("joint_tests.md"),
+    log:
+        f"{RUN}/logs/test_curve.log",
+    benchmark:
+        f"{RUN}/benchmarks/test_curve/all.tsv"
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/test_curve.py"
+
+
+rule render_appendix:
+    input:
+        ledger=str(PLAN.paths.ledger_parquet),
+        joint=PLAN.paths.file("joint_tests.csv"),
+        figures=[str(p) for p in PLAN.figure_paths("pdf")],
+    output:
+        tex=PLAN.paths.file("appendix.tex"),
+    log:
+        f"{RUN}/logs/render_appendix.log",
+    benchmark:
+        f"{RUN}/benchmarks/render_appendix/all.tsv"
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/render_appendix.py"
+
+
+rule compile_appendix:
+    input:
+        tex=PLAN.paths.file("appendix.tex"),
+        figures=[str(p) for p in PLAN.figure_paths("pdf")],
+    output:
+        pdf=report(PLAN.paths.file("appendix.pdf"), caption="../report/appendix.rst", category="Appendix"),
+    log:
+        f"{RUN}/logs/compile_appendix.log",
+    benchmark:
+        f"{RUN}/benchmarks/compile_appendix/all.tsv"
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/compile_appendix.py"
+
+
+rule write_provenance:
+    input:
+        unpack(report_outputs),
+    output:
+        manifest=PLAN.paths.file("manifest.json"),
+        replication=PLAN.paths.file("REPLICATION.md"),
+    params:
+        benchmarks=benchmark_files(),
+        config_path=CONFIG_PATH,
+        specs=len(PLAN.specs),
+    log:
+        f"{RUN}/logs/write_provenance.log",
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/write_provenance.py"

@@ -1,0 +1,9 @@
+"""Rule write_provenance: manifest.json and REPLICATION.md."""
+
+from fegrid.grid import load_config
+from fegrid.pipeline import provenance, run_logged
+
+snakemake = globals()["snakemake"]
+run_logged(snakemake.log[0], provenance, load_config(snakemake.config), dict(snakemake.config),
+           snakemake.params.config_path, dict(snakemake.input.items()), snakemake.params.benchmarks,
+           snakemake.output.manifest, snakemake.output.replication, snakemake.params.specs)

@@ -19,7 +19,6 @@ import numpy as np
 import pandas as pd
 from tabulate import tabulate
 
-from . import __version__
 from .figures import pair_slug
 from .grid import DIMENSIONS, Grid
 from .store import write_csv, write_text

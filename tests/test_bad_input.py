@@ -46,6 +46,11 @@ CONFIG_CASES = {
                         r"name 'robust' is given twice"),
     "data file missing": (("path: grunfeld.csv", "path: nowhere.csv"), r"'nowhere.csv'.*does not exist"),
     "baseline names no choice": (("sample: all,", "sample: everything,"), r"baseline.sample is 'everything'"),
+    "bootstrap on robust errors": (("robust: {kind: robust}", "robust: {kind: robust, wild_bootstrap: {draws: 99}}"),
+                                   r"clustering.robust: the wild cluster bootstrap needs kind 'cluster'"),
+    "unknown bootstrap weights": (("firm: {kind: cluster, by: firm}",
+                                   "firm: {kind: cluster, by: firm, wild_bootstrap: {weights: mammen}}"),
+                                  r"'clustering.firm.wild_bootstrap.weights' is invalid"),
 }
 
 

@@ -92,12 +92,14 @@ def test_same_regression_under_two_names_is_an_error() -> None:
 
 def test_jobs_respect_size_and_keep_keys_when_a_sample_is_added() -> None:
     specs = load_config(BASE).expand()
-    jobs = plan_jobs(specs, specs_per_job=1000, salt="s")
+    per_sample = len(specs) // 2
+    jobs = plan_jobs(specs, specs_per_job=per_sample, salt="s")
     assert len(jobs) == 2  # one per sample
+    assert len(plan_jobs(specs, specs_per_job=1000, salt="s")) == 1  # small groups are packed
     small = plan_jobs(specs, specs_per_job=5, salt="s")
     assert all(len(j.specs) <= 8 for j in small)  # a control set's specs stay together
     assert sorted(s.spec_id for j in small for s in j.specs) == sorted(s.spec_id for s in specs)
     more = copy.deepcopy(BASE)
     more["samples"]["early"] = {"range": {"year": {"max": 1945}}}
-    keys = {j.key for j in plan_jobs(load_config(more).expand(), specs_per_job=1000, salt="s")}
+    keys = {j.key for j in plan_jobs(load_config(more).expand(), specs_per_job=per_sample, salt="s")}
     assert {j.key for j in jobs} <= keys and len(keys) == 3

@@ -24,12 +24,12 @@ def _read_parquet(path: Path, columns: list[str] | None) -> pd.DataFrame:
     return pd.read_parquet(path, columns=columns)
 
 
-def _read_stata(path: Path, columns: list[str] | None) -> pd.DataFrame:
+def _read_dta(path: Path, columns: list[str] | None) -> pd.DataFrame:
     return pd.read_stata(path, columns=columns, convert_categoricals=False)
 
 
 #: File ending -> reader.
-READERS = {".csv": _read_csv, ".parquet": _read_parquet, ".pq": _read_parquet, ".dta": _read_stata}
+READERS = {".csv": _read_csv, ".parquet": _read_parquet, ".pq": _read_parquet, ".dta": _read_dta}
 
 
 def file_sha256(path: str | Path) -> str:
@@ -42,7 +42,7 @@ def file_sha256(path: str | Path) -> str:
 
 
 def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.DataFrame:
-    """Read a CSV, Parquet or Stata file; with ``columns``, only those of them that exist.
+    """Read a CSV, Parquet or .dta file; with ``columns``, only those of them that exist.
 
     Columns the file lacks are left for :func:`check_data` to name together with their role.
     """

@@ -29,6 +29,7 @@ from scipy import stats
 from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError
+from .wild import WildBootstrap, wild_cluster_test
 
 __all__ = [
     "Inference",
@@ -56,6 +57,7 @@ class Inference:
 
     kind: str = "robust"
     by: tuple[tuple[str, ...], ...] = ()
+    bootstrap: WildBootstrap | None = None
 
     def __post_init__(self) -> None:
         need = covariance_kind(self.kind).dimensions
@@ -63,6 +65,14 @@ class Inference:
             raise EstimationError(
                 f"covariance kind '{self.kind}' takes {need} cluster variable(s), got {len(self.by)}."
             )
+        if self.bootstrap is not None and self.kind != "cluster":
+            raise EstimationError("the wild cluster bootstrap needs kind 'cluster' (one cluster variable).")
+
+    def canonical(self) -> dict[str, object]:
+        body: dict[str, object] = {"kind": self.kind, "by": sorted(list(d) for d in self.by)}
+        if self.bootstrap is not None:
+            body["wild_bootstrap"] = asdict(self.bootstrap)
+        return body
 
     def columns(self) -> tuple[str, ...]:
         return tuple(c for dim in self.by for c in dim)
@@ -91,11 +101,15 @@ class BlockSettings:
     tolerance: float = 1e-10
     max_iterations: int = 10_000
     level: float = 0.95
+    warn_min_clusters: int = 40
+    warn_max_cluster_share: float = 0.25
+    warn_min_treated_clusters: int = 5
 
     def demean_key(self) -> str:
-        """Everything that decides the demeaned columns (the confidence level does not)."""
+        """Everything that decides the demeaned columns (level and warning thresholds do not)."""
         body = asdict(self)
-        body.pop("level")
+        for key in ("level", "warn_min_clusters", "warn_max_cluster_share", "warn_min_treated_clusters"):
+            body.pop(key)
         body["absorb"] = [t.canonical() for t in self.absorb]
         return json.dumps(body, sort_keys=True)
 
@@ -129,6 +143,15 @@ class SpecResult:
     focal_variance_share: float = float("nan")
     units_with_variation: int = 0
     psd_adjusted: bool = False
+    inference_warning: str = ""
+    largest_cluster_share: float = float("nan")
+    treated_clusters: int = -1
+    wild_p_value: float = float("nan")
+    wild_ci_low: float = float("nan")
+    wild_ci_high: float = float("nan")
+    wild_draws: int = 0
+    wild_weights: str = ""
+    wild_enumerated: bool = False
 
     def record(self) -> dict[str, object]:
         return asdict(self)
@@ -462,17 +485,61 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
     t = beta / se if se > 0 else float("nan")
     p = float(2 * stats.t.sf(abs(t), cov.df)) if se > 0 else float("nan")
     crit = float(stats.t.ppf(0.5 + s.level / 2, cov.df))
-    message = "" if common["converged"] else (
-        f"alternating projections did not reach the tolerance in {s.max_iterations} iterations")
+    notes = [] if common["converged"] else [
+        f"alternating projections did not reach the tolerance in {s.max_iterations} iterations"]
     if cov.psd_adjusted:
-        message = "; ".join(m for m in (message, "two-way covariance was not positive "
-                                                  "semi-definite: negative eigenvalues set to zero") if m)
+        notes.append("two-way covariance was not positive semi-definite: negative eigenvalues set to zero")
     clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
+    extra = _cluster_checks(design, spec, codes[: len(spec.inference.by)])
+    if spec.inference.bootstrap is not None and se > 0:
+        g = cov.n_clusters[0]
+        n = len(pieces.e)
+        k_total = pieces.bread.shape[0] + design.absorber.absorbed_df - design.nested_df(spec.inference.by)
+        idx = design.regressors(spec.focal, spec.controls)[0]
+        wild = wild_cluster_test(
+            y=design.Z[:, design.pos[spec.outcome]], x=design.Z[:, idx], bread=pieces.bread, codes=codes[0],
+            factor=g / (g - 1) * (n - 1) / (n - k_total), estimate=beta, std_error=se,
+            settings=spec.inference.bootstrap, key=spec.spec_id, level=s.level)
+        extra.update(wild_p_value=wild.p_value, wild_ci_low=wild.ci_low, wild_ci_high=wild.ci_high,
+                     wild_draws=wild.draws, wild_weights=spec.inference.bootstrap.weights,
+                     wild_enumerated=wild.enumerated)
     return SpecResult(
-        status=STATUS_OK, message=message, estimate=beta, std_error=se, t_stat=t, p_value=p,
+        status=STATUS_OK, message="; ".join(notes), estimate=beta, std_error=se, t_stat=t, p_value=p,
         ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
-        within_r2=r2, psd_adjusted=cov.psd_adjusted, **common)  # type: ignore[arg-type]
+        within_r2=r2, psd_adjusted=cov.psd_adjusted, **common, **extra)  # type: ignore[arg-type]
+
+
+def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarray]) -> dict[str, object]:
+    """Warnings when clustered inference is fragile (MacKinnon & Webb 2017).
+
+    Few clusters, one cluster holding a large share of the observations, or (for a 0/1 focal
+    regressor) few clusters with any treated observation. Thresholds are the block settings'.
+    """
+    if not codes:
+        return {}
+    s = design.settings
+    notes = []
+    shares, treated = [], []
+    x = design.frame[spec.focal].to_numpy(dtype=float)
+    binary = bool(np.isin(x, (0.0, 1.0)).all())
+    for dim, c in zip(spec.inference.by, codes):
+        name = " x ".join(dim)
+        sizes = np.bincount(c)
+        g = len(sizes)
+        share = float(sizes.max() / sizes.sum())
+        shares.append(share)
+        if g < s.warn_min_clusters:
+            notes.append(f"few clusters: {g} {name} < {s.warn_min_clusters}")
+        if share > s.warn_max_cluster_share:
+            notes.append(f"the largest {name} cluster holds {share:.0%} of the observations")
+        if binary:
+            n_treated = int(np.count_nonzero(np.bincount(c, x, minlength=g)))
+            treated.append(n_treated)
+            if n_treated < s.warn_min_treated_clusters:
+                notes.append(f"few treated clusters: {n_treated} {name} with any treated observation")
+    return {"inference_warning": "; ".join(notes), "largest_cluster_share": max(shares),
+            "treated_clusters": min(treated) if treated else -1}
 
 
 def fit_one(

@@ -24,8 +24,9 @@ import yaml
 from . import __version__
 from .absorb import Term, parse_absorb, term_label
 from .errors import ConfigError, EstimationError
-from .estimate import BlockSettings, Inference, SpecRequest
+from .estimate import RESULT_COLUMNS, BlockSettings, Inference, SpecRequest
 from .samples import Panel, SampleDef, parse_sample
+from .wild import WildBootstrap
 
 __all__ = [
     "DIMENSIONS",
@@ -164,6 +165,7 @@ class Grid:
     seed: int = 20201
     resample: str = ""
     draws_per_job: int = 50
+    warnings: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     # ---- columns ----------------------------------------------------------------------------
@@ -246,7 +248,7 @@ class Grid:
                 "outcome": outcome,
                 "focal": focal,
                 "absorb": sorted((t.canonical() for t in self.absorb[absorb]), key=json.dumps),
-                "inference": {"kind": inference.kind, "by": sorted(list(d) for d in inference.by)},
+                "inference": inference.canonical(),
                 "sample": samples[sample][1].canonical(),
                 "controls": list(ctrl),
                 "weights": self.weights[weights],
@@ -303,6 +305,9 @@ class Grid:
             tolerance=self.tolerance,
             max_iterations=self.max_iterations,
             level=self.level,
+            warn_min_clusters=int(self.warnings.get("min_clusters", 40)),
+            warn_max_cluster_share=float(self.warnings.get("max_cluster_share", 0.25)),
+            warn_min_treated_clusters=int(self.warnings.get("min_treated_clusters", 5)),
         )
 
     def settings_key(self) -> str:
@@ -310,10 +315,12 @@ class Grid:
         return json.dumps(
             {
                 "fegrid": __version__,
+                "result_columns": list(RESULT_COLUMNS),  # a new result field invalidates stored results
                 "level": self.level,
                 "tolerance": self.tolerance,
                 "max_iterations": self.max_iterations,
                 "keep_singletons": self.keep_singletons,
+                "warnings": self.warnings,
             },
             sort_keys=True,
         )
@@ -360,7 +367,8 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         by = [by] if isinstance(by, str) else list(by)
         dims = tuple(tuple(term_label(t).split(" x ")) for t in parse_absorb(by, where=f"clustering.{name}.by"))
         try:
-            clustering[name] = Inference(body["kind"], dims)
+            boot = body.get("wild_bootstrap")
+            clustering[name] = Inference(body["kind"], dims, WildBootstrap(**boot) if boot is not None else None)
         except EstimationError as exc:
             raise ConfigError(f"clustering.{name}: {exc}") from None
     samples = dict(_choices(raw, "samples", {"all": {}}))
@@ -432,11 +440,12 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         tolerance=float(est.get("tolerance", 1e-10)),
         max_iterations=int(est.get("max_iterations", 10_000)),
         keep_singletons=bool(est.get("keep_singletons", False)),
-        specs_per_job=int((raw.get("jobs") or {}).get("specs_per_job", 2000)),
+        specs_per_job=int((raw.get("jobs") or {}).get("specs_per_job", 500)),
         draws=int(joint.get("draws", 500)),
         seed=int(joint.get("seed", 20201)),
         resample=str(joint.get("resample", panel.unit)),
         draws_per_job=int(joint.get("draws_per_job", 50)),
+        warnings=dict(raw.get("inference_warnings") or {}),
         raw=raw,
     )
 
@@ -446,8 +455,10 @@ def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[J
 
     Blocks (same sample, absorbed effects, weights) of one sample and weights share a job while
     they hold at most ``specs_per_job`` specifications together; otherwise each block is a job,
-    and a block larger than that is split between control sets. A job's key hashes ``salt`` (data
-    and settings) with its specifications' canonical content, so an unchanged job keeps its key.
+    and a block larger than that is split between control sets. Consecutive small groups are then
+    packed together up to the same size, so that many small samples do not make many small jobs.
+    A job's key hashes ``salt`` (data and settings) with its specifications' canonical content, so
+    an unchanged job keeps its key.
     """
     by_sample: dict[str, list[Spec]] = {}
     for s in specs:
@@ -479,8 +490,15 @@ def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[J
                 current = current + part
             if current:
                 groups.append(current)
-    jobs = []
+    # small groups (a generated leave-one-out sample, say) share a job up to the same size
+    packed: list[list[Spec]] = []
     for members in groups:
+        if packed and len(packed[-1]) + len(members) <= specs_per_job:
+            packed[-1] = packed[-1] + members
+        else:
+            packed.append(members)
+    jobs = []
+    for members in packed:
         members = sorted(members, key=lambda s: s.spec_id)
         h = hashlib.sha256(salt.encode())
         for s in members:

@@ -104,6 +104,7 @@ def build_manifest(*, config: Mapping[str, Any], data_path: str | Path, n_specs:
 _RULE_OF = {
     "ledger_csv": "gather_ledger", "ledger_parquet": "gather_ledger", "summary_csv": "summarise_curve",
     "summary_md": "summarise_curve", "summary_tex": "summarise_curve", "choices_csv": "summarise_curve",
+    "influence_csv": "summarise_curve",
     "joint_csv": "test_curve", "joint_md": "test_curve", "appendix_tex": "render_appendix",
     "appendix_pdf": "compile_appendix",
 }

@@ -22,7 +22,7 @@ from tabulate import tabulate
 from .figures import pair_slug
 from .grid import DIMENSIONS, Grid
 from .store import write_csv, write_text
-from .summary import PAIR, choice_medians, curve_summary
+from .summary import PAIR, choice_medians, curve_summary, influence
 
 __all__ = ["latex_escape", "write_summaries", "render_appendix", "compile_latex", "significance_marks",
            "figure_names"]
@@ -71,16 +71,18 @@ def write_summaries(ledger: pd.DataFrame, level: float, out_dir: str | Path) -> 
     out_dir = Path(out_dir)
     summ = curve_summary(ledger, level)
     moves = choice_medians(ledger)
+    infl = influence(ledger)
     paths = {
         "summary_csv": write_csv(out_dir / "summary.csv", summ),
         "choices_csv": write_csv(out_dir / "choices.csv", moves),
-        "summary_md": write_text(out_dir / "summary.md", _summary_markdown(summ, moves, level)),
+        "influence_csv": write_csv(out_dir / "influence.csv", infl),
+        "summary_md": write_text(out_dir / "summary.md", _summary_markdown(summ, moves, level, infl)),
         "summary_tex": write_text(out_dir / "summary.tex", _summary_table(summ, level)),
     }
     return paths
 
 
-def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float) -> str:
+def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, infl: pd.DataFrame) -> str:
     lines = ["# Specification curve summary", ""]
     cols = {"outcome": "outcome", "focal": "focal", "specs": "specs", "fitted": "fitted",
             "not_identified": "not identified", "failed": "failed", "baseline_estimate": "baseline",
@@ -92,6 +94,10 @@ def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float) -> 
     lines += ["", "## Median estimate under each choice", ""]
     if len(moves):
         lines.append(tabulate(moves, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
+    if len(infl):
+        lines += ["", "## Leave-one-out influence: the dropped levels that move the estimate most", ""]
+        top = infl[infl["rank"] <= 3]
+        lines.append(tabulate(top, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
     return "\n".join(lines) + "\n"
 
 
@@ -142,25 +148,48 @@ def _choices_table(moves: pd.DataFrame) -> str:
                       r"\endhead", *rows, r"\bottomrule", r"\end{longtable}", ""])
 
 
+def _influence_table(infl: pd.DataFrame, top: int = 5) -> str:
+    if infl.empty:
+        return ""
+    rows = []
+    others = ["absorb", "clustering", "controls", "weights"]
+    for key, group in infl.groupby(["generator", "outcome", "focal", *others], sort=True):
+        head = (f"{latex_escape(key[0])}: {latex_escape(key[1])} on {latex_escape(key[2])} "
+                f"({', '.join(latex_escape(k) for k in key[3:])}); reference "
+                f"{_num(group['reference'].iloc[0])} ({latex_escape(group['reference_sample'].iloc[0])})")
+        rows.append(rf"\multicolumn{{4}}{{@{{}}l}}{{\emph{{{head}}}}} \\")
+        for r in group.nsmallest(top, "rank").itertuples(index=False):
+            rows.append(f"{r.rank} & {latex_escape(r.dropped)} & {_num(r.estimate)} & {r.change:+.4f} \\\\")
+        rows.append(r"\addlinespace[3pt]")
+    return "\n".join([r"\subsection*{Leave-one-out influence}",
+                      f"The {top} dropped levels that move the estimate most, for each group of specifications "
+                      "that differ only in the level dropped.", "",
+                      r"{\footnotesize\begin{longtable}{@{}rlrr@{}}", r"\toprule",
+                      r"rank & dropped & estimate & change \\", r"\midrule", r"\endhead", *rows,
+                      r"\bottomrule", r"\end{longtable}}", ""])
+
+
 def _spec_table(ledger: pd.DataFrame, level: float) -> str:
     dims = [d for d in DIMENSIONS if d not in PAIR and ledger[d].nunique() > 1]
-    head = " & ".join(["id", *dims, "estimate", "s.e.", "$p$", "$N$"])
-    colspec = "@{}l" + "l" * len(dims) + "rrrr@{}"
+    wild = bool((ledger["wild_draws"] > 0).any())
+    head = " & ".join(["id", *dims, "estimate", "s.e.", "$p$", *(["WCR $p$"] if wild else []), "$N$"])
+    colspec = "@{}l" + "l" * len(dims) + "rrr" + ("r" if wild else "") + "r@{}"
     body = []
     order = ["outcome", "focal", *dims, "spec_id"]
     for (outcome, focal), part in ledger.sort_values(order).groupby(PAIR, sort=True):
-        span = 5 + len(dims)
+        span = 5 + len(dims) + int(wild)
         body.append(rf"\multicolumn{{{span}}}{{@{{}}l}}{{\textbf{{{latex_escape(outcome)} on "
                     rf"{latex_escape(focal)}}}}} \\")
         for r in part.itertuples(index=False):
             cells = [r"\texttt{" + r.spec_id[:8] + "}"] + [latex_escape(getattr(r, d)) for d in dims]
             if r.status == "ok":
-                marks = significance_marks(r.p_value, level)
+                marks = significance_marks(r.p_value, level) + (r"$^\dagger$" if r.inference_warning else "")
                 bold = r"\bfseries " if r.is_baseline else ""
                 cells += [f"{bold}{_num(r.estimate)}{marks}", _num(r.std_error), _p(r.p_value),
-                          str(r.n_obs)]
+                          *([_p(r.wild_p_value)] if wild else []), str(r.n_obs)]
             else:
-                cells += [rf"\multicolumn{{3}}{{c}}{{\emph{{{latex_escape(r.status.replace('_', ' '))}}}}}",
+                span_cells = 3 + int(wild)
+                cells += [rf"\multicolumn{{{span_cells}}}{{c}}{{\emph{{{latex_escape(r.status.replace('_', ' '))}}}}}",
                           str(r.n_obs)]
             body.append(" & ".join(cells) + r" \\")
         body.append(r"\addlinespace[3pt]")
@@ -223,6 +252,20 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
             "whose median estimate, share of significant estimates with the dominant sign, and Stouffer's $Z$ "
             "are at least as extreme as observed. "
         )
+    wild = ledger[ledger["wild_draws"] > 0]
+    if len(wild):
+        notes += (
+            f"For {len(wild)} specifications the ledger adds a wild cluster restricted bootstrap (WCR; Cameron, "
+            "Gelbach \\& Miller 2008) $p$-value, with "
+            + ", ".join(sorted({f"{w} weights" for w in wild["wild_weights"]}))
+            + " (Webb 2023 for the six-point weights), and its confidence interval by test inversion; every "
+            "Rademacher sign vector is enumerated when $2^G$ does not exceed the draws. "
+        )
+    warned = int((ledger["inference_warning"].astype(str) != "").sum())
+    if warned:
+        notes += (f"$^\\dagger$ marks the {warned} specifications whose clustered inference may be fragile (few "
+                  "clusters, one dominant cluster, or few treated clusters; MacKinnon \\& Webb 2017); the "
+                  "ledger's \\texttt{inference\\_warning} says which. ")
     notes += ("Fixed effects remove only what is fixed within their groups, and a stable curve is not proof of "
               "causality: every specification can share the same flaw.")
     figure_blocks = []
@@ -249,6 +292,7 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         *figure_blocks, "", r"\clearpage",
         r"\subsection*{Median estimate under each choice}",
         r"{\footnotesize", _choices_table(moves), "}",
+        _influence_table(influence(ledger)),
         r"\subsection*{Every specification}",
         r"Grouped by outcome and focal regressor; the baseline's estimate is in bold; ids are the first "
         r"8 characters of the ledger's \texttt{spec\_id}.",

@@ -7,7 +7,7 @@ import pandas as pd
 
 from .grid import DIMENSIONS
 
-__all__ = ["curve_summary", "choice_medians", "PAIR"]
+__all__ = ["curve_summary", "choice_medians", "influence", "PAIR"]
 
 #: A specification curve is drawn and summarised for each outcome x focal regressor pair.
 PAIR = ["outcome", "focal"]
@@ -86,3 +86,38 @@ def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
                 })
     return pd.DataFrame(rows, columns=["outcome", "focal", "dimension", "choice", "specs", "median",
                                        "shift", "range"])
+
+
+def influence(ledger: pd.DataFrame) -> pd.DataFrame:
+    """Leave-one-level-out influence: which dropped level moves the estimate most.
+
+    Samples made by a ``drop_each`` generator are named ``<generator>:<level>``. Each such fitted
+    specification is compared with the same specification (every other choice equal) on the
+    baseline's sample; without one, with the median over the generator's levels. ``rank`` orders
+    the levels of each group by the size of the change (1 = the most influential).
+    """
+    ok = ledger[(ledger["status"] == "ok") & ledger["sample"].astype(str).str.contains(":", regex=False)]
+    columns = ["generator", "dropped", "outcome", "focal", "absorb", "clustering", "controls", "weights",
+               "estimate", "reference", "reference_sample", "change", "rank"]
+    if ok.empty:
+        return pd.DataFrame(columns=columns)
+    base = ledger[ledger["is_baseline"]]
+    base_sample = str(base["sample"].iloc[0]) if len(base) else ""
+    others = ["outcome", "focal", "absorb", "clustering", "controls", "weights"]
+    reference = ledger[(ledger["sample"] == base_sample) & (ledger["status"] == "ok")].set_index(others)["estimate"]
+    parts = ok["sample"].str.split(":", n=1, expand=True)
+    frame = ok.assign(generator=parts[0], dropped=parts[1])
+    rows = []
+    for key, group in frame.groupby(["generator", *others], sort=True):
+        other_key = tuple(key[1:])
+        if base_sample and ":" not in base_sample and other_key in reference.index:
+            ref, ref_name = float(reference.loc[other_key]), base_sample
+        else:
+            ref, ref_name = float(group["estimate"].median()), "median over levels"
+        change = group["estimate"] - ref
+        order = change.abs().rank(ascending=False, method="first").astype(int)
+        for (_, r), ch, rk in zip(group.iterrows(), change, order):
+            rows.append({"generator": key[0], "dropped": r["dropped"], **dict(zip(others, other_key)),
+                         "estimate": r["estimate"], "reference": ref, "reference_sample": ref_name,
+                         "change": ch, "rank": int(rk)})
+    return pd.DataFrame(rows, columns=columns).sort_values(["generator", *others, "rank"], ignore_index=True)

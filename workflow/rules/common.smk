@@ -39,6 +39,7 @@ def report_outputs(wildcards=None):
         "summary_md": paths.file("summary.md"),
         "summary_tex": paths.file("summary.tex"),
         "choices_csv": paths.file("choices.csv"),
+        "influence_csv": paths.file("influence.csv"),
         "joint_csv": paths.file("joint_tests.csv"),
         "joint_md": paths.file("joint_tests.md"),
         "appendix_tex": paths.file("appendix.tex"),

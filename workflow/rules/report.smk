@@ -29,6 +29,7 @@ rule summarise_curve:
         md=PLAN.paths.file("summary.md"),
         tex=PLAN.paths.file("summary.tex"),
         choices=PLAN.paths.file("choices.csv"),
+        influence=PLAN.paths.file("influence.csv"),
     log:
         f"{RUN}/logs/summarise_curve.log",
     benchmark:

@@ -103,3 +103,19 @@ def test_jobs_respect_size_and_keep_keys_when_a_sample_is_added() -> None:
     more["samples"]["early"] = {"range": {"year": {"max": 1945}}}
     keys = {j.key for j in plan_jobs(load_config(more).expand(), specs_per_job=per_sample, salt="s")}
     assert {j.key for j in jobs} <= keys and len(keys) == 3
+
+
+def test_schema_defaults_filled_in_change_no_key() -> None:
+    """Snakemake's validate fills the schema's defaults into the config: nothing may move."""
+    from snakemake.utils import validate
+
+    from fegrid.grid import SCHEMA_PATH
+
+    raw = copy.deepcopy(BASE)
+    filled = copy.deepcopy(BASE)
+    validate(filled, str(SCHEMA_PATH), set_default=True)
+    assert filled != raw
+    a, b = load_config(raw), load_config(filled)
+    assert a.settings_key() == b.settings_key()
+    assert [j.key for j in plan_jobs(a.expand(), specs_per_job=7, salt="s")] == [
+        j.key for j in plan_jobs(b.expand(), specs_per_job=7, salt="s")]

@@ -168,6 +168,34 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return _cmd_run(args)
 
 
+def _cmd_compare(args: argparse.Namespace) -> int:
+    from .rounds import compare_ledgers, comparison_latex, comparison_text, load_ledger
+    from .store import write_text
+
+    old, old_manifest, old_path = load_ledger(args.old)
+    new, new_manifest, new_path = load_ledger(args.new)
+    cmp = compare_ledgers(old, new, tolerance=args.tolerance, level=args.level, old_manifest=old_manifest,
+                          new_manifest=new_manifest)
+    print(f"comparing {old_path} (old) with {new_path} (new), tolerance {args.tolerance:g}\n")
+    print(comparison_text(cmp))
+    if args.out:
+        out = Path(args.out)
+        write_text(out / "comparison.md", "# Ledger comparison\n\n" + comparison_text(cmp, fmt="github"))
+        write_text(out / "comparison.tex", comparison_latex(cmp))
+        cmp.changed.to_csv(out / "changed.csv", index=False)
+        print(f"written: {out / 'comparison.md'}, {out / 'comparison.tex'}, {out / 'changed.csv'}")
+    return 0
+
+
+def _cmd_archive(args: argparse.Namespace) -> int:
+    from .rounds import archive_round
+
+    plan = make_plan(args.config)
+    target = archive_round(plan.paths.run, label=args.label)
+    print(f"archived {plan.paths.run} into {target} (read-only)")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="fegrid",
@@ -194,11 +222,20 @@ def build_parser() -> argparse.ArgumentParser:
     p = with_config(sub.add_parser("summary", help="summarise a finished ledger in the terminal"))
     p.add_argument("--ledger", help="a ledger.csv to summarise instead of the config's")
     p.add_argument("--level", type=float, default=0.95, help="confidence level with --ledger")
+    p = sub.add_parser("compare", help="what moved between two ledgers (runs, rounds or files), by spec id")
+    p.add_argument("old", help="the earlier ledger: a ledger.csv/.parquet, or a run or round folder")
+    p.add_argument("new", help="the later ledger, likewise")
+    p.add_argument("--tolerance", type=float, default=1e-8,
+                   help="relative change of an estimate or SE that counts as changed (default: %(default)s)")
+    p.add_argument("--level", type=float, default=0.95, help="confidence level for significance flips")
+    p.add_argument("--out", help="folder for comparison.md, comparison.tex (response letter) and changed.csv")
+    p = with_config(sub.add_parser("archive", help="freeze reports/<run>/ into a dated, read-only round folder"))
+    p.add_argument("--label", default="", help="added to the date in the round's folder name")
     return parser
 
 
 COMMANDS = {"check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
-            "demo": _cmd_demo}
+            "demo": _cmd_demo, "compare": _cmd_compare, "archive": _cmd_archive}
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -445,7 +445,10 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         seed=int(joint.get("seed", 20201)),
         resample=str(joint.get("resample", panel.unit)),
         draws_per_job=int(joint.get("draws_per_job", 50)),
-        warnings=dict(raw.get("inference_warnings") or {}),
+        # complete with the defaults, so that a config with the schema's defaults filled in (as
+        # Snakemake's validate does) has the same settings, hence the same job keys
+        warnings={"min_clusters": 40, "max_cluster_share": 0.25, "min_treated_clusters": 5,
+                  **(raw.get("inference_warnings") or {})},
         raw=raw,
     )
 

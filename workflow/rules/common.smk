@@ -29,6 +29,21 @@ CONFIG_PATH = os.path.relpath(workflow.configfiles[-1]) if workflow.configfiles 
 BUILD_PDF = shutil.which("pdflatex") is not None
 
 
+# cluster resources of a fit job, from its size: rows x columns read, and specifications fitted
+_DATA_MB = os.path.getsize(PLAN.grid.data_path) / 1e6
+_SPECS = {job.key: len(job.specs) for job in PLAN.jobs}
+
+
+def fit_mem_mb(wildcards):
+    """Memory of a fit job: the data and its demeaned copies (about 30x the file), plus a base."""
+    return int(600 + 30 * _DATA_MB)
+
+
+def fit_runtime(wildcards):
+    """Minutes for a fit job: a base plus a generous allowance per specification and data size."""
+    return int(10 + _SPECS.get(wildcards.job, 0) * (0.01 + _DATA_MB / 2000))
+
+
 def report_outputs(wildcards=None):
     """Every output of the run but the provenance files, by name."""
     paths = PLAN.paths

@@ -29,6 +29,9 @@ rule fit_job:
         f"{RUN}/benchmarks/fit_job/{{job}}.tsv"
     wildcard_constraints:
         job="[0-9a-f]{16}",
+    resources:
+        mem_mb=fit_mem_mb,
+        runtime=fit_runtime,
     conda:
         "../envs/fegrid.yaml"
     script:

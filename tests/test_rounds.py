@@ -1,0 +1,97 @@
+"""Referee rounds: comparing ledgers and archiving a round. Data: statsmodels' Grunfeld data."""
+
+from __future__ import annotations
+
+import os
+import stat
+from datetime import date
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.cli import main
+from fegrid.errors import FegridError
+from fegrid.pipeline import fit_job, gather_ledger, make_plan, snapshot_data
+from fegrid.provenance import build_manifest
+from fegrid.rounds import archive_round, compare_ledgers, comparison_latex, load_ledger
+from fegrid.store import write_json
+
+
+def _run(folder: Path, config: str = "grid.yaml") -> Path:
+    """Fit the grid in-process (the rules' functions) and write a manifest beside the ledger."""
+    cwd = os.getcwd()
+    os.chdir(folder)
+    try:
+        plan = make_plan(config)
+        snapshot_data(plan.grid, plan.snapshot_path)
+        for job in plan.jobs:
+            fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+        gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+        manifest = build_manifest(config=plan.grid.raw, data_path=plan.grid.data_path, n_specs=len(plan.specs),
+                                  seeds={}, outputs={}, benchmarks=[], workflow_root=folder)
+        write_json(plan.paths.run / "manifest.json", manifest)
+        return folder / plan.paths.run
+    finally:
+        os.chdir(cwd)
+
+
+def _freeze(run: Path, tmp: Path, name: str) -> Path:
+    out = tmp / name
+    out.mkdir()
+    for f in ("ledger.csv", "manifest.json"):
+        (out / f).write_bytes((run / f).read_bytes())
+    return out
+
+
+def test_a_ledger_compared_with_itself_has_nothing_changed(tiny_project: Path) -> None:
+    run = _run(tiny_project)
+    old, man, _ = load_ledger(run)
+    cmp = compare_ledgers(old, old.copy(), old_manifest=man, new_manifest=man)
+    assert cmp.counts() == {"added": 0, "removed": 0, "unchanged": len(old), "changed": 0}
+    assert cmp.data_changed is False
+    assert r"\toprule" in comparison_latex(cmp)
+
+
+def test_an_added_clustering_choice_gives_only_additions(tiny_project: Path, tmp_path: Path) -> None:
+    before = _freeze(_run(tiny_project), tmp_path, "round1")
+    text = (tiny_project / "grid.yaml").read_text().replace(
+        "  firm: {kind: cluster, by: firm}", "  firm: {kind: cluster, by: firm}\n  year: {kind: cluster, by: year}")
+    (tiny_project / "grid.yaml").write_text(text)
+    after = _run(tiny_project)
+    old, om, _ = load_ledger(before)
+    new, nm, _ = load_ledger(after)
+    cmp = compare_ledgers(old, new, old_manifest=om, new_manifest=nm)
+    assert cmp.counts() == {"added": 16, "removed": 0, "unchanged": len(old), "changed": 0}
+    assert set(cmp.added["clustering"]) == {"year"}
+
+
+def test_perturbed_data_reports_the_changed_specifications(tiny_project: Path, tmp_path: Path, capsys) -> None:
+    before = _freeze(_run(tiny_project), tmp_path, "round1")
+    data = pd.read_csv(tiny_project / "grunfeld.csv")
+    data.loc[(data["firm"] == "IBM") & (data["year"] == 1950), "invest"] *= 1.5
+    data.to_csv(tiny_project / "grunfeld.csv", index=False)
+    after = _run(tiny_project)
+    old, om, _ = load_ledger(before)
+    new, nm, _ = load_ledger(after)
+    cmp = compare_ledgers(old, new, old_manifest=om, new_manifest=nm)
+    assert cmp.data_changed is True and any("data file changed" in n for n in cmp.notes)
+    assert cmp.counts()["added"] == 0 and cmp.counts()["removed"] == 0
+    # every fit using IBM's 1950 row moves; the post-war sample holds it too
+    assert cmp.counts()["changed"] == len(old)
+    assert (cmp.changed["what_changed"].str.contains("estimate")).all()
+    assert main(["compare", str(before), str(after), "--out", str(tmp_path / "letter")]) == 0
+    assert "changed" in capsys.readouterr().out
+    assert (tmp_path / "letter" / "comparison.tex").read_text().startswith(r"\begin{tabular}")
+
+
+def test_archive_freezes_a_read_only_round(tiny_project: Path) -> None:
+    run = _run(tiny_project)
+    target = archive_round(run, label="submitted", today=date(2026, 12, 1))
+    assert target.name == "2026-12-01-submitted"
+    assert (target / "ledger.csv").read_bytes() == (run / "ledger.csv").read_bytes()
+    assert not (target / "cache").exists()
+    assert not (target / "ledger.csv").stat().st_mode & (stat.S_IWUSR | stat.S_IWGRP | stat.S_IWOTH)
+    assert (target / "round.json").is_file()
+    with pytest.raises(FegridError, match="never overwritten"):
+        archive_round(run, label="submitted", today=date(2026, 12, 1))

@@ -22,6 +22,7 @@ import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 from .grid import DIMENSIONS  # noqa: E402
+from .store import pair_slug  # noqa: E402,F401 - re-exported for callers of this module
 
 __all__ = ["draw_curve", "save_curve", "pair_slug", "PALETTE"]
 
@@ -30,12 +31,6 @@ PALETTE = {"positive": "#0072B2", "negative": "#D55E00", "neutral": "#A0A0A0", "
            "band": "#F0E442"}
 _ROW_INCHES = 0.17
 _LABEL_CHARS = 30
-
-
-def pair_slug(outcome: str, focal: str) -> str:
-    """File-name-safe name of an outcome x focal pair."""
-    keep = lambda s: "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in s)  # noqa: E731
-    return f"{keep(outcome)}--{keep(focal)}"
 
 
 def _short(name: str) -> str:

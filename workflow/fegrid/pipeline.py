@@ -27,10 +27,18 @@ from .data import check_data, file_sha256, levels_for, read_table
 from .demo import write_demo_data
 from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block
-from .figures import draw_curve, pair_slug, save_curve
 from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .samples import apply_sample
-from .store import FileDemeanStore, FileResultStore, RunPaths, write_csv, write_json, write_parquet, write_text
+from .store import (
+    FileDemeanStore,
+    FileResultStore,
+    RunPaths,
+    pair_slug,
+    write_csv,
+    write_json,
+    write_parquet,
+    write_text,
+)
 
 __all__ = [
     "LEDGER_COLUMNS",
@@ -294,6 +302,8 @@ def read_ledger(path: str | Path) -> pd.DataFrame:
 
 def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf: str | Path) -> None:
     """The specification-curve figure of the outcome x focal pair named by ``slug``."""
+    from .figures import draw_curve, save_curve  # matplotlib loads only in the jobs that draw
+
     led = read_ledger(ledger)
     part = led[[pair_slug(o, f) == slug for o, f in zip(led["outcome"], led["focal"])]]
     if part.empty:

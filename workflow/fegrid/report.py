@@ -19,9 +19,8 @@ import numpy as np
 import pandas as pd
 from tabulate import tabulate
 
-from .figures import pair_slug
 from .grid import DIMENSIONS, Grid
-from .store import write_csv, write_text
+from .store import pair_slug, write_csv, write_text
 from .summary import PAIR, choice_medians, curve_summary, influence
 
 __all__ = ["latex_escape", "write_summaries", "render_appendix", "compile_latex", "significance_marks",

@@ -26,6 +26,7 @@ __all__ = [
     "RunPaths",
     "FileDemeanStore",
     "FileResultStore",
+    "pair_slug",
 ]
 
 
@@ -66,6 +67,16 @@ def write_csv(path: str | Path, frame: pd.DataFrame) -> Path:
 
 def write_parquet(path: str | Path, frame: pd.DataFrame) -> Path:
     return atomic_write(path, lambda fh: frame.to_parquet(fh, index=False))
+
+
+def pair_slug(outcome: str, focal: str) -> str:
+    """File-name-safe name of an outcome x focal pair.
+
+    >>> pair_slug("log yield", "irrigation/ha")
+    'log_yield--irrigation_ha'
+    """
+    keep = lambda s: "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in s)  # noqa: E731
+    return f"{keep(outcome)}--{keep(focal)}"
 
 
 @dataclass(frozen=True)

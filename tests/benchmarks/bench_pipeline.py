@@ -1,0 +1,160 @@
+"""Scale benchmark: 10,000 specifications on 100,000 rows through Snakemake, locally (not a test).
+
+Data (seeded, synthetic): 5,000 units in 50 regions over 20 periods. Grid: 2 outcomes x 2 focal
+regressors x 5 absorbed-effect choices x 5 covariance choices x 10 samples x 10 control sets =
+10,000 specifications; joint tests off (their cost is reported by the demo).
+
+Printed, from one cold run of ``fegrid run -c CORES``: wall time; time inside fegrid's fit step
+(the jobs' own clocks); the jobs' wall time as Snakemake measured it (Python start-up included);
+the share of wall time in which no job ran, from the time stamps of Snakemake's log (Snakemake's own
+work: parsing, DAG, scheduling, and fegrid's checks before it starts); the share of the fit jobs'
+time spent outside the fit step (Python start-up, imports, reading the snapshot); peak memory of
+any process.
+
+    python tests/benchmarks/bench_pipeline.py [--rows 100000] [--cores 2] [--folder DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import re
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import datetime
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import yaml
+
+PERIODS = 20
+
+
+def make_data(rows: int, path: Path, seed: int = 2026) -> None:
+    rng = np.random.default_rng(seed)
+    units = rows // PERIODS
+    unit = np.repeat(np.arange(units), PERIODS)
+    t = np.tile(np.arange(PERIODS), units)
+    region = unit % 50
+    a = rng.normal(size=units)[unit]
+    shock = rng.normal(size=(50, PERIODS))[region, t]
+    df = pd.DataFrame({"unit": unit, "time": t, "region": region})
+    for i in (1, 2, 3, 4):
+        df[f"c{i}"] = 0.3 * a + rng.normal(size=rows)
+    df["x1"] = 0.5 * a + 0.5 * shock + rng.normal(size=rows)
+    df["x2"] = 0.2 * a + rng.normal(size=rows)
+    controls = df[["c1", "c2", "c3", "c4"]].sum(axis=1)
+    df["y1"] = df["x1"] + 0.5 * df["x2"] + a + shock + 0.1 * controls + rng.normal(size=rows)
+    df["y2"] = 0.3 * df["x1"] + a + rng.normal(size=rows)
+    df.to_parquet(path, index=False)
+
+
+def busy_seconds(log: Path) -> float:
+    """Seconds in which at least one job ran, from the Snakemake log's time stamps (1 s resolution)."""
+    stamp = re.compile(r"^\[(\w{3} \w{3} +\d+ [\d:]+ \d{4})\]$")
+    now = None
+    starts: dict[str, float] = {}
+    intervals = []
+    for line in log.read_text().splitlines():
+        m = stamp.match(line.strip())
+        if m:
+            now = datetime.strptime(m.group(1), "%a %b %d %H:%M:%S %Y").timestamp()
+            continue
+        jid = re.match(r"^\s+jobid: (\d+)$", line)
+        if jid and now is not None and jid.group(1) not in starts:
+            starts[jid.group(1)] = now
+        fin = re.match(r"^Finished jobid: (\d+)", line.strip())
+        if fin and now is not None and fin.group(1) in starts:
+            intervals.append((starts[fin.group(1)], now))
+    intervals.sort()
+    total, end = 0.0, -1.0
+    for a, b in intervals:
+        if b <= end:
+            continue
+        total += b - max(a, end)
+        end = b
+    return total
+
+
+def config(data: Path) -> dict:
+    controls = {"none": [], "c1": ["c1"], "c2": ["c2"], "c3": ["c3"], "c4": ["c4"], "c12": ["c1", "c2"],
+                "c34": ["c3", "c4"], "c123": ["c1", "c2", "c3"], "c234": ["c2", "c3", "c4"],
+                "all": ["c1", "c2", "c3", "c4"]}
+    samples = {"all": {}, **{f"from_{k}": {"range": {"time": {"min": k}}} for k in range(1, 9)},
+               "balanced_last_10": {"range": {"time": {"min": 10}}, "balanced": True}}
+    return {
+        "run_name": "scale",
+        "data": {"path": str(data), "unit": "unit", "time": "time"},
+        "outcomes": ["y1", "y2"],
+        "focal_regressors": ["x1", "x2"],
+        "absorb": {"none": [], "unit": ["unit"], "unit_time": ["unit", "time"],
+                   "unit_region_time": ["unit", "region x time"], "trend_time": [{"trend": "unit"}, "time"]},
+        "clustering": {"iid": {"kind": "iid"}, "robust": {"kind": "robust"}, "unit": {"kind": "cluster", "by": "unit"},
+                       "region": {"kind": "cluster", "by": "region"},
+                       "unit_time": {"kind": "twoway", "by": ["unit", "time"]}},
+        "samples": samples,
+        "control_sets": {"named": controls},
+        "joint_inference": {"draws": 0},
+        "jobs": {"specs_per_job": 2000},
+    }
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--rows", type=int, default=100_000)
+    ap.add_argument("--cores", type=int, default=2)
+    ap.add_argument("--folder", help="work folder (default: a temporary one)")
+    args = ap.parse_args()
+    folder = Path(args.folder or tempfile.mkdtemp(prefix="fegrid-scale-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    data = folder / "panel.parquet"
+    make_data(args.rows, data)
+    cfg = config(data)
+    (folder / "grid.yaml").write_text(yaml.safe_dump(cfg))
+    start = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "fegrid.cli", "run", "--config", "grid.yaml", "-c", str(args.cores),
+                           "--quiet"], cwd=folder, capture_output=True, text=True)
+    wall = time.perf_counter() - start
+    if proc.returncode != 0:
+        sys.exit(proc.stdout[-3000:] + proc.stderr[-3000:])
+    run = folder / "reports" / "scale"
+    ledger = pd.read_parquet(run / "ledger.parquet")
+    logs = [json.loads(p.read_text()) for p in (run / "cache" / "fits").glob("*.json")]
+    bench = {}
+    for p in (run / "benchmarks").glob("*/*.tsv"):
+        row = pd.read_csv(p, sep="\t").iloc[0]
+        entry = bench.setdefault(p.parent.name, {"jobs": 0, "seconds": 0.0, "max_rss_mb": 0.0})
+        entry["jobs"] += 1
+        entry["seconds"] += float(row["s"])
+        entry["max_rss_mb"] = max(entry["max_rss_mb"], float(pd.to_numeric(row["max_rss"], errors="coerce") or 0))
+    fit_inside = sum(log["seconds"] for log in logs)
+    job_seconds = sum(b["seconds"] for b in bench.values())
+    logs_dir = sorted((folder / ".snakemake" / "log").glob("*.snakemake.log"))
+    busy = busy_seconds(logs_dir[-1]) if logs_dir else float("nan")
+    peak_children_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    report = {
+        "rows": args.rows,
+        "specifications": len(ledger),
+        "status": ledger["status"].value_counts().to_dict(),
+        "fit_jobs": len(logs),
+        "cores": args.cores,
+        "wall_seconds": round(wall, 1),
+        "fit_seconds_inside_fegrid": round(fit_inside, 1),
+        "job_seconds_as_measured_by_snakemake": round(job_seconds, 1),
+        "per_rule": {k: {"jobs": v["jobs"], "seconds": round(v["seconds"], 1), "max_rss_mb": round(v["max_rss_mb"])}
+                     for k, v in sorted(bench.items())},
+        "seconds_with_a_job_running": round(busy, 1),
+        "share_of_wall_with_no_job_running": round(max(wall - busy, 0) / wall, 3),
+        "share_of_job_time_outside_the_fit_step": round(
+            1 - fit_inside / max(bench.get("fit_job", {}).get("seconds", fit_inside), 1e-9), 3),
+        "peak_memory_mb_any_process": round(peak_children_mb),
+    }
+    print(json.dumps(report, indent=2))
+
+
+if __name__ == "__main__":
+    main()

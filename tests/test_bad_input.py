@@ -11,18 +11,14 @@ import pandas as pd
 import pytest
 
 from fegrid.cli import main
-from fegrid.pipeline import fit_job, gather_ledger, make_plan, snapshot_data
+from fegrid.pipeline import fit_grid
 
 
 @pytest.fixture()
 def fitted(tiny_project: Path, monkeypatch) -> Path:
     """The tiny grid fitted in-process (same functions as the Snakemake rules call)."""
     monkeypatch.chdir(tiny_project)
-    plan = make_plan("grid.yaml")
-    snapshot_data(plan.grid, plan.snapshot_path)
-    for job in plan.jobs:
-        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
-    gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+    fit_grid("grid.yaml")
     return tiny_project
 
 
@@ -106,11 +102,7 @@ def test_absorbed_focal_is_a_ledger_row_not_an_error(fitted: Path) -> None:
     data.to_csv(fitted / "grunfeld.csv", index=False)
     text = _edit((fitted / "grid.yaml").read_text(), "[value, capital]", "[value, capital, founded]")
     (fitted / "grid.yaml").write_text(text)
-    plan = make_plan("grid.yaml")
-    snapshot_data(plan.grid, plan.snapshot_path)
-    for job in plan.jobs:
-        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
-    ledger = gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+    ledger = fit_grid("grid.yaml")[1]
     founded = ledger[ledger["focal"] == "founded"]
     assert len(founded) > 0 and (founded["status"] == "not_identified").all()
     assert founded["message"].str.contains("absorbed by the fixed effects").all()

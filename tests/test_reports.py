@@ -19,7 +19,7 @@ import pytest
 from fegrid.figures import draw_curve, pair_slug, save_curve
 from fegrid.grid import load_config, spec_table
 from fegrid.joint import draw_curves, joint_tests, resample_panel
-from fegrid.pipeline import LEDGER_COLUMNS, gather_ledger, make_plan
+from fegrid.pipeline import LEDGER_COLUMNS, fit_grid
 from fegrid.report import compile_latex, figure_names, latex_escape, render_appendix, write_summaries
 from fegrid.summary import curve_summary
 
@@ -51,16 +51,10 @@ def _wage_grid(tmp: Path, wage_panel: pd.DataFrame, **extra) -> dict:
 
 def _fit_in_process(raw: dict, folder: Path) -> pd.DataFrame:
     """The grid fitted with the same functions the Snakemake rules call."""
-    from fegrid.pipeline import fit_job, snapshot_data
-
     cwd = os.getcwd()
     os.chdir(folder)
     try:
-        plan = make_plan(raw)
-        snapshot_data(plan.grid, plan.snapshot_path)
-        for job in plan.jobs:
-            fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
-        return gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+        return fit_grid(raw)[1]
     finally:
         os.chdir(cwd)
 

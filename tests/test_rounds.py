@@ -12,7 +12,7 @@ import pytest
 
 from fegrid.cli import main
 from fegrid.errors import FegridError
-from fegrid.pipeline import fit_job, gather_ledger, make_plan, snapshot_data
+from fegrid.pipeline import fit_grid
 from fegrid.provenance import build_manifest
 from fegrid.rounds import archive_round, compare_ledgers, comparison_latex, load_ledger
 from fegrid.store import write_json
@@ -23,11 +23,7 @@ def _run(folder: Path, config: str = "grid.yaml") -> Path:
     cwd = os.getcwd()
     os.chdir(folder)
     try:
-        plan = make_plan(config)
-        snapshot_data(plan.grid, plan.snapshot_path)
-        for job in plan.jobs:
-            fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
-        gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
+        plan, _ = fit_grid(config)
         manifest = build_manifest(config=plan.grid.raw, data_path=plan.grid.data_path, n_specs=len(plan.specs),
                                   seeds={}, outputs={}, benchmarks=[], workflow_root=folder)
         write_json(plan.paths.run / "manifest.json", manifest)

@@ -51,6 +51,7 @@ __all__ = [
     "plan_status",
     "run_logged",
     "result_key",
+    "fit_grid",
 ]
 
 _FRONT = ["spec_id", *DIMENSIONS, "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
@@ -236,6 +237,17 @@ def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Pa
     write_parquet(paths.ledger_parquet, ledger)
     write_csv(paths.ledger_csv, ledger)
     return ledger
+
+
+def fit_grid(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports") -> tuple[Plan, pd.DataFrame]:
+    """Snapshot, fit and gather a grid in this process, without Snakemake (the rules' own steps,
+    run one after another): for notebooks, tests and small grids. Paths are relative to the
+    working directory, as in a Snakemake run."""
+    plan = make_plan(config, root=root, prepare=True)
+    snapshot_data(plan.grid, plan.snapshot_path)
+    for job in plan.jobs:
+        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+    return plan, gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
 
 
 def plan_status(plan: Plan) -> dict[str, Any]:

@@ -248,6 +248,8 @@ class _Projection:
     def __init__(self, codes: np.ndarray, n_groups: int, w: np.ndarray, slope: np.ndarray | None):
         n = len(codes)
         self.codes = codes
+        self.w = w
+        self.unweighted = bool(np.all(w == 1.0))
         self.sum_op = sp.csr_array(
             (w, (codes, np.arange(n))), shape=(n_groups, n)
         )  # rows: groups, entries: weights, so sum_op @ X gives weighted group sums
@@ -262,12 +264,22 @@ class _Projection:
             self.inv_ss = np.divide(1.0, ss, out=np.zeros_like(ss), where=ss > 1e-12 * (1 + ss.max()))
             self.slope = tc
 
+    def _group_sums(self, v: np.ndarray) -> np.ndarray:
+        return np.bincount(self.codes, v if self.unweighted else v * self.w, minlength=len(self.inv_wsum))
+
     def apply(self, x: np.ndarray) -> np.ndarray:
-        means = (self.sum_op @ x) * self.inv_wsum[:, None]
-        out = x - means[self.codes]
-        if self.slope is not None:
-            b = (self.sum_op @ (self.slope[:, None] * x)) * self.inv_ss[:, None]
-            out -= b[self.codes] * self.slope[:, None]
+        """Residuals of the columns of ``x`` (Fortran order); a new array, ``x`` is unchanged.
+
+        Column by column with bincount: contiguous passes and no n x k temporaries.
+        """
+        out = np.empty_like(x, order="F")
+        for j in range(x.shape[1]):
+            col = x[:, j]
+            means = self._group_sums(col) * self.inv_wsum
+            np.subtract(col, means.take(self.codes), out=out[:, j])
+            if self.slope is not None:
+                slopes = self._group_sums(self.slope * col) * self.inv_ss
+                out[:, j] -= slopes.take(self.codes) * self.slope
         return out
 
 
@@ -442,8 +454,13 @@ class Absorber:
         converged = np.ones(k, dtype=bool)
         if len(self._projections) <= 1:
             return DemeanOutcome(self._sweep(x), iterations, converged)
-        w = self.w[:, None]
-        scale = np.sqrt((w * x * x).sum(axis=0))
+        unweighted = bool(np.all(self.w == 1.0))
+
+        def wdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+            """Column-wise weighted inner products."""
+            return np.einsum("ij,ij->j", a, b) if unweighted else np.einsum("i,ij,ij->j", self.w, a, b)
+
+        scale = np.sqrt(wdot(x, x))
         scale[scale == 0] = 1.0
         active = np.arange(k)
         converged[:] = False
@@ -451,7 +468,7 @@ class Absorber:
         for it in range(1, self.max_iterations + 1):
             tx = self._sweep(cur)
             d = cur - tx
-            dd = (w * d * d).sum(axis=0)
+            dd = wdot(d, d)
             done = np.sqrt(dd) <= self.tolerance * scale[active]
             if done.any():
                 x[:, active[done]] = tx[:, done]
@@ -462,7 +479,7 @@ class Absorber:
                 break
             d, dd, cur = d[:, keep], dd[keep], cur[:, keep]
             active = active[keep]
-            step = (w * cur * d).sum(axis=0) / dd
+            step = wdot(cur, d) / dd
             step = np.where(np.isfinite(step) & (step > 0), step, 1.0)
             cur = cur - d * step
             x[:, active] = cur

@@ -43,7 +43,8 @@ class FitPieces:
     ``e`` are the residuals and ``h = X B[:, 0]`` the focal row of ``B X'`` (both scaled by the
     square root of the weights), so that the focal element of every sandwich ``B M B`` is a sum
     over observations or clusters of ``h e``: one pass over the data per clustering, whatever the
-    number of controls. ``regressors()`` gives ``X`` itself, for the kinds that need the whole matrix.
+    number of controls. ``scores()`` gives ``X * e`` (Fortran order), for the kinds that need the
+    whole covariance matrix.
     """
 
     estimate: float
@@ -52,7 +53,7 @@ class FitPieces:
     rss: float
     bread: np.ndarray
     within_r2: float
-    regressors: Callable[[], np.ndarray]
+    scores: Callable[[], np.ndarray]
 
 
 @dataclass(frozen=True)
@@ -68,6 +69,8 @@ class CovarianceOutcome:
 def _cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
     """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``."""
     n_groups = int(codes.max()) + 1
+    if n_groups == len(codes):  # one observation per cluster (e.g. unit x period): the sums are the rows
+        return values, n_groups
     if values.ndim == 1:
         return np.bincount(codes, values, minlength=n_groups), n_groups
     return np.column_stack([np.bincount(codes, values[:, j], minlength=n_groups)
@@ -140,7 +143,7 @@ class TwoWay(_Kind):
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
         dof = _dof(n, n_params + absorbed_df - nested_df)
-        scores = fit.regressors() * fit.e[:, None]
+        scores = fit.scores()
         a, b, both = clusters
         meat = np.zeros((scores.shape[1], scores.shape[1]))
         counts = []

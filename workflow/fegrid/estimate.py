@@ -263,14 +263,19 @@ class _Design:
         self.columns = list(columns)
         self.pos = {c: j for j, c in enumerate(self.columns)}
         n, m = len(self.frame), len(self.columns)
+        unweighted = self.settings.weights is None
         self.Z = np.empty((n, m), order="F")
+        self.raw_norm = np.empty(m)
         for j, c in enumerate(self.columns):
-            self.Z[:, j] = self.tilde[c] * self.sqrt_w
+            if unweighted:
+                self.Z[:, j] = self.tilde[c]
+            else:
+                np.multiply(self.tilde[c], self.sqrt_w, out=self.Z[:, j])
+            raw = self.frame[c].to_numpy(dtype=float)
+            centred = raw - np.dot(self.w, raw) / self.w.sum()
+            self.raw_norm[j] = np.sqrt(np.dot(self.w * centred, centred)) if not unweighted else np.linalg.norm(centred)
         self.R = np.linalg.qr(self.Z, mode="r")
         self.norm = np.linalg.norm(self.R, axis=0)
-        raw = self.frame[self.columns].to_numpy(dtype=float)
-        raw = raw - (self.w @ raw) / self.w.sum()
-        self.raw_norm = np.sqrt(self.w @ (raw * raw))
 
     def _absorbed(self, j: int) -> bool:
         return bool(self.norm[j] <= self.ident_tol * max(self.raw_norm[j], 1e-300))
@@ -322,9 +327,16 @@ class _Design:
                 self._regressors[key] = (idx, np.linalg.inv(rs.T @ rs), dropped, "")
         return self._regressors[key]
 
+    def _scores(self, idx: list[int], e: np.ndarray) -> np.ndarray:
+        out = np.empty((len(e), len(idx)), order="F")
+        for c, j in enumerate(idx):
+            np.multiply(self.Z[:, j], e, out=out[:, c])
+        return out
+
     def fit(self, outcome: str, focal: str, controls: tuple[str, ...]) -> FitPieces:
         key = (outcome, focal, controls)
         if key not in self._fits:
+            self._fits.clear()  # keep one regression's residuals (specs arrive grouped by regression)
             idx, bread, _, _ = self.regressors(focal, controls)
             yi = self.pos[outcome]
             rs = self.R[:, idx]
@@ -341,7 +353,7 @@ class _Design:
             self._fits[key] = FitPieces(
                 estimate=float(beta[0]), e=eh[:, 0], h=eh[:, 1], rss=rss, bread=bread,
                 within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
-                regressors=lambda idx=idx: self.Z[:, idx])
+                scores=lambda idx=idx, e=eh[:, 0]: self._scores(idx, e))
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> dict[str, object]:
@@ -446,8 +458,11 @@ def fit_block(
         design.prepare(cols)
         fit.columns_demeaned += done
         fit.columns_reused += reused
-        for i in members:
+        # all covariance choices of one regression in a row: its residuals are computed once and
+        # only one regression's n-vectors are held at a time
+        for i in sorted(members, key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls)):
             results[i] = _evaluate(design, specs[i])
+        del design
     fit.results = [r for r in results if r is not None]
     return fit
 

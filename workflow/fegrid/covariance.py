@@ -33,7 +33,7 @@ import numpy as np
 
 from .errors import EstimationError
 
-__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_dimensions"]
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind"]
 
 
 @dataclass(frozen=True)
@@ -175,8 +175,3 @@ def covariance_kind(name: str) -> _Kind:
         raise EstimationError(
             f"unknown covariance kind '{name}'; the kinds are {', '.join(COVARIANCE_KINDS)}."
         ) from None
-
-
-def cluster_dimensions(name: str) -> int:
-    """How many cluster variables a covariance kind takes (0, 1 or 2)."""
-    return covariance_kind(name).dimensions

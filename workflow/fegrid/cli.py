@@ -142,11 +142,11 @@ def _print_summary(ledger_path: Path, level: float) -> None:
                             "base pct", "median", "q25", "q75", "same sign", f"signif. ({1 - level:.2g})"]))
     moves = choice_medians(ledger)
     if len(moves):
-        top = (moves.sort_values("range", ascending=False)
-               .drop_duplicates(PAIR_DIM := ["outcome", "focal", "dimension"]).head(6))
+        keys = ["outcome", "focal", "dimension"]
+        top = moves.sort_values("range", ascending=False).drop_duplicates(keys).head(6)
         print("\ndimensions that move the median estimate most:")
         print(tabulate([[r.outcome, r.focal, r.dimension, _fmt(r.range)] for r in top.itertuples()],
-                       headers=[*PAIR_DIM, "spread of choice medians"]))
+                       headers=[*keys, "spread of choice medians"]))
 
 
 def _cmd_summary(args: argparse.Namespace) -> int:

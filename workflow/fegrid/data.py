@@ -58,12 +58,17 @@ def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.Dat
     wanted = list(dict.fromkeys(columns)) if columns is not None else None
     try:
         if wanted is not None and reader is _read_csv:
-            header = set(pd.read_csv(path, nrows=0).columns)
-            return reader(path, [c for c in wanted if c in header])
-        frame = reader(path, None)
+            header = list(pd.read_csv(path, nrows=0).columns)
+            frame = reader(path, [c for c in wanted if c in set(header)])
+        else:
+            frame = reader(path, None)
+            header = list(frame.columns)
     except Exception as exc:  # any parser's failure is the user's file, not our bug
         raise DataError(f"The data file '{path}' cannot be read as {path.suffix}: {exc}") from None
-    return frame if wanted is None else frame[[c for c in wanted if c in frame.columns]]
+    if wanted is not None:
+        frame = frame[[c for c in wanted if c in frame.columns]]
+    frame.attrs["file_columns"] = header  # for error messages: the whole file, not what was read
+    return frame
 
 
 def levels_for(frame: pd.DataFrame, grid: Grid) -> dict[str, list]:
@@ -93,7 +98,8 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
         if missing:
             raise DataError(
                 f"The {role} column(s) {', '.join(repr(m) for m in missing)} named in the config "
-                f"are not in {path}. Its columns are: {', '.join(map(str, frame.columns))}."
+                f"are not in {path}. Its columns are: "
+                f"{', '.join(map(str, frame.attrs.get('file_columns', frame.columns)))}."
             )
     numeric_roles = ("outcome", "focal regressor", "control", "weights", "time")
     for role in numeric_roles:

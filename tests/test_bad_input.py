@@ -72,6 +72,11 @@ DATA_CASES = {
                               r"focal regressor column 'value' is not numeric"),
     "cluster variable with missing values": (lambda d: d.assign(firm=d["firm"].where(d.index != 5)),
                                              r"column 'firm' has 1 missing value"),
+    "infinite outcome": (lambda d: d.assign(invest=d["invest"].where(d.index != 4, float("inf"))),
+                         r"outcome column 'invest' has 1 infinite value\(s\).*line\(s\) 6 "),
+    "minus infinity in a regressor": (lambda d: d.assign(capital=d["capital"].where(d.index > 1, float("-inf"))),
+                                      r"column 'capital' has 2 infinite value\(s\)"),
+    "header only": (lambda d: d.iloc[0:0], r"has a header but no rows of data"),
 }
 
 
@@ -115,3 +120,37 @@ def test_cli_exit_code_in_a_real_process(tiny_project: Path, fegrid_env) -> None
                           cwd=tiny_project, capture_output=True, text=True, env=fegrid_env)
     assert proc.returncode == 2
     assert proc.stderr.startswith("fegrid: error: The config file 'grid.yaml' is not valid YAML")
+
+
+def test_data_path_that_is_a_folder_or_semicolon_separated(fitted: Path, capsys) -> None:
+    bad = fitted / "bad.yaml"
+    (fitted / "folder.csv").mkdir()
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "grunfeld.csv", "folder.csv"))
+    assert main(["check", "--config", str(bad)]) == 2
+    assert "is a folder" in capsys.readouterr().err
+    pd.read_csv(fitted / "grunfeld.csv").to_csv(fitted / "semi.csv", sep=";", index=False)
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "grunfeld.csv", "semi.csv"))
+    assert main(["check", "--config", str(bad)]) == 2
+    err = capsys.readouterr().err
+    assert "separated by semicolons" in err and err.count("\n") == 1
+
+
+def test_demo_refuses_a_config_instead_of_ignoring_it(capsys) -> None:
+    assert main(["demo", "--config", "mine.yaml"]) == 2
+    assert "fegrid run --config mine.yaml" in capsys.readouterr().err
+
+
+def test_check_lists_the_combinations_it_leaves_out(tiny_project: Path, monkeypatch, capsys) -> None:
+    monkeypatch.chdir(tiny_project)
+    assert main(["check", "--config", "grid.yaml"]) == 0
+    out = capsys.readouterr().out
+    assert "left out of the grid (4)" in out
+    assert "control set 'capital' holds 'capital' (outcome invest, focal capital)" in out
+    assert "1 jobs" not in out
+
+
+def test_output_cut_short_by_a_pipe_is_not_an_error(tiny_project: Path, fegrid_env) -> None:
+    """`fegrid check | head -1`: the reader leaves early; no BrokenPipe traceback."""
+    proc = subprocess.run(f"'{sys.executable}' -m fegrid.cli check --config grid.yaml | head -c 10",
+                          shell=True, cwd=tiny_project, capture_output=True, text=True, env=fegrid_env)
+    assert "Traceback" not in proc.stderr and "BrokenPipe" not in proc.stderr, proc.stderr

@@ -245,3 +245,84 @@ def test_parse_terms() -> None:
         EffectTerm(("a",)), EffectTerm(("b", "c")), TrendTerm("a"))
     with pytest.raises(ConfigError, match="unknown kind"):
         parse_absorb([{"slope": "a"}])
+
+
+# ---- absorbed effects nested in the clusters -----------------------------------------------------
+
+def _dummies(frame: pd.DataFrame, columns: tuple[str, ...]) -> np.ndarray:
+    """Every level's indicator of one column or of the interaction of several (no level dropped)."""
+    key = frame[list(columns)].astype(str).agg("|".join, axis=1)
+    return pd.get_dummies(key).to_numpy(dtype=float)
+
+
+@pytest.mark.parametrize("effects", [("nr", "educ"), ("nr", "educ x year"), ("nr", "year")])
+def test_nested_effects_count_their_rank_once_against_dummy_regression(wage_panel: pd.DataFrame,
+                                                                       effects: tuple[str, ...]) -> None:
+    """Source: statsmodels OLS with an explicit dummy column for every level (cluster-robust
+    covariance), converted to the documented convention K = k + rank(all dummies) - rank(dummies of
+    the terms nested in the clusters), with both ranks from numpy's matrix_rank.
+
+    linearmodels' wage_panel, clustered by years of education (time-invariant, so every person is
+    nested in one education group): `nr + educ` is the same model as `nr` alone (educ is implied by
+    nr), and `nr + educ x year` has two nested terms whose dummies overlap. `nr + year` has one nested
+    term and one crossing the clusters.
+    """
+    import statsmodels.api as sm
+
+    terms = parse_absorb(list(effects))
+    clusters = Inference("cluster", (("educ",),))
+    ours = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=terms, inference=clusters,
+                   keep_singletons=True)  # the dummy regression keeps every row
+    blocks = [_dummies(wage_panel, t.columns) for t in terms]
+    nested = [b for b, t in zip(blocks, terms) if wage_panel.groupby(list(t.columns))["educ"].nunique().max() == 1]
+    regressors = wage_panel[["union", "married"]].to_numpy(dtype=float)
+    design = np.column_stack([regressors, *blocks])
+    groups = pd.factorize(wage_panel["educ"])[0]
+    ref = sm.OLS(wage_panel["lwage"].to_numpy(), design).fit(cov_type="cluster", cov_kwds={"groups": groups})
+    n, k = len(wage_panel), 2
+    rank_all = np.linalg.matrix_rank(np.column_stack(blocks))
+    rank_nested = np.linalg.matrix_rank(np.column_stack(nested)) if nested else 0
+    # statsmodels' clustered factor counts every column of the design, K = its width
+    k_ours, k_sm = k + rank_all - rank_nested, design.shape[1]
+    assert ours.absorbed_df == rank_all
+    assert ours.estimate == pytest.approx(ref.params[0], rel=1e-8)
+    assert ours.std_error == pytest.approx(ref.bse[0] * np.sqrt((n - k_sm) / (n - k_ours)), rel=1e-7)
+    assert k_ours >= k
+
+
+def test_a_redundant_nested_term_changes_no_standard_error(wage_panel: pd.DataFrame) -> None:
+    """`nr + educ` is the model `nr` (educ is constant within nr): every number must be identical
+    (published identity: the column spaces of the two dummy sets are equal)."""
+    clusters = Inference("cluster", (("educ",),))
+    one = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=parse_absorb(["nr"]), inference=clusters)
+    two = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=parse_absorb(["nr", "educ"]),
+                  inference=clusters)
+    assert two.estimate == pytest.approx(one.estimate, rel=1e-9)
+    assert two.std_error == pytest.approx(one.std_error, rel=1e-9)
+
+
+# ---- values a regression cannot use --------------------------------------------------------------
+
+def test_overflowing_or_infinite_values_never_give_an_ok_row(grunfeld: pd.DataFrame) -> None:
+    """A value of 1e308 made the estimate -inf with status ok; inf crashed the linear algebra.
+    Both must be a `failed` row with the reason, and the other specifications of the block must
+    be unaffected (common practice: no non-finite number is ever reported as an estimate)."""
+    huge = grunfeld.assign(big=grunfeld["value"].where(grunfeld.index != 7, 1e308),
+                           inf=grunfeld["value"].where(grunfeld.index != 7, np.inf))
+    settings = BlockSettings(absorb=parse_absorb(["firm"]))
+    specs = [SpecRequest("a", "invest", "big"), SpecRequest("b", "invest", "inf"),
+             SpecRequest("c", "invest", "value", ("capital",)), SpecRequest("d", "big", "capital")]
+    res = {r.spec_id: r for r in fit_block(huge, settings, specs).results}
+    for key in ("a", "b", "d"):
+        assert res[key].status == "failed", res[key]
+        assert "infinite values" in res[key].message or "not finite" in res[key].message
+        assert not (res[key].status == "ok" and not np.isfinite(res[key].estimate))
+    alone = fit_one(grunfeld, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm"]))
+    assert res["c"].status == "ok" and res["c"].estimate == pytest.approx(alone.estimate, rel=1e-10)
+
+
+def test_the_engine_version_is_part_of_the_demeaned_columns_key() -> None:
+    """Columns demeaned by another version of the engine are never reused (common practice)."""
+    from fegrid import __version__
+
+    assert f'"fegrid": "{__version__}"' in BlockSettings().demean_key()

@@ -119,3 +119,38 @@ def test_schema_defaults_filled_in_change_no_key() -> None:
     assert a.settings_key() == b.settings_key()
     assert [j.key for j in plan_jobs(a.expand(), specs_per_job=7, salt="s")] == [
         j.key for j in plan_jobs(b.expand(), specs_per_job=7, salt="s")]
+
+
+def test_named_control_sets_get_no_undeclared_empty_set() -> None:
+    """Only the sets the user declares: `named` alone adds no `none` set (before: twice the specs)."""
+    raw = copy.deepcopy(BASE)
+    raw["focal_regressors"] = ["value"]
+    raw["control_sets"] = {"named": {"full": ["capital"]}}
+    grid = load_config(raw)
+    assert list(grid.controls) == ["full"]
+    assert {s.name("controls") for s in grid.expand()} == {"full"}
+    raw["control_sets"] = {"named": {"bare": [], "full": ["capital"]}}
+    assert {s.name("controls") for s in load_config(raw).expand()} == {"bare", "full"}
+    raw["control_sets"] = {"combinations_of": ["capital"]}
+    assert {s.name("controls") for s in load_config(raw).expand()} == {"none", "capital"}
+
+
+def test_a_grid_whose_every_set_holds_the_focal_says_why_it_is_empty() -> None:
+    raw = copy.deepcopy(BASE)
+    raw["focal_regressors"] = ["value"]
+    raw["control_sets"] = {"named": {"full": ["capital", "value"]}}
+    grid = load_config(raw)
+    assert grid.self_controlled() == ["control set 'full' holds 'value' (outcome invest, focal value)"]
+    with pytest.raises(ConfigError, match="control set 'full' holds 'value'"):
+        grid.expand()
+
+
+def test_unknown_key_suggests_the_near_one_and_empty_config(tmp_path) -> None:
+    raw = copy.deepcopy(BASE)
+    raw["focal_regresors"] = raw.pop("focal_regressors")
+    with pytest.raises(ConfigError, match="Did you mean 'focal_regresors' -> 'focal_regressors'"):
+        load_config(raw)
+    empty = tmp_path / "empty.yaml"
+    empty.write_text("# nothing yet\n")
+    with pytest.raises(ConfigError, match="is empty"):
+        load_config(empty)

@@ -21,7 +21,9 @@ def _readme_commands() -> list[str]:
 def test_ci_runs_the_readme_test_command() -> None:
     demo, tests = _readme_commands()
     assert "fegrid demo" in demo
-    assert tests in (ROOT / ".ci/run").read_text().splitlines()
+    ci = (ROOT / ".ci/run").read_text().splitlines()
+    assert tests in ci and tests.endswith('-m "not slow"')  # the fast tier...
+    assert ci.index(tests) < ci.index(".venv/bin/python -m pytest -m slow")  # ...then the slow tier
 
 
 def test_readme_opens_with_one_paragraph_then_two_commands() -> None:

@@ -24,8 +24,10 @@ def _run(folder: Path, config: str = "grid.yaml") -> Path:
     os.chdir(folder)
     try:
         plan, _ = fit_grid(config)
+        outputs = {"ledger_csv": plan.paths.ledger_csv, "ledger_parquet": plan.paths.ledger_parquet}
         manifest = build_manifest(config=plan.grid.raw, data_path=plan.grid.data_path, n_specs=len(plan.specs),
-                                  seeds={}, outputs={}, benchmarks=[], workflow_root=folder)
+                                  seeds={}, outputs=outputs, benchmarks=[], workflow_root=folder,
+                                  run_folder=plan.paths.run)
         write_json(plan.paths.run / "manifest.json", manifest)
         return folder / plan.paths.run
     finally:
@@ -91,3 +93,31 @@ def test_archive_freezes_a_read_only_round(tiny_project: Path) -> None:
     assert (target / "round.json").is_file()
     with pytest.raises(FegridError, match="never overwritten"):
         archive_round(run, label="submitted", today=date(2026, 12, 1))
+
+
+def test_compare_reports_each_curve_on_its_own(tiny_project: Path) -> None:
+    """Two focal regressors' estimates are on different scales: never pooled into one median."""
+    run = _run(tiny_project)
+    led, man, _ = load_ledger(run)
+    cmp = compare_ledgers(led, led.copy(), old_manifest=man, new_manifest=man)
+    assert sorted(map(tuple, cmp.curve[["outcome", "focal"]].drop_duplicates().to_numpy())) == [
+        ("invest", "capital"), ("invest", "value")]
+    for focal in ("value", "capital"):
+        ok = led[(led["focal"] == focal) & (led["status"] == "ok")]
+        row = cmp.curve[(cmp.curve["focal"] == focal) & (cmp.curve["ledger"] == "new")].iloc[0]
+        assert row["median"] == pytest.approx(ok["estimate"].median())
+    assert "invest on capital: median estimate" in comparison_latex(cmp)
+
+
+def test_a_round_holds_exactly_the_declared_outputs(tiny_project: Path) -> None:
+    run = _run(tiny_project)
+    stale = run / "figures" / "curve-invest--gone.png"
+    stale.parent.mkdir(parents=True, exist_ok=True)
+    stale.write_bytes(b"a figure of an outcome that left the grid")
+    target = archive_round(run, label="r1", today=date(2026, 12, 2))
+    files = sorted(p.relative_to(target).as_posix() for p in target.rglob("*") if p.is_file())
+    assert files == ["README.md", "ledger.csv", "ledger.parquet", "manifest.json", "round.json"]
+    # an output changed after the run that listed it is refused, not frozen
+    (run / "ledger.csv").write_text("edited by hand\n")
+    with pytest.raises(FegridError, match="missing or changed"):
+        archive_round(run, label="r2", today=date(2026, 12, 2))

@@ -55,6 +55,105 @@ def test_enumerated_rademacher_equals_brute_force_with_linearmodels(eight_firms:
     assert ours.wild_p_value == pytest.approx(brute, abs=1e-12)
 
 
+def _dummy_design(frame: pd.DataFrame, regressors: list[str], effects: list[str]) -> np.ndarray:
+    """Regressors, a constant and explicit dummy columns (first level dropped) for each effect."""
+    parts = [frame[regressors].to_numpy(dtype=float), np.ones((len(frame), 1))]
+    for col in effects:
+        parts.append(pd.get_dummies(frame[col], drop_first=True).to_numpy(dtype=float))
+    return np.column_stack(parts)
+
+
+def _brute_force_t(frame: pd.DataFrame, *, focal: str, controls: list[str], effects: list[str], cluster: str,
+                   weights: str | None, beta0: float, signs: np.ndarray) -> tuple[float, np.ndarray]:
+    """Observed and bootstrap t statistics of ``focal = beta0``, every draw refitted in full.
+
+    Restricted model: ``y - beta0 x`` on the controls and explicit dummies (weighted least squares
+    when weighted); each draw rebuilds ``y* = beta0 x + fitted + v_cluster * residuals`` in levels and
+    refits the whole dummy-variable model. The clustered variance is ``sum_g (sum_{i in g} h_i e_i)^2``
+    without a small-sample factor: a constant factor scales the observed and every bootstrap t
+    alike, so the p-value does not depend on it.
+    """
+    y = frame["invest"].to_numpy(dtype=float)
+    x = frame[focal].to_numpy(dtype=float)
+    sw = np.sqrt(frame[weights].to_numpy(dtype=float)) if weights else np.ones(len(frame))
+    full = _dummy_design(frame, [focal, *controls], effects) * sw[:, None]
+    restricted = _dummy_design(frame, controls, effects) * sw[:, None]
+    ys = (y - beta0 * x) * sw
+    gamma = np.linalg.lstsq(restricted, ys, rcond=None)[0]
+    fitted, resid = restricted @ gamma, ys - restricted @ gamma
+    codes = pd.factorize(frame[cluster], sort=True)[0]
+    h = np.linalg.pinv(full)[0]  # the focal row of (X'X)^-1 X', by SVD (not normal equations)
+
+    def t_stats(ymat: np.ndarray) -> np.ndarray:
+        beta = np.linalg.lstsq(full, ymat, rcond=None)[0]
+        e = ymat - full @ beta
+        sums = np.vstack([np.sum((h[:, None] * e)[codes == g], axis=0) for g in range(codes.max() + 1)])
+        return (beta[0] - beta0) / np.sqrt(np.sum(sums**2, axis=0))
+
+    t_obs = float(t_stats((y * sw)[:, None])[0])
+    y_star = (beta0 * x * sw + fitted)[:, None] + signs[:, codes].T * resid[:, None]
+    return t_obs, t_stats(y_star)
+
+
+_BRUTE_CASES = {
+    # name: (effects, cluster, controls, weights)
+    "nested-firm-in-firm": (["firm"], "firm", ["capital"], None),
+    "nested-no-controls": (["firm"], "firm", [], None),
+    "firm-year-by-firm": (["firm", "year"], "firm", ["capital"], None),
+    "firm-by-period": (["firm"], "period", ["capital"], None),
+    "pooled-by-firm": ([], "firm", ["capital"], None),
+    "firm-year-by-firm-weighted": (["firm", "year"], "firm", [], "capital"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(_BRUTE_CASES))
+def test_wild_bootstrap_equals_brute_force_refits_with_dummies(eight_firms: pd.DataFrame, case: str) -> None:
+    """Source: brute force — every Rademacher sign vector refitted as a dummy-variable regression
+    (numpy least squares on explicit dummy columns; the observed t is checked against statsmodels'
+    OLS/WLS with cluster-robust errors, a general-purpose reference library).
+
+    Covers absorbed effects nested in the clusters, effects that cross them (year effects under firm
+    clusters, firm effects under clusters of consecutive years, the intercept of pooled OLS), weights,
+    and no controls. The p-value must equal the brute force's, and the test-inversion interval's
+    bounds must be where the brute-force p-value crosses alpha.
+    """
+    import statsmodels.api as sm
+
+    effects, cluster, controls, weights = _BRUTE_CASES[case]
+    # clusters of consecutive years (a grouping of statsmodels' Grunfeld years: 1935-37, 1938-40, ...)
+    frame = eight_firms.assign(period=(eight_firms["year"] - 1935) // 3)
+    n_groups = frame[cluster].nunique()
+    boot = WildBootstrap(draws=999, weights="rademacher")
+    ours = fit_one(frame, "invest", "value", controls=controls, absorb=parse_absorb(effects),
+                   inference=Inference("cluster", ((cluster,),), boot), weights=weights,
+                   keep_singletons=True)
+    assert ours.wild_enumerated and ours.wild_draws == 2**n_groups
+    signs, _ = wild_weights(boot, n_groups, "unused: every sign vector is enumerated")
+    kw = {"focal": "value", "controls": controls, "effects": effects, "cluster": cluster, "weights": weights,
+          "signs": signs}
+
+    design = _dummy_design(frame, ["value", *controls], effects)
+    model = (sm.WLS(frame["invest"], design, weights=frame[weights]) if weights else sm.OLS(frame["invest"], design))
+    ref = model.fit(cov_type="cluster", cov_kwds={"groups": pd.factorize(frame[cluster])[0]})
+    assert ours.estimate == pytest.approx(ref.params.iloc[0], rel=1e-9)
+    t_obs, t_star = _brute_force_t(frame, beta0=0.0, **kw)
+    # statsmodels scales the clustered variance by G/(G-1) (N-1)/(N-K), K the design's rank
+    n, rank = len(frame), np.linalg.matrix_rank(design)
+    factor = n_groups / (n_groups - 1) * (n - 1) / (n - rank)
+    assert t_obs == pytest.approx(ref.tvalues.iloc[0] * np.sqrt(factor), rel=1e-8)
+    brute_p = float(np.mean(np.abs(t_star) >= abs(t_obs) - 1e-8 * max(1.0, abs(t_obs))))
+    assert ours.wild_p_value == pytest.approx(brute_p, abs=1e-12), (ours.wild_p_value, brute_p)
+
+    def brute_p_at(beta0: float) -> float:
+        t0, ts = _brute_force_t(frame, beta0=beta0, **kw)
+        return float(np.mean(np.abs(ts) >= abs(t0) - 1e-8 * max(1.0, abs(t0))))
+
+    alpha = 0.05
+    step = 1e-4 * ours.std_error
+    assert brute_p_at(ours.wild_ci_low - step) <= alpha < brute_p_at(ours.wild_ci_low + step)
+    assert brute_p_at(ours.wild_ci_high + step) <= alpha < brute_p_at(ours.wild_ci_high - step)
+
+
 def test_interval_by_test_inversion_brackets_the_estimate(eight_firms: pd.DataFrame) -> None:
     res = fit_one(eight_firms, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm"]),
                   inference=Inference("cluster", CLUSTER, WildBootstrap(draws=999, weights="webb", seed=3)))

@@ -184,3 +184,103 @@ def test_reports_and_snakemake_report(tiny_project: Path, fegrid_env) -> None:
     made = _snakemake(tiny_project, fegrid_env, "--report", str(html))
     assert made.returncode == 0, made.stderr[-3000:]
     assert html.stat().st_size > 10_000
+
+
+def _children(pid: int) -> list[int]:
+    """Processes whose parent is ``pid`` (from /proc)."""
+    out = []
+    for status in Path("/proc").glob("[0-9]*/status"):
+        try:
+            fields = dict(line.split(":\t", 1) for line in status.read_text().splitlines() if ":\t" in line)
+        except OSError:
+            continue
+        if fields.get("PPid", "").strip() == str(pid):
+            out.append(int(status.parent.name))
+    return sorted(out)
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    status = Path(f"/proc/{pid}/status")
+    return not (status.exists() and "\nState:\tZ" in status.read_text())
+
+
+def _start_run(folder: Path, env: dict) -> tuple[subprocess.Popen, int]:
+    """`fegrid run` in the background; returns it and its Snakemake child once a job is running."""
+    proc = subprocess.Popen([sys.executable, "-m", "fegrid.cli", "run", "--config", "grid.yaml", "-c", "1",
+                             "--quiet"], cwd=folder, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            text=True)
+    deadline = time.time() + 120
+    while time.time() < deadline and proc.poll() is None:
+        children = _children(proc.pid)
+        if children and _children(children[0]):  # Snakemake, and one of its jobs
+            return proc, children[0]
+        time.sleep(0.05)
+    raise AssertionError("fegrid run started no Snakemake job: " + proc.communicate()[1][-3000:])
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").exists(), reason="needs /proc to find the Snakemake child")
+def test_stopping_fegrid_run_stops_snakemake_and_a_killed_one_keeps_the_lock(tiny_project: Path,
+                                                                             fegrid_env) -> None:
+    # SIGTERM to `fegrid run` alone: Snakemake is stopped too, and the run says so
+    proc, child = _start_run(tiny_project, fegrid_env)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=120)
+    assert proc.returncode != 0 and "interrupted" in err, err[-2000:]
+    assert not _alive(child)
+
+    # SIGKILL to `fegrid run` alone: its Snakemake goes on, and holds the lock until it is done
+    proc, child = _start_run(tiny_project, fegrid_env)
+    proc.kill()
+    proc.wait()
+    assert _alive(child)
+    second = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert second.returncode == 2 and "is working on this run folder" in second.stderr
+    plain = _snakemake(tiny_project, fegrid_env)
+    assert plain.returncode != 0 and "is working on this run folder" in plain.stdout + plain.stderr
+    deadline = time.time() + 300
+    while _alive(child) and time.time() < deadline:
+        time.sleep(0.2)
+    done = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert done.returncode == 0, done.stderr[-3000:]
+
+
+def test_a_late_failure_puts_the_previous_results_back_as_a_set(tiny_project: Path, fegrid_env,
+                                                                tmp_path_factory) -> None:
+    """The appendix fails to compile after the ledger and figures were rewritten for a changed grid
+    (a pdflatex that fails stands in for a full disk): every published file must then be the
+    previous run's, byte for byte, and the message must say so."""
+    env = dict(fegrid_env)
+    first = _fegrid(tiny_project, env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    run = tiny_project / "reports/tiny"
+    published = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+                 and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    assert {Path("manifest.json"), Path("REPLICATION.md"), Path("ledger.csv")} <= set(published)
+
+    fake = tmp_path_factory.mktemp("fakebin")
+    (fake / "pdflatex").write_text("#!/bin/sh\necho 'disk full' >&2\nexit 1\n")
+    (fake / "pdflatex").chmod(0o755)
+    env["PATH"] = f"{fake}{os.pathsep}{env['PATH']}"
+    text = (tiny_project / "grid.yaml").read_text().replace(
+        "  firm: {kind: cluster, by: firm}", "  firm: {kind: cluster, by: firm}\n  year: {kind: cluster, by: year}")
+    (tiny_project / "grid.yaml").write_text(text)
+    failed = _fegrid(tiny_project, env, "run", "--config", "grid.yaml", "--quiet")
+    assert failed.returncode != 0
+    assert "were put back" in failed.stderr, failed.stderr[-3000:]
+    now = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+           and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    assert set(now) == set(published)
+    assert all(now[k] == published[k] for k in published), [str(k) for k in published if now[k] != published[k]]
+
+    # with a working setup the changed grid runs through, and figures it no longer declares go
+    del env["PATH"]
+    env["PATH"] = fegrid_env["PATH"]
+    (run / "figures" / "curve-invest--gone.png").write_bytes(b"left over")
+    again = _fegrid(tiny_project, env, "run", "--config", "grid.yaml", "--quiet")
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert len(pd.read_csv(run / "ledger.csv")) == 48
+    assert not (run / "figures" / "curve-invest--gone.png").exists() and not (run / ".previous").exists()

@@ -396,41 +396,49 @@ class Absorber:
         self.absorbed_df = self._count_df()
 
     def _count_df(self) -> int:
-        if not self.terms:
-            return 1
+        return self._rank(self._active) if self.terms else 1
+
+    def _rank(self, members: Sequence[int]) -> int:
+        """Rank of the dummy (and slope) columns of the active terms ``members`` (see the Notes)."""
         df = 0
-        cats = []
-        for i in self._active:
-            cats.append(i)
-            if self._projections[self._active.index(i)].slope is not None:
-                df += int(np.count_nonzero(self._projections[self._active.index(i)].inv_ss))
-        cats.sort(key=lambda i: -self._nlev[i])
+        cats = sorted(members, key=lambda i: -self._nlev[i])
+        for i in members:
+            proj = self._projections[self._active.index(i)]
+            if proj.slope is not None:
+                df += int(np.count_nonzero(proj.inv_ss))
         for pos, i in enumerate(cats):
             df += self._nlev[i] - (1 if pos >= 2 else 0)
         if len(cats) >= 2:
             a, b = cats[0], cats[1]
             df -= _components(self._codes[a], self._nlev[a], self._codes[b], self._nlev[b])
-        for i in self._active:
-            proj = self._projections[self._active.index(i)]
-            if proj.slope is None:
+        for i in members:
+            if self._projections[self._active.index(i)].slope is None:
                 continue
             # the slopes sum to the time variable itself, which an effect constant in time spans
             if any(j != i and isinstance(self.terms[j], EffectTerm)
-                   and _constant_within(self._time, self._codes[j]) for j in self._active):
+                   and _constant_within(self._time, self._codes[j]) for j in members):
                 df -= 1
         return df
 
     def nested_df(self, cluster_codes: Sequence[np.ndarray]) -> int:
-        """Degrees of freedom of the terms nested in every one of the cluster variables."""
+        """Rank of the absorbed columns that are nested in every one of the cluster variables.
+
+        The nested terms together take the rank of their own columns (computed as in
+        :attr:`absorbed_df`, restricted to them), never more than :attr:`absorbed_df`: a redundant
+        term (refined by a finer one) adds nothing, and two nested terms that overlap (``unit`` and
+        ``region x year`` inside ``region`` clusters) count their union once.
+        """
         if not self.terms or not cluster_codes:
             return 0
-        total = 0
-        for i, term in enumerate(self.terms):
-            if all(_nested(self._codes[i], c) for c in cluster_codes):
-                total += self._nlev[i]
-                if isinstance(term, TrendTerm) and i in self._active:
-                    total += int(np.count_nonzero(self._projections[self._active.index(i)].inv_ss))
-        return total
+        nested = [i for i in self._active if all(_nested(self._codes[i], c) for c in cluster_codes)]
+        return min(self._rank(nested), self.absorbed_df) if nested else 0
+
+    def nested_in(self, cluster_codes: np.ndarray) -> bool:
+        """Whether every absorbed column lies within single clusters (the intercept alone never does,
+        unless there is one cluster)."""
+        if not self.terms:
+            return bool(len(cluster_codes) == 0 or cluster_codes.max() == cluster_codes.min())
+        return all(_nested(self._codes[i], cluster_codes) for i in self._active)
 
     def _sweep(self, x: np.ndarray) -> np.ndarray:
         for proj in self._projections:

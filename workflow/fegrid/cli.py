@@ -8,8 +8,10 @@ Commands: ``check`` (config and data, no fitting), ``plan`` (grid size, jobs, wh
 from __future__ import annotations
 
 import argparse
-import fcntl
+import contextlib
 import os
+import shutil
+import signal
 import subprocess
 import sys
 from collections.abc import Sequence
@@ -20,8 +22,9 @@ from tabulate import tabulate
 
 from . import __version__
 from .errors import FegridError
+from .lock import RunLock
 from .pipeline import describe_sizes, load_checked, make_plan, plan_status, result_key
-from .store import FileResultStore
+from .store import FileResultStore, PublishedOutputs
 from .summary import choice_medians, curve_summary
 
 __all__ = ["main", "workflow_root"]
@@ -32,6 +35,17 @@ DEFAULT_CONFIG = "config/config.yaml"
 def workflow_root() -> Path:
     """The folder holding the Snakefile (fegrid's source checkout)."""
     return Path(__file__).resolve().parents[2]
+
+
+def _note_pdflatex() -> None:
+    if shutil.which("pdflatex") is None:
+        print("note: pdflatex is not installed: appendix.tex is written, appendix.pdf is not (install a TeX "
+              "distribution with booktabs and longtable to get it).")
+
+
+def _plural(n: int, word: str) -> str:
+    """``word`` with an s unless ``n`` is one: "1 job", "2 jobs"."""
+    return word if n == 1 else word + "s"
 
 
 def _fmt(x: object, digits: int = 4) -> str:
@@ -45,15 +59,20 @@ def _cmd_check(args: argparse.Namespace) -> int:
     frame = load_checked(plan.grid)
     print(f"config {args.config}: valid; data {plan.grid.data_path}: {len(frame)} rows, "
           f"{frame[plan.grid.panel.unit].nunique()} units, checks passed.")
+    _note_pdflatex()
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
-    print(f"{len(plan.specs)} specifications in {len(plan.jobs)} jobs.")
+    left_out = plan.grid.self_controlled()
+    if left_out:
+        print(f"left out of the grid ({len(left_out)}): " + "; ".join(left_out))
+    print(f"{len(plan.specs)} specifications in {len(plan.jobs)} {_plural(len(plan.jobs), 'job')}.")
     return 0
 
 
 def _cmd_plan(args: argparse.Namespace) -> int:
     plan = make_plan(args.config, prepare=True)
     st = plan_status(plan)
-    print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} jobs "
+    print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} "
+          f"{_plural(st['jobs'], 'job')} "
           f"(data sha256 {st['data_sha256'][:12]}...)")
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
     print(f"already fitted: {st['specs_fitted']} specifications; to fit: {st['specs_to_fit']} "
@@ -64,27 +83,6 @@ def _cmd_plan(args: argparse.Namespace) -> int:
                  *(n for _, n in s.names)) for s in plan.specs]
         print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
     return 0
-
-
-class _RunLock:
-    """An exclusive lock on one run's folder; the kernel releases it if the process dies."""
-
-    def __init__(self, path: Path) -> None:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        self.fh = open(path, "a")  # noqa: SIM115 - held for the lock's lifetime
-
-    def __enter__(self) -> _RunLock:
-        try:
-            fcntl.flock(self.fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
-            raise FegridError(
-                f"Another fegrid run holds the lock {self.fh.name}; wait for it to finish."
-            ) from None
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        fcntl.flock(self.fh, fcntl.LOCK_UN)
-        self.fh.close()
 
 
 def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ()) -> list[str]:
@@ -116,17 +114,70 @@ def _cmd_run(args: argparse.Namespace) -> int:
     load_checked(plan.grid)
     st = plan_status(plan)
     print(f"fegrid: run '{plan.grid.run_name}': {st['specifications']} specifications, "
-          f"{st['specs_to_fit']} to fit; {st['jobs'] - st['jobs_done']} of {st['jobs']} jobs to run.",
+          f"{st['specs_to_fit']} to fit; {st['jobs'] - st['jobs_done']} of {st['jobs']} fit "
+          f"{_plural(st['jobs'], 'job')} to run.",
           flush=True)
-    with _RunLock(plan.paths.run / ".lock"):
-        code = subprocess.call(snakemake_command(args.config, args.cores, args.snakemake_args))
-    if code != 0:
-        print(f"fegrid: the Snakemake run failed (exit code {code}); see the log shown above. "
-              "Earlier results are untouched.", file=sys.stderr)
-        return code
+    _note_pdflatex()
+    with RunLock(plan.paths.lock) as lock:
+        outputs = PublishedOutputs(plan.paths)
+        outputs.keep_previous()
+        code = _run_snakemake(snakemake_command(args.config, args.cores, args.snakemake_args), lock)
+        if code != 0:
+            restored = outputs.restore_previous()
+            if restored:
+                _forget_restored(args.config, outputs.current(), plan.paths.run)
+            what = (f"the previous run's {restored} output files were put back, so the run folder holds "
+                    "one consistent set" if restored else
+                    "there were no earlier results; what this run wrote before failing is kept")
+            reason = ("interrupted" if code in (-signal.SIGINT, -signal.SIGTERM, 130, 143)
+                      else f"the Snakemake run failed (exit code {code}); see the log shown above")
+            print(f"fegrid: {reason}. {what.capitalize()}. Run the same command again to resume.", file=sys.stderr)
+            return code if code > 0 else 128 - code
+        outputs.drop_previous()
+        stale = outputs.prune_undeclared(plan.declared_outputs(build_pdf=shutil.which("pdflatex") is not None))
+        if stale:
+            print(f"fegrid: removed {len(stale)} output(s) the grid no longer declares: {', '.join(stale)}")
     if not args.quiet:
         _print_summary(plan.paths.ledger_csv, plan.grid.level)
     return 0
+
+
+def _forget_restored(config: str, files: Sequence[Path], run: Path) -> None:
+    """Make Snakemake redo the jobs of restored files on the next run.
+
+    Snakemake's records of those files describe the failed run's jobs (its inputs' checksums), so
+    a put-back file would look up to date; without a record, Snakemake reruns the job.
+    """
+    cmd = snakemake_command(config, 1, ["--cleanup-metadata", *(str(run / f) for f in files)])
+    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=False,
+                   env={**os.environ, RunLock.HELD_ENV: str(run / ".lock")})
+
+
+def _run_snakemake(command: list[str], lock: RunLock) -> int:
+    """Run Snakemake holding ``lock`` for it; forward SIGINT, SIGTERM and SIGHUP and wait for it.
+
+    Snakemake inherits the open lock file, so the lock is held until Snakemake is gone, even when
+    this process alone is killed outright; a signal to the whole process group (Ctrl-C in a
+    terminal, a scheduler's kill) reaches Snakemake directly.
+    """
+    proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock))
+    forwarded = [signal.SIGINT, signal.SIGTERM] + ([signal.SIGHUP] if hasattr(signal, "SIGHUP") else [])
+    received: list[int] = []
+
+    def forward(signum: int, frame: object) -> None:
+        # Snakemake cancels cleanly on SIGINT (stops its jobs, marks their outputs incomplete),
+        # whatever signal asked us to stop
+        received.append(signum)
+        with contextlib.suppress(ProcessLookupError):
+            proc.send_signal(signal.SIGINT)
+
+    previous = {s: signal.signal(s, forward) for s in forwarded}
+    try:
+        code = proc.wait()
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
+    return -received[0] if received else code
 
 
 def _print_summary(ledger_path: Path, level: float) -> None:
@@ -141,12 +192,14 @@ def _print_summary(ledger_path: Path, level: float) -> None:
                    headers=["outcome", "focal", "specs", "fitted", "not id.", "failed", "baseline",
                             "base pct", "median", "q25", "q75", "same sign", f"signif. ({1 - level:.2g})"]))
     moves = choice_medians(ledger)
+    moves = moves[moves["dimension_effect"] > 0]
     if len(moves):
         keys = ["outcome", "focal", "dimension"]
-        top = moves.sort_values("range", ascending=False).drop_duplicates(keys).head(6)
-        print("\ndimensions that move the median estimate most:")
-        print(tabulate([[r.outcome, r.focal, r.dimension, _fmt(r.range)] for r in top.itertuples()],
-                       headers=[*keys, "spread of choice medians"]))
+        top = moves.sort_values("dimension_effect", ascending=False).drop_duplicates(keys).head(6)
+        print("\ndimensions that move the estimate most (median change over specifications that differ only "
+              "in that dimension):")
+        print(tabulate([[r.outcome, r.focal, r.dimension, _fmt(r.dimension_effect)] for r in top.itertuples()],
+                       headers=[*keys, "largest matched shift"]))
 
 
 def _cmd_summary(args: argparse.Namespace) -> int:
@@ -162,6 +215,11 @@ def _cmd_summary(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
+    if args.config is not None:
+        raise FegridError(
+            f"'fegrid demo' always runs the invented demo grid and takes no --config (got '{args.config}'); "
+            f"to run your own grid, use 'fegrid run --config {args.config}'."
+        )
     args.config = str(workflow_root() / DEFAULT_CONFIG)
     cfg = make_plan(args.config, prepare=True).grid
     print(f"fegrid demo: INVENTED orchard data at {cfg.data_path}; outputs in reports/{cfg.run_name}/")
@@ -213,7 +271,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--list", action="store_true", help="list every specification with its state")
     for name, text in (("run", "fit the grid through Snakemake and gather the ledger"),
                        ("demo", "run the invented demo grid end to end")):
-        p = with_config(sub.add_parser(name, help=text))
+        p = sub.add_parser(name, help=text)
+        if name == "run":
+            with_config(p)
+        else:  # a --config given to demo is refused with a message rather than ignored
+            p.add_argument("--config", default=None, help=argparse.SUPPRESS)
         p.add_argument("-c", "--cores", type=int, default=max(1, (os.cpu_count() or 1)),
                        help="jobs run in parallel (default: all cores)")
         p.add_argument("--quiet", action="store_true", help="no summary at the end")
@@ -244,6 +306,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         args.snakemake_args = args.snakemake_args[1:]
     try:
         return COMMANDS[args.command](args)
+    except BrokenPipeError:
+        # the reader of our output went away (`fegrid check | head`): not an error of the user's
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except FegridError as exc:
         print(f"fegrid: error: {exc}", file=sys.stderr)
         return 2

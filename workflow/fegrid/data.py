@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import io
 from collections.abc import Iterable
 from pathlib import Path
 
@@ -13,18 +14,18 @@ from .errors import DataError
 from .grid import Grid
 from .samples import apply_sample
 
-__all__ = ["READERS", "file_sha256", "read_table", "check_data", "levels_for"]
+__all__ = ["READERS", "file_sha256", "read_table", "check_data", "levels_for", "require_file"]
 
 
-def _read_csv(path: Path, columns: list[str] | None) -> pd.DataFrame:
+def _read_csv(path, columns: list[str] | None) -> pd.DataFrame:
     return pd.read_csv(path, usecols=columns)
 
 
-def _read_parquet(path: Path, columns: list[str] | None) -> pd.DataFrame:
+def _read_parquet(path, columns: list[str] | None) -> pd.DataFrame:
     return pd.read_parquet(path, columns=columns)
 
 
-def _read_dta(path: Path, columns: list[str] | None) -> pd.DataFrame:
+def _read_dta(path, columns: list[str] | None) -> pd.DataFrame:
     return pd.read_stata(path, columns=columns, convert_categoricals=False)
 
 
@@ -41,28 +42,61 @@ def file_sha256(path: str | Path) -> str:
     return h.hexdigest()
 
 
-def read_table(path: str | Path, columns: Iterable[str] | None = None) -> pd.DataFrame:
+def require_file(path: Path) -> None:
+    """Raise a :class:`DataError` unless ``path`` is an existing file (a folder is named as such)."""
+    if path.is_dir():
+        raise DataError(f"The data path '{path}' (data.path in the config) is a folder; name the data file in it.")
+    if not path.is_file():
+        raise DataError(f"The data file '{path}' (data.path in the config) does not exist.")
+
+
+def _separator_hint(path: Path, header: list[str]) -> None:
+    """A CSV read as one column whose name holds a semicolon or a tab was written with that separator."""
+    if len(header) == 1:
+        for sep, name in ((";", "semicolons"), ("\t", "tabs")):
+            if sep in str(header[0]):
+                raise DataError(
+                    f"The data file '{path}' reads as a single column '{str(header[0])[:60]}': its values seem "
+                    f"separated by {name}, not commas. Save it as a comma-separated CSV (or as Parquet)."
+                )
+
+
+def read_table(path: str | Path, columns: Iterable[str] | None = None, *, content: bytes | None = None) -> pd.DataFrame:
     """Read a CSV, Parquet or .dta file; with ``columns``, only those of them that exist.
 
-    Columns the file lacks are left for :func:`check_data` to name together with their role.
+    Columns the file lacks are left for :func:`check_data` to name together with their role. With
+    ``content``, the file's bytes already read are parsed (``path`` then only names the format), so
+    that what is hashed and what is parsed are the same bytes.
     """
     path = Path(path)
+    if content is not None:
+        reader = READERS.get(path.suffix.lower())
+        if reader is None:
+            raise DataError(f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
+                            f"{', '.join(READERS)}.")
+        return _parse(path, columns, lambda: io.BytesIO(content), reader)
     reader = READERS.get(path.suffix.lower())
     if reader is None:
         raise DataError(
             f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
             f"{', '.join(READERS)}."
         )
-    if not path.is_file():
-        raise DataError(f"The data file '{path}' (data.path in the config) does not exist.")
+    require_file(path)
+    return _parse(path, columns, lambda: path, reader)
+
+
+def _parse(path: Path, columns: Iterable[str] | None, source, reader) -> pd.DataFrame:
     wanted = list(dict.fromkeys(columns)) if columns is not None else None
     try:
         if wanted is not None and reader is _read_csv:
-            header = list(pd.read_csv(path, nrows=0).columns)
-            frame = reader(path, [c for c in wanted if c in set(header)])
+            header = list(pd.read_csv(source(), nrows=0).columns)
+            _separator_hint(path, header)
+            frame = reader(source(), [c for c in wanted if c in set(header)])
         else:
-            frame = reader(path, None)
+            frame = reader(source(), None)
             header = list(frame.columns)
+    except DataError:
+        raise
     except Exception as exc:  # any parser's failure is the user's file, not our bug
         raise DataError(f"The data file '{path}' cannot be read as {path.suffix}: {exc}") from None
     if wanted is not None:
@@ -93,6 +127,8 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
     weights are positive; every sample keeps some rows.
     """
     roles = grid.roles()
+    if len(frame) == 0:
+        raise DataError(f"{path[0].upper() + path[1:]} has a header but no rows of data.")
     for role, cols in roles.items():
         missing = [c for c in cols if c not in frame.columns]
         if missing:
@@ -109,6 +145,17 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
                 raise DataError(
                     f"The {role} column '{col}' is not numeric (values such as {example}); recode it "
                     "as numbers before fitting."
+                )
+    for role in numeric_roles:
+        for col in roles[role]:
+            values = frame[col].to_numpy(dtype=float)
+            infinite = np.isinf(values)
+            if infinite.any():
+                rows = np.flatnonzero(infinite)[:3] + 2  # file lines: a header line, then rows from 1
+                raise DataError(
+                    f"The {role} column '{col}' has {int(infinite.sum())} infinite value(s) (inf or -inf), "
+                    f"e.g. on line(s) {', '.join(map(str, rows))} of {path}; a regression cannot use them. "
+                    "Set them to missing (the rows are then dropped per specification) or fix them."
                 )
     for role in ("unit", "time", "cluster", "resampling"):
         for col in roles[role]:

@@ -26,6 +26,7 @@ import numpy as np
 import pandas as pd
 from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
+from . import __version__
 from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError
@@ -106,11 +107,13 @@ class BlockSettings:
     warn_min_treated_clusters: int = 5
 
     def demean_key(self) -> str:
-        """Everything that decides the demeaned columns (level and warning thresholds do not)."""
+        """Everything that decides the demeaned columns (level and warning thresholds do not),
+        and the engine's version, so that columns demeaned by another version are never reused."""
         body = asdict(self)
         for key in ("level", "warn_min_clusters", "warn_max_cluster_share", "warn_min_treated_clusters"):
             body.pop(key)
         body["absorb"] = [t.canonical() for t in self.absorb]
+        body["fegrid"] = __version__
         return json.dumps(body, sort_keys=True)
 
 
@@ -327,6 +330,13 @@ class _Design:
                 self._regressors[key] = (idx, np.linalg.inv(rs.T @ rs), dropped, "")
         return self._regressors[key]
 
+    def partial_out(self, columns: np.ndarray) -> np.ndarray:
+        """Residuals of weight-scaled columns on the absorbed effects, in the weight-scaled space."""
+        if self.settings.weights is None:
+            return self.absorber.demean(columns).values
+        scale = self.sqrt_w[:, None]
+        return self.absorber.demean(columns / scale).values * scale
+
     def _scores(self, idx: list[int], e: np.ndarray) -> np.ndarray:
         out = np.empty((len(e), len(idx)), order="F")
         for c, j in enumerate(idx):
@@ -455,16 +465,29 @@ def fit_block(
         fit.designs += 1
         cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls)})
         done, reused = design.demean(cols, store)
-        design.prepare(cols)
         fit.columns_demeaned += done
         fit.columns_reused += reused
+        # a column with infinite values (or values so large that their sums overflow) cannot enter
+        # a regression: its specifications fail with the reason instead of taking the design down
+        broken = {c for c in cols if not _usable(design.frame[c].to_numpy(dtype=float), design.tilde[c])}
+        design.prepare([c for c in cols if c not in broken])
         # all covariance choices of one regression in a row: its residuals are computed once and
         # only one regression's n-vectors are held at a time
         for i in sorted(members, key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls)):
-            results[i] = _evaluate(design, specs[i])
+            bad = sorted(broken.intersection((specs[i].outcome, specs[i].focal, *specs[i].controls)))
+            results[i] = _evaluate(design, specs[i]) if not bad else SpecResult(
+                specs[i].spec_id, STATUS_FAILED, f"the column(s) {', '.join(bad)} hold infinite values, or values "
+                "too large to square without overflow (beyond about 1e154), in this sample", n_obs=len(design.frame),
+                n_singletons=design.n_singletons)
         del design
     fit.results = [r for r in results if r is not None]
     return fit
+
+
+def _usable(raw: np.ndarray, demeaned: np.ndarray) -> bool:
+    """Whether a column can enter a regression: finite, and its sums of squares too."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        return bool(np.isfinite(demeaned @ demeaned) and np.isfinite(raw @ raw))
 
 
 def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
@@ -497,6 +520,9 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
         return SpecResult(status=STATUS_FAILED, message=str(exc), estimate=beta, within_r2=r2,
                           **common)  # type: ignore[arg-type]
     se = float(np.sqrt(cov.variance))
+    if not (np.isfinite(beta) and np.isfinite(se)):
+        return SpecResult(status=STATUS_FAILED, message="the estimate or its standard error is not finite "
+                          "(numerical overflow: check the scale of the variables)", **common)  # type: ignore[arg-type]
     t = beta / se if se > 0 else float("nan")
     p = float(2 * stdtr(cov.df, -abs(t))) if se > 0 else float("nan")
     crit = float(stdtrit(cov.df, 0.5 + s.level / 2))
@@ -514,7 +540,8 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
         wild = wild_cluster_test(
             y=design.Z[:, design.pos[spec.outcome]], x=design.Z[:, idx], bread=pieces.bread, codes=codes[0],
             factor=g / (g - 1) * (n - 1) / (n - k_total), estimate=beta, std_error=se,
-            settings=spec.inference.bootstrap, key=spec.spec_id, level=s.level)
+            settings=spec.inference.bootstrap, key=spec.spec_id, level=s.level,
+            partial_out=None if design.absorber.nested_in(codes[0]) else design.partial_out)
         extra.update(wild_p_value=wild.p_value, wild_ci_low=wild.ci_low, wild_ci_high=wild.ci_high,
                      wild_draws=wild.draws, wild_weights=spec.inference.bootstrap.weights,
                      wild_enumerated=wild.enumerated)

@@ -9,6 +9,7 @@ where it stands in the file), so reordering or renaming choices changes no id.
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import itertools
 import json
@@ -78,8 +79,12 @@ def read_yaml(path: str | Path) -> dict[str, Any]:
         where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
         problem = getattr(exc, "problem", None) or str(exc)
         raise ConfigError(f"The config file '{path}' is not valid YAML{where}: {problem}.") from None
+    if raw is None:
+        raise ConfigError(f"The config file '{path}' is empty; start from config/config.yaml, whose every key "
+                          "is commented.")
     if not isinstance(raw, dict):
-        raise ConfigError(f"The config file '{path}' must hold a mapping of keys, not {type(raw).__name__}.")
+        kind = {list: "a list", str: "a single string"}.get(type(raw), f"a {type(raw).__name__}")
+        raise ConfigError(f"The config file '{path}' must hold a mapping of keys (key: value lines), not {kind}.")
     return raw
 
 
@@ -95,11 +100,13 @@ def _schema_error(raw: Mapping[str, Any]) -> None:
     err = jsonschema.exceptions.best_match(errors)
     where = ".".join(str(p) for p in err.absolute_path) or "(top level)"
     if err.validator == "additionalProperties":
-        extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
-        allowed = ", ".join(sorted(err.schema.get("properties", {})))
+        known = sorted(err.schema.get("properties", {}))
+        extra = sorted(set(err.instance) - set(known))
+        hints = [f"'{e}' -> '{m[0]}'" for e in extra if (m := difflib.get_close_matches(str(e), known, n=1))]
+        hint = f" Did you mean {', '.join(hints)}?" if hints else ""
         raise ConfigError(
-            f"Unknown key(s) {', '.join(repr(e) for e in extra)} under '{where}' in the config; the "
-            f"keys allowed there are: {allowed}."
+            f"Unknown key(s) {', '.join(repr(e) for e in extra)} under '{where}' in the config;{hint} the "
+            f"keys allowed there are: {', '.join(known)}."
         )
     raise ConfigError(f"The config key '{where}' is invalid: {err.message}.")
 
@@ -239,7 +246,7 @@ class Grid:
             if any(_matches(rule, names, declared) for rule in self.exclude):
                 continue
             # a regression of a variable on itself, or controlling for the focal regressor or the
-            # outcome, makes no sense: such combinations are left out of the grid
+            # outcome, makes no sense: such combinations are left out of the grid (see self_controlled)
             if focal == outcome or {focal, outcome} & set(self.controls[controls]):
                 continue
             ctrl = tuple(sorted(self.controls[controls]))
@@ -276,8 +283,24 @@ class Grid:
                 canonical=canonical,
             )
         if not specs:
-            raise ConfigError("The exclusion rules remove every specification of the grid.")
+            left_out = self.self_controlled()
+            why = ("; and these combinations are left out because a control set holds the focal regressor "
+                   "or the outcome: " + "; ".join(left_out)) if left_out else ""
+            raise ConfigError(f"The exclusion rules remove every specification of the grid{why}.")
         return [specs[k] for k in sorted(specs)]
+
+    def self_controlled(self) -> list[str]:
+        """Outcome x focal x control-set combinations left out of the grid because the control set
+        holds the focal regressor or the outcome (or the focal regressor is the outcome)."""
+        out = []
+        for outcome, focal, name in itertools.product(self.outcomes, self.focals, self.controls):
+            held = sorted({focal, outcome} & set(self.controls[name]))
+            if focal == outcome:
+                out.append(f"focal regressor '{focal}' is also an outcome")
+            elif held:
+                out.append(f"control set '{name}' holds {' and '.join(repr(h) for h in held)} "
+                           f"(outcome {outcome}, focal {focal})")
+        return list(dict.fromkeys(out))
 
     def baseline_id(self, specs: Sequence[Spec]) -> str:
         """The id of the baseline specification (the first one when no baseline is declared)."""
@@ -380,7 +403,9 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     combos = cs_raw.get("combinations_of") or []
     if len(set(combos)) != len(combos):
         raise ConfigError("control_sets.combinations_of lists a column twice.")
-    for r in range(len(combos) + 1):
+    # the empty set comes from combinations_of (its first combination) or from the user's own name,
+    # never by default beside named sets
+    for r in range(len(combos) + 1 if combos else 0):
         for subset in itertools.combinations(combos, r):
             name = "+".join(subset) if subset else "none"
             if name in controls and tuple(sorted(controls[name])) != tuple(sorted(subset)):

@@ -23,7 +23,7 @@ from typing import Any
 import pandas as pd
 
 from . import __version__
-from .data import check_data, file_sha256, levels_for, read_table
+from .data import check_data, file_sha256, levels_for, read_table, require_file
 from .demo import write_demo_data
 from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block
@@ -34,6 +34,7 @@ from .store import (
     FileResultStore,
     RunPaths,
     pair_slug,
+    read_fegrid_metadata,
     write_csv,
     write_json,
     write_parquet,
@@ -46,6 +47,7 @@ __all__ = [
     "make_plan",
     "load_checked",
     "snapshot_data",
+    "snapshot_sha256",
     "fit_job",
     "gather_ledger",
     "plan_status",
@@ -95,6 +97,33 @@ class Plan:
     def fit_paths(self) -> list[Path]:
         return [self.paths.fit(j.key) for j in self.jobs]
 
+    def report_outputs(self, *, build_pdf: bool) -> dict[str, Path]:
+        """Every declared output of the run but the provenance files, by name."""
+        paths = self.paths
+        out = {
+            "ledger_csv": paths.ledger_csv,
+            "ledger_parquet": paths.ledger_parquet,
+            "summary_csv": paths.file("summary.csv"),
+            "summary_md": paths.file("summary.md"),
+            "summary_tex": paths.file("summary.tex"),
+            "choices_csv": paths.file("choices.csv"),
+            "influence_csv": paths.file("influence.csv"),
+            "joint_csv": paths.file("joint_tests.csv"),
+            "joint_md": paths.file("joint_tests.md"),
+            "appendix_tex": paths.file("appendix.tex"),
+        }
+        if build_pdf:
+            out["appendix_pdf"] = paths.file("appendix.pdf")
+        for (outcome, focal), png, pdf in zip(self.pairs, self.figure_paths("png"), self.figure_paths("pdf")):
+            out[f"figure_{outcome}_{focal}_png"] = png
+            out[f"figure_{outcome}_{focal}_pdf"] = pdf
+        return out
+
+    def declared_outputs(self, *, build_pdf: bool) -> dict[str, Path]:
+        """Every output a finished run holds, provenance included: what a round archives."""
+        return {**self.report_outputs(build_pdf=build_pdf), "manifest": self.paths.file("manifest.json"),
+                "replication": self.paths.file("REPLICATION.md")}
+
 
 def _salt(snapshot_key: str, grid: Grid) -> str:
     return hashlib.sha256((snapshot_key + grid.settings_key()).encode()).hexdigest()
@@ -128,8 +157,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "rep
     path = Path(grid.data_path)
     if prepare and grid.raw["data"].get("demo") and not path.exists():
         write_demo_data(path)
-    if not path.is_file():
-        raise DataError(f"The data file '{path}' (data.path in the config) does not exist.")
+    require_file(path)
     data_sha = file_sha256(path)
     levels: dict[str, list] = {}
     if grid.level_columns():
@@ -148,9 +176,32 @@ def load_checked(grid: Grid) -> pd.DataFrame:
     return frame
 
 
-def snapshot_data(grid: Grid, out: str | Path) -> None:
-    """Check the data and write the grid's columns as a Parquet snapshot."""
-    write_parquet(out, load_checked(grid).reset_index(drop=True))
+def snapshot_data(grid: Grid, out: str | Path, expected_sha256: str | None = None) -> None:
+    """Check the data and write the grid's columns as a Parquet snapshot.
+
+    The file is read once: the bytes hashed are the bytes parsed, and the snapshot records their
+    SHA-256 (see :func:`snapshot_sha256`). When the file's hash differs from ``expected_sha256``
+    (the hash the run was planned with, which names the snapshot), the file changed after the run
+    started: nothing is written, so a snapshot never holds other data than its name says.
+    """
+    path = Path(grid.data_path)
+    require_file(path)
+    content = path.read_bytes()
+    actual = hashlib.sha256(content).hexdigest()
+    if expected_sha256 is not None and actual != expected_sha256:
+        raise DataError(
+            f"The data file '{path}' changed after this run was planned (SHA-256 {expected_sha256[:12]}... when "
+            f"planned, {actual[:12]}... now); nothing was fitted from it. Run again to fit the file as it is now."
+        )
+    frame = read_table(path, grid.columns(), content=content)
+    check_data(frame, grid, path=f"the data file '{grid.data_path}'")
+    write_parquet(out, frame.reset_index(drop=True),
+                  fegrid_metadata={"data_path": str(path), "data_sha256": actual, "rows": len(frame)})
+
+
+def snapshot_sha256(snapshot: str | Path) -> str | None:
+    """SHA-256 of the data file's bytes from which a snapshot was made (None for old snapshots)."""
+    return read_fegrid_metadata(snapshot).get("data_sha256")
 
 
 def _jobs_from_snapshot(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> list[Job]:
@@ -244,7 +295,7 @@ def fit_grid(config: str | Path | Mapping[str, Any], *, root: str | Path = "repo
     run one after another): for notebooks, tests and small grids. Paths are relative to the
     working directory, as in a Snakemake run."""
     plan = make_plan(config, root=root, prepare=True)
-    snapshot_data(plan.grid, plan.snapshot_path)
+    snapshot_data(plan.grid, plan.snapshot_path, plan.data_sha256)
     for job in plan.jobs:
         fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
     return plan, gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
@@ -357,10 +408,14 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     draws = (pd.concat([pd.read_parquet(f) for f in draw_files], ignore_index=True) if draw_files
              else pd.DataFrame(columns=["draw", "spec_id", "estimate", "std_error", "df_inference"]))
     table = joint_tests(led, draws, grid.level) if draw_files else joint_tests(led.iloc[0:0], draws, grid.level)
+    # a p-value of 0 means that no draw was as extreme: all the draws can say is p < 1/draws
+    table["p_value_text"] = [("" if p != p else f"< {1 / n:.3g}" if p == 0 else f"{p:.4g}")
+                             for p, n in zip(table["p_value"], table["draws"])]
     write_csv(out_csv, table)
     md = ["# Joint tests across the specification curve", "",
           f"{grid.draws} bootstrap draws under the null (seed {grid.seed}, resampling `{grid.resample}`).", ""]
-    md.append(tabulate(table, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g")
+    shown = table.drop(columns=["p_value"]).rename(columns={"p_value_text": "p_value"})
+    md.append(tabulate(shown, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g")
               if len(table) else "No joint tests were run.")
     write_text(out_md, "\n".join(md) + "\n")
     return table
@@ -384,12 +439,30 @@ def compile_appendix(tex: str | Path, pdf: str | Path) -> None:
         raise FegridError(f"The appendix {tex} did not compile: {exc}") from None
 
 
+def grid_seeds(grid: Grid) -> dict[str, int | None]:
+    """Every seed of the grid by config key: the joint tests' and each wild bootstrap's."""
+    seeds: dict[str, int | None] = {"joint_inference.seed": grid.seed if grid.draws else None}
+    for name, inference in sorted(grid.clustering.items()):
+        if inference.bootstrap is not None:
+            seeds[f"clustering.{name}.wild_bootstrap.seed"] = inference.bootstrap.seed
+    return seeds
+
+
+#: Environment variable holding the time (seconds since the epoch) at which the run started.
+RUN_STARTED_ENV = "FEGRID_RUN_STARTED"
+
+
 def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs: Mapping[str, str],
-               benchmarks: Sequence[str], manifest: str | Path, replication: str | Path, n_specs: int) -> None:
-    from .cli import workflow_root
+               benchmarks: Sequence[str], manifest: str | Path, replication: str | Path, n_specs: int,
+               snapshot: str | Path | None = None) -> None:
+    import os
+
     from .provenance import build_manifest, write_provenance
 
-    man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs,
-                         seeds={"joint_inference.seed": grid.seed if grid.draws else None},
-                         outputs=outputs, benchmarks=benchmarks, workflow_root=workflow_root())
+    started = os.environ.get(RUN_STARTED_ENV)
+    man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs, seeds=grid_seeds(grid),
+                         outputs=outputs, benchmarks=benchmarks, workflow_root=Path(__file__).resolve().parents[2],
+                         fitted_data_sha256=snapshot_sha256(snapshot) if snapshot is not None else None,
+                         config_path=config_path, run_folder=Path(manifest).parent,
+                         run_wall_seconds=time.time() - float(started) if started else None)
     write_provenance(man, manifest, replication, config_path=config_path, draws=grid.draws, seed=grid.seed)

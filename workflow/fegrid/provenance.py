@@ -15,6 +15,7 @@ import hashlib
 import json
 import os
 import platform
+import shlex
 import subprocess
 import sys
 from collections.abc import Mapping, Sequence
@@ -81,23 +82,57 @@ def stage_costs(benchmarks: Sequence[str | Path]) -> dict[str, dict[str, float]]
     return costs
 
 
+def _data_record(data_path: str | Path, fitted_sha256: str | None) -> dict[str, Any]:
+    """What was fitted (the snapshot's hash) and whether the file on disk still holds it."""
+    path = Path(data_path)
+    on_disk = file_sha256(path) if path.is_file() else None
+    record: dict[str, Any] = {"path": str(data_path), "sha256": fitted_sha256 or on_disk}
+    if fitted_sha256 is not None:
+        record["file_on_disk_sha256"] = on_disk
+        record["file_on_disk_matches"] = on_disk == fitted_sha256
+    return record
+
+
+def _output_record(path: str | Path, run_folder: str | Path | None) -> dict[str, str]:
+    record = {"path": str(path), "sha256": file_sha256(path)}
+    if run_folder is not None:  # where the file sits in the run folder: what a round copies
+        record["file"] = Path(os.path.relpath(Path(path).resolve(), Path(run_folder).resolve())).as_posix()
+    return record
+
+
 def build_manifest(*, config: Mapping[str, Any], data_path: str | Path, n_specs: int, seeds: Mapping[str, Any],
                    outputs: Mapping[str, str | Path], benchmarks: Sequence[str | Path],
-                   workflow_root: str | Path) -> dict[str, Any]:
+                   workflow_root: str | Path, fitted_data_sha256: str | None = None,
+                   config_path: str | Path | None = None, run_wall_seconds: float | None = None,
+                   run_folder: str | Path | None = None) -> dict[str, Any]:
+    """The manifest of a run (see the module docstring).
+
+    ``data.sha256`` is the hash of the bytes the estimates were fitted from (recorded in the data
+    snapshot, ``fitted_data_sha256``); when the file on disk no longer holds them,
+    ``data.file_on_disk_matches`` is false. ``config_sha256`` hashes the config as JSON with sorted
+    keys after the schema's defaults are filled in (so formatting and key order do not count);
+    ``config_file.sha256`` hashes the file's own bytes.
+    """
+    config_file = None
+    if config_path is not None and Path(config_path).is_file():
+        config_file = {"path": str(config_path), "sha256": file_sha256(config_path)}
     return {
         "fegrid_version": __version__,
         "run_name": config.get("run_name"),
-        "data": {"path": str(data_path), "sha256": file_sha256(data_path)},
+        "data": _data_record(data_path, fitted_data_sha256),
         "config_sha256": config_hash(config),
+        "config_sha256_means": "SHA-256 of the config as JSON with sorted keys, after the schema's defaults "
+                               "are filled in",
+        "config_file": config_file,
         "specifications": n_specs,
         "seeds": dict(seeds),
+        "run_wall_seconds": None if run_wall_seconds is None else round(run_wall_seconds, 1),
         "python": sys.version.split()[0],
         "packages": package_versions(),
         "platform": {"system": platform.platform(), "machine": platform.machine(), "cpus": os.cpu_count()},
         "git": git_commit(workflow_root),
         "stages": stage_costs(benchmarks),
-        "outputs": {name: {"path": str(p), "sha256": file_sha256(p)} for name, p in sorted(outputs.items())
-                    if Path(p).is_file()},
+        "outputs": {name: _output_record(p, run_folder) for name, p in sorted(outputs.items()) if Path(p).is_file()},
     }
 
 
@@ -110,10 +145,40 @@ _RULE_OF = {
 }
 
 
+def _randomness(manifest: Mapping[str, Any], config_path: str, draws: int) -> list[str]:
+    seeds = {k: v for k, v in (manifest.get("seeds") or {}).items() if v is not None}
+    lines = []
+    joint = seeds.pop("joint_inference.seed", None)
+    if draws and joint is not None:
+        lines.append(f"- The joint tests draw {draws} bootstrap samples; the random seed is set in `{config_path}`, "
+                     f"key `joint_inference.seed` (value {joint}). Draw *d* uses the generator seeded with (seed, "
+                     "*d*), so the results do not depend on the number of parallel jobs.")
+    for key, value in sorted(seeds.items()):
+        lines.append(f"- The wild cluster bootstrap of key `{key}` (value {value}) in `{config_path}`: each "
+                     "specification's draws use the generator seeded with (seed, a number from its spec id), so "
+                     "they do not depend on which job fits it.")
+    if not lines:
+        lines.append("- No random numbers are used (no joint tests or wild bootstrap were requested).")
+    return lines
+
+
+def _data_lines(manifest: Mapping[str, Any]) -> list[str]:
+    data = manifest["data"]
+    lines = [f"- Check the data: `sha256sum {shlex.quote(data['path'])}` must print `{data['sha256']}` (the bytes "
+             "the estimates were fitted from)."]
+    if data.get("file_on_disk_matches") is False:
+        lines.append(f"- **Caution:** when these files were written, the file at that path held other bytes "
+                     f"(SHA-256 `{data.get('file_on_disk_sha256')}`): it changed after the estimates were fitted. "
+                     "Restore the data above, or run again to fit the file as it is now.")
+    return lines
+
+
 def replication_section(manifest: Mapping[str, Any], *, config_path: str, draws: int, seed: int | None) -> str:
     stages = manifest["stages"]
     total = sum(s["wall_seconds"] for s in stages.values())
     peak = max((s["max_rss_mb"] for s in stages.values()), default=0.0)
+    wall = manifest.get("run_wall_seconds")
+    config = shlex.quote(config_path)
     lines = [
         f"## Robustness grid `{manifest['run_name']}` (produced by fegrid {manifest['fegrid_version']})",
         "",
@@ -130,16 +195,15 @@ def replication_section(manifest: Mapping[str, Any], *, config_path: str, draws:
         "",
         "#### Controlled randomness",
         "",
-        (f"- The joint tests draw {draws} bootstrap samples; the random seed is set in `{config_path}`, key "
-         f"`joint_inference.seed` (value {seed}). Draw *d* uses the generator seeded with (seed, *d*), so the "
-         "results do not depend on the number of parallel jobs."
-         if draws else "- No random numbers are used (no joint tests were requested)."),
+        *_randomness(manifest, config_path, draws),
         "- All estimates are deterministic: the same data and config give a byte-identical ledger.",
         "",
         "#### Memory and runtime requirements",
         "",
         f"- Measured on: {manifest['platform']['system']}, {manifest['platform']['cpus']} CPUs.",
-        f"- Total wall time of the stages: {total:.1f} s; largest peak memory of a job: {peak:.0f} MB.",
+        (f"- Wall time of the run: {wall:.1f} s. " if wall is not None else "- ")
+        + f"Wall time of the jobs added up (as if run one at a time): {total:.1f} s; largest peak memory of a "
+        f"job: {peak:.0f} MB.",
         "",
         "| stage (Snakemake rule) | jobs | wall time (s) | peak memory (MB) |",
         "| --- | ---: | ---: | ---: |",
@@ -148,8 +212,8 @@ def replication_section(manifest: Mapping[str, Any], *, config_path: str, draws:
         "",
         "### Instructions to replicators",
         "",
-        f"- Check the data: `sha256sum {manifest['data']['path']}` must print `{manifest['data']['sha256']}`.",
-        f"- Run `fegrid run --config {config_path}` (or `snakemake -c N --configfile {config_path}`).",
+        *_data_lines(manifest),
+        f"- Run `fegrid run --config {config}` (or `snakemake -c N --configfile {config}`).",
         "",
         "### List of outputs",
         "",

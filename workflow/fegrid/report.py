@@ -9,6 +9,8 @@ packages booktabs, longtable and graphicx.
 
 from __future__ import annotations
 
+import hashlib
+import os
 import shutil
 import subprocess
 import tempfile
@@ -65,6 +67,20 @@ def _pct(x: float) -> str:
     return "" if not np.isfinite(x) else f"{100 * x:.1f}\\%"
 
 
+MATCHED_NOTE = (
+    "`matched_shift` is the median change in the estimate when only this dimension's choice changes from the "
+    "reference choice (`reference`, the baseline's), over the `matched_pairs` pairs of fitted specifications "
+    "that differ in nothing else; `median` is the plain median of every specification under the choice, which "
+    "also reflects which specifications the grid holds under it."
+)
+MATCHED_NOTE_TEX = (
+    r"\emph{shift} is the median change in the estimate when only this dimension's choice changes from the "
+    r"reference choice (\emph{ref.}, the baseline's), over the \emph{pairs} of fitted specifications that differ "
+    r"in nothing else; \emph{median} is the plain median under the choice, which also reflects which "
+    r"specifications the grid holds under it."
+)
+
+
 def write_summaries(ledger: pd.DataFrame, level: float, out_dir: str | Path) -> dict[str, Path]:
     """summary.csv / .md / .tex (one row per outcome x focal) and choices.csv / .md (per choice)."""
     out_dir = Path(out_dir)
@@ -90,7 +106,7 @@ def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, inf
             "share_significant_dominant": f"share significant at {1 - level:.2g} (dominant sign)"}
     lines.append(tabulate(summ[list(cols)].rename(columns=cols), headers="keys", tablefmt="github",
                           showindex=False, floatfmt=".4g"))
-    lines += ["", "## Median estimate under each choice", ""]
+    lines += ["", "## What each choice does to the estimate", "", MATCHED_NOTE, ""]
     if len(moves):
         lines.append(tabulate(moves, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
     if len(infl):
@@ -133,6 +149,10 @@ def _joint_table(joint: pd.DataFrame | None) -> str:
                       r"\bottomrule", r"\end{tabular}", ""])
 
 
+def _shift(x: float, reference: bool) -> str:
+    return "ref." if reference else ("" if not np.isfinite(x) else f"{x:+.4f}")
+
+
 def _choices_table(moves: pd.DataFrame) -> str:
     rows = []
     for (outcome, focal), part in moves.groupby(PAIR, sort=True):
@@ -140,10 +160,11 @@ def _choices_table(moves: pd.DataFrame) -> str:
             for i, r in enumerate(sub.itertuples(index=False)):
                 rows.append(f"{latex_escape(outcome) if i == 0 else ''} & {latex_escape(focal) if i == 0 else ''} & "
                             f"{latex_escape(dim) if i == 0 else ''} & {latex_escape(r.choice)} & {r.specs} & "
-                            f"{_num(r.median)} & {r.shift:+.4f} \\\\")
+                            f"{_num(r.median)} & {r.matched_pairs if r.choice != r.reference else ''} & "
+                            f"{_shift(r.matched_shift, r.choice == r.reference)} \\\\")
             rows.append(r"\addlinespace[2pt]")
-    return "\n".join([r"\begin{longtable}{@{}lllp{4.2cm}rrr@{}}", r"\toprule",
-                      r"outcome & focal & dimension & choice & specs & median & shift \\", r"\midrule",
+    return "\n".join([r"\begin{longtable}{@{}lllp{4.2cm}rrrr@{}}", r"\toprule",
+                      r"outcome & focal & dimension & choice & specs & median & pairs & shift \\", r"\midrule",
                       r"\endhead", *rows, r"\bottomrule", r"\end{longtable}", ""])
 
 
@@ -289,7 +310,8 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         r"\caption{Joint tests across the curve (bootstrap under the null).}",
         _joint_table(joint), r"\end{table}", "",
         *figure_blocks, "", r"\clearpage",
-        r"\subsection*{Median estimate under each choice}",
+        r"\subsection*{What each choice does to the estimate}",
+        MATCHED_NOTE_TEX, "",
         r"{\footnotesize", _choices_table(moves), "}",
         _influence_table(influence(ledger)),
         r"\subsection*{Every specification}",
@@ -311,10 +333,16 @@ def compile_latex(tex: str | Path, pdf: str | Path) -> Path:
     if exe is None:
         raise RuntimeError("pdflatex is not installed (Debian: texlive-latex-recommended)")
     tex = Path(tex).resolve()
+    # identical inputs give identical bytes: pdfTeX takes its dates and the file's /ID from
+    # SOURCE_DATE_EPOCH (the user's if set, else the epoch itself)
+    env = {**os.environ, "SOURCE_DATE_EPOCH": os.environ.get("SOURCE_DATE_EPOCH", "0"), "FORCE_SOURCE_DATE": "1"}
+    # the file identifier (/ID) would otherwise hash the scratch folder's random name
+    trailer_id = hashlib.sha256(tex.read_bytes()).hexdigest()[:32]
     with tempfile.TemporaryDirectory() as tmp:
         for _ in range(2):
             proc = subprocess.run([exe, "-interaction=nonstopmode", "-halt-on-error", f"-output-directory={tmp}",
-                                   tex.name], cwd=tex.parent, capture_output=True, text=True)
+                                   f"-jobname={tex.stem}", rf"\pdftrailerid{{{trailer_id}}}\input{{{tex.name}}}"],
+                                  cwd=tex.parent, capture_output=True, text=True, env=env)
             if proc.returncode != 0:
                 raise RuntimeError("pdflatex failed:\n" + proc.stdout[-4000:])
         built = Path(tmp) / (tex.stem + ".pdf")

@@ -16,14 +16,14 @@ import pandas as pd
 from tabulate import tabulate
 
 from .errors import FegridError
+from .grid import DIMENSIONS
 from .report import latex_escape
 from .store import write_json, write_text
 
 __all__ = ["LedgerComparison", "compare_ledgers", "load_ledger", "archive_round", "ROUNDS_FOLDER"]
 
 ROUNDS_FOLDER = "rounds"
-_KEEP_OUT = {"cache", "logs", "benchmarks", ROUNDS_FOLDER, ".lock"}
-_DIMS = ["outcome", "focal", "absorb", "clustering", "sample", "controls", "weights"]
+_DIMS = list(DIMENSIONS)
 
 
 def load_ledger(where: str | Path) -> tuple[pd.DataFrame, dict | None, Path]:
@@ -69,16 +69,29 @@ class LedgerComparison:
                 "changed": len(self.changed)}
 
 
-def _curve_row(ledger: pd.DataFrame, alpha: float) -> dict[str, float]:
-    ok = ledger[ledger["status"] == "ok"]
-    base = ledger[ledger["is_baseline"]]
-    return {
-        "fitted": float(len(ok)),
-        "median": float(ok["estimate"].median()) if len(ok) else np.nan,
-        "share_significant": float((ok["p_value"] < alpha).mean()) if len(ok) else np.nan,
-        "baseline_estimate": float(base["estimate"].iloc[0]) if len(base) else np.nan,
-        "baseline_std_error": float(base["std_error"].iloc[0]) if len(base) else np.nan,
-    }
+_PAIR = ["outcome", "focal"]
+
+
+def _curve_rows(old: pd.DataFrame, new: pd.DataFrame, alpha: float) -> pd.DataFrame:
+    """How each outcome x focal curve moved: one row per pair and ledger (curves are never pooled:
+    two focal regressors' estimates are on different scales)."""
+    rows = []
+    pairs = sorted({tuple(p) for led in (old, new) for p in led[_PAIR].astype(str).to_numpy().tolist()})
+    for outcome, focal in pairs:
+        for name, led in (("old", old), ("new", new)):
+            part = led[(led["outcome"].astype(str) == outcome) & (led["focal"].astype(str) == focal)]
+            ok = part[part["status"] == "ok"]
+            base = part[part["is_baseline"]]
+            rows.append({
+                "outcome": outcome, "focal": focal, "ledger": name,
+                "fitted": float(len(ok)),
+                "median": float(ok["estimate"].median()) if len(ok) else np.nan,
+                "share_significant": float((ok["p_value"] < alpha).mean()) if len(ok) else np.nan,
+                "baseline_estimate": float(base["estimate"].iloc[0]) if len(base) else np.nan,
+                "baseline_std_error": float(base["std_error"].iloc[0]) if len(base) else np.nan,
+            })
+    return pd.DataFrame(rows, columns=["outcome", "focal", "ledger", "fitted", "median", "share_significant",
+                                       "baseline_estimate", "baseline_std_error"])
 
 
 def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 1e-8, level: float = 0.95,
@@ -115,7 +128,7 @@ def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 
             "what_changed"]
     changed = both.loc[is_changed, keep].rename(columns={f"{d}_new": d for d in _DIMS})
     unchanged = both.loc[~is_changed, ["spec_id"]]
-    curve = pd.DataFrame([{"ledger": "old", **_curve_row(old, alpha)}, {"ledger": "new", **_curve_row(new, alpha)}])
+    curve = _curve_rows(old, new, alpha) if {"outcome", "focal"} <= set(old) & set(new) else pd.DataFrame()
     notes = []
     data_changed = None
     if old_manifest and new_manifest:
@@ -144,7 +157,7 @@ def comparison_text(cmp: LedgerComparison, *, fmt: str = "simple", top: int = 20
     """Terminal (``simple``) or Markdown (``github``) report of a comparison."""
     counts = cmp.counts()
     out = [tabulate([list(counts.values())], headers=list(counts), tablefmt=fmt)]
-    out += ["", "How the curve moved:",
+    out += ["", "How each curve moved (per outcome and focal regressor):",
             tabulate(cmp.curve.map(lambda v: _fmt(v) if isinstance(v, float) else v), headers="keys",
                      tablefmt=fmt, showindex=False)]
     out += [""] + [f"- {n}" for n in cmp.notes]
@@ -164,16 +177,22 @@ def comparison_text(cmp: LedgerComparison, *, fmt: str = "simple", top: int = 20
 def comparison_latex(cmp: LedgerComparison) -> str:
     """A booktabs table for a response letter: counts, then how the curve and the baseline moved."""
     c = cmp.counts()
-    old, new = cmp.curve.iloc[0], cmp.curve.iloc[1]
     rows = [
         ("Specifications added / removed", f"{c['added']} / {c['removed']}", ""),
         ("Specifications changed / unchanged", f"{c['changed']} / {c['unchanged']}", ""),
-        ("Fitted specifications", f"{old['fitted']:.0f}", f"{new['fitted']:.0f}"),
-        ("Median estimate", _fmt(old["median"]), _fmt(new["median"])),
-        ("Share significant", _fmt(old["share_significant"]), _fmt(new["share_significant"])),
-        ("Baseline estimate (s.e.)", f"{_fmt(old['baseline_estimate'])} ({_fmt(old['baseline_std_error'])})",
-         f"{_fmt(new['baseline_estimate'])} ({_fmt(new['baseline_std_error'])})"),
     ]
+    for (outcome, focal), part in cmp.curve.groupby(["outcome", "focal"], sort=True):
+        old, new = part.set_index("ledger").loc["old"], part.set_index("ledger").loc["new"]
+        pair = f"{outcome} on {focal}"
+        rows += [
+            (f"{pair}: fitted specifications", f"{old['fitted']:.0f}", f"{new['fitted']:.0f}"),
+            (f"{pair}: median estimate", _fmt(old["median"]), _fmt(new["median"])),
+            (f"{pair}: share significant", _fmt(old["share_significant"]), _fmt(new["share_significant"])),
+        ]
+        if np.isfinite(old["baseline_estimate"]) or np.isfinite(new["baseline_estimate"]):
+            rows.append((f"{pair}: baseline estimate (s.e.)",
+                         f"{_fmt(old['baseline_estimate'])} ({_fmt(old['baseline_std_error'])})",
+                         f"{_fmt(new['baseline_estimate'])} ({_fmt(new['baseline_std_error'])})"))
     body = [f"{latex_escape(a)} & {b} & {d} \\\\" for a, b, d in rows]
     notes = " ".join(latex_escape(n) for n in cmp.notes)
     return "\n".join([r"\begin{tabular}{@{}lrr@{}}", r"\toprule", r" & previous round & this round \\", r"\midrule",
@@ -182,13 +201,29 @@ def comparison_latex(cmp: LedgerComparison) -> str:
 
 
 def archive_round(run_folder: str | Path, *, label: str = "", today: date | None = None) -> Path:
-    """Copy a run's reports (not its cache or logs) into ``<run>/rounds/<date>[-label]/``, read-only.
+    """Copy a finished run's declared outputs into ``<run>/rounds/<date>[-label]/``, read-only.
 
-    A ``round.json`` lists every file with its SHA-256. An existing round folder is never touched.
+    A round holds exactly what the run's ``manifest.json`` lists (every output with its SHA-256),
+    plus the manifest and REPLICATION.md: files the grid no longer declares (figures of an outcome
+    that left it, say) stay out, and a file that changed since the run was made is refused. A
+    ``round.json`` lists every file with its SHA-256. An existing round folder is never touched.
     """
     run = Path(run_folder)
-    if not (run / "ledger.csv").is_file():
-        raise FegridError(f"There is no finished run in '{run}' (no ledger.csv); run it before archiving.")
+    manifest_path = run / "manifest.json"
+    if not manifest_path.is_file():
+        raise FegridError(f"There is no finished run in '{run}' (no manifest.json); run it before archiving.")
+    manifest = json.loads(manifest_path.read_text())
+    declared = {}
+    for entry in manifest.get("outputs", {}).values():
+        if "file" not in entry:
+            raise FegridError(f"The manifest in '{run}' was written by an older fegrid; run the grid again "
+                              "before archiving it.")
+        declared[entry["file"]] = entry["sha256"]
+    for rel, sha in declared.items():
+        path = run / rel
+        if not path.is_file() or hashlib.sha256(path.read_bytes()).hexdigest() != sha:
+            raise FegridError(f"The output '{path}' is missing or changed since the run that wrote manifest.json; "
+                              "run the grid again before archiving it.")
     name = (today or date.today()).isoformat() + (f"-{label}" if label else "")
     if any(ch in name for ch in "/\\") or name.startswith("."):
         raise FegridError(f"The round label '{label}' cannot be used in a folder name.")
@@ -198,10 +233,13 @@ def archive_round(run_folder: str | Path, *, label: str = "", today: date | None
     tmp = target.with_name(f".{name}.part")
     if tmp.exists():
         shutil.rmtree(tmp)
-    shutil.copytree(run, tmp, ignore=lambda folder, names: [n for n in names if Path(folder) == run and n in _KEEP_OUT])
+    for rel in [*declared, "manifest.json", "REPLICATION.md"]:
+        if (run / rel).is_file():
+            (tmp / rel).parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(run / rel, tmp / rel)
     files = {}
     for path in sorted(p for p in tmp.rglob("*") if p.is_file()):
-        files[str(path.relative_to(tmp))] = hashlib.sha256(path.read_bytes()).hexdigest()
+        files[path.relative_to(tmp).as_posix()] = hashlib.sha256(path.read_bytes()).hexdigest()
     write_json(tmp / "round.json", {"round": name, "source": str(run), "files": files})
     write_text(tmp / "README.md", f"# Round {name}\n\nFrozen copy of `{run}` made by `fegrid archive`. Read-only; "
                                   "compare a later run with `fegrid compare " + str(target) + " " + str(run) + "`.\n")

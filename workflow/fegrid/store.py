@@ -9,6 +9,7 @@ from __future__ import annotations
 import io
 import json
 import os
+import shutil
 import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -22,10 +23,13 @@ __all__ = [
     "write_text",
     "write_csv",
     "write_parquet",
+    "read_fegrid_metadata",
     "write_json",
     "RunPaths",
     "FileDemeanStore",
     "FileResultStore",
+    "PublishedOutputs",
+    "PRIVATE_ENTRIES",
     "pair_slug",
 ]
 
@@ -65,8 +69,27 @@ def write_csv(path: str | Path, frame: pd.DataFrame) -> Path:
     return write_text(path, frame.to_csv(index=False, lineterminator="\n"))
 
 
-def write_parquet(path: str | Path, frame: pd.DataFrame) -> Path:
-    return atomic_write(path, lambda fh: frame.to_parquet(fh, index=False))
+def write_parquet(path: str | Path, frame: pd.DataFrame, *, fegrid_metadata: dict | None = None) -> Path:
+    """Write ``frame`` as Parquet; ``fegrid_metadata`` (JSON-ready) goes into the file's schema
+    metadata under the key ``fegrid`` (see :func:`read_fegrid_metadata`)."""
+    if fegrid_metadata is None:
+        return atomic_write(path, lambda fh: frame.to_parquet(fh, index=False))
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    meta = dict(table.schema.metadata or {})
+    meta[b"fegrid"] = json.dumps(fegrid_metadata, sort_keys=True).encode()
+    table = table.replace_schema_metadata(meta)
+    return atomic_write(path, lambda fh: pq.write_table(table, fh))
+
+
+def read_fegrid_metadata(path: str | Path) -> dict:
+    """The ``fegrid`` schema metadata of a Parquet file written by :func:`write_parquet` (or {})."""
+    import pyarrow.parquet as pq
+
+    meta = pq.read_schema(path).metadata or {}
+    return json.loads(meta[b"fegrid"]) if b"fegrid" in meta else {}
 
 
 def pair_slug(outcome: str, focal: str) -> str:
@@ -89,6 +112,16 @@ class RunPaths:
     @property
     def run(self) -> Path:
         return Path(self.root) / self.run_name
+
+    @property
+    def lock(self) -> Path:
+        """The run folder's lock file (see :mod:`fegrid.lock`)."""
+        return self.run / ".lock"
+
+    @property
+    def previous(self) -> Path:
+        """Where ``fegrid run`` keeps the previous run's outputs until the new run succeeds."""
+        return self.run / ".previous"
 
     @property
     def cache(self) -> Path:
@@ -195,3 +228,72 @@ class FileResultStore:
     def put(self, key: str, record: dict) -> None:
         text = json.dumps(record, sort_keys=True)
         atomic_write(self.path(key), lambda fh: fh.write(text.encode()), durable=False)
+
+
+#: Entries of a run folder that are the run's working state, not its published outputs.
+PRIVATE_ENTRIES = frozenset({"cache", "logs", "benchmarks", "rounds", ".previous", ".lock", ".snakemake"})
+
+
+class PublishedOutputs:
+    """The files a run publishes in its folder (everything but :data:`PRIVATE_ENTRIES`).
+
+    While a new run works, the previous run's files are kept aside as hard links (a copy where the
+    file system has none) in ``<run>/.previous/``: Snakemake deletes a job's old outputs before it
+    runs the job, so a run that fails late would otherwise leave a mix of new files, old files and
+    gaps. On failure the previous set is put back whole; on success it is dropped.
+    """
+
+    def __init__(self, paths: RunPaths) -> None:
+        self.run = paths.run
+        self.previous = paths.previous
+
+    def current(self) -> list[Path]:
+        """Published files, relative to the run folder (temporary ``.part`` files left out)."""
+        if not self.run.is_dir():
+            return []
+        out = []
+        for entry in sorted(self.run.iterdir()):
+            if entry.name in PRIVATE_ENTRIES:
+                continue
+            files = [entry] if entry.is_file() else sorted(p for p in entry.rglob("*") if p.is_file())
+            out += [f.relative_to(self.run) for f in files if not f.name.endswith(".part")]
+        return out
+
+    def keep_previous(self) -> int:
+        self.drop_previous()
+        kept = self.current()
+        for rel in kept:
+            target = self.previous / rel
+            target.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                os.link(self.run / rel, target)
+            except OSError:
+                shutil.copy2(self.run / rel, target)
+        return len(kept)
+
+    def restore_previous(self) -> int:
+        """Put the previous set back whole (removing files it did not have); 0 when there was none."""
+        if not self.previous.is_dir():
+            return 0
+        kept = sorted(p.relative_to(self.previous) for p in self.previous.rglob("*") if p.is_file())
+        if kept:
+            for rel in set(self.current()) - set(kept):
+                (self.run / rel).unlink()
+            for rel in kept:
+                (self.run / rel).parent.mkdir(parents=True, exist_ok=True)
+                os.replace(self.previous / rel, self.run / rel)
+        self.drop_previous()
+        return len(kept)
+
+    def drop_previous(self) -> None:
+        if self.previous.exists():
+            shutil.rmtree(self.previous)
+
+    def prune_undeclared(self, declared: dict[str, Path]) -> list[str]:
+        """Remove figures the grid no longer declares (an outcome or focal regressor left it)."""
+        wanted = {Path(p).resolve() for p in declared.values()}
+        stale = [rel for rel in self.current()
+                 if rel.parts[0] == "figures" and (self.run / rel).resolve() not in wanted]
+        for rel in stale:
+            (self.run / rel).unlink()
+        return [str(rel) for rel in stale]

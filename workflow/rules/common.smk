@@ -3,6 +3,7 @@ import hashlib
 import json
 import os
 import shutil
+import time
 from pathlib import Path
 
 from snakemake.exceptions import WorkflowError
@@ -10,6 +11,7 @@ from snakemake.utils import validate
 
 from fegrid import pipeline
 from fegrid.errors import FegridError
+from fegrid.lock import RunLock
 
 
 try:
@@ -19,6 +21,17 @@ except FegridError as exc:
 validate(config, "../schemas/config.schema.yaml")
 
 RUN = str(PLAN.paths.run)
+
+if workflow.is_main_process and not workflow.dryrun:
+    # the run's wall time in the manifest counts from here; jobs inherit the variable
+    os.environ.setdefault(pipeline.RUN_STARTED_ENV, repr(time.time()))
+    # a plain `snakemake` takes the run folder's lock too, so it never works beside a `fegrid run`
+    # (which holds the lock itself and tells its Snakemake so)
+    if not os.environ.get(RunLock.HELD_ENV):
+        try:
+            _RUN_LOCK = RunLock(PLAN.paths.lock).acquire()
+        except FegridError as exc:
+            raise WorkflowError(f"fegrid: {exc}") from None
 # what the ledger shows besides fitted numbers (choice names, baseline): reruns only the gathering
 GRID_DIGEST = hashlib.sha256(json.dumps(config, sort_keys=True, default=str).encode()).hexdigest()
 
@@ -45,26 +58,8 @@ def fit_runtime(wildcards):
 
 
 def report_outputs(wildcards=None):
-    """Every output of the run but the provenance files, by name."""
-    paths = PLAN.paths
-    out = {
-        "ledger_csv": paths.ledger_csv,
-        "ledger_parquet": paths.ledger_parquet,
-        "summary_csv": paths.file("summary.csv"),
-        "summary_md": paths.file("summary.md"),
-        "summary_tex": paths.file("summary.tex"),
-        "choices_csv": paths.file("choices.csv"),
-        "influence_csv": paths.file("influence.csv"),
-        "joint_csv": paths.file("joint_tests.csv"),
-        "joint_md": paths.file("joint_tests.md"),
-        "appendix_tex": paths.file("appendix.tex"),
-    }
-    if BUILD_PDF:
-        out["appendix_pdf"] = paths.file("appendix.pdf")
-    for (outcome, focal), png, pdf in zip(PLAN.pairs, PLAN.figure_paths("png"), PLAN.figure_paths("pdf")):
-        out[f"figure_{outcome}_{focal}_png"] = png
-        out[f"figure_{outcome}_{focal}_pdf"] = pdf
-    return {name: str(path) for name, path in out.items()}
+    """Every output of the run but the provenance files, by name (the package names them)."""
+    return {name: str(path) for name, path in PLAN.report_outputs(build_pdf=BUILD_PDF).items()}
 
 
 def benchmark_files():
@@ -81,7 +76,4 @@ def benchmark_files():
 
 
 def final_outputs():
-    return list(report_outputs().values()) + [
-        str(PLAN.paths.file("manifest.json")),
-        str(PLAN.paths.file("REPLICATION.md")),
-    ]
+    return [str(p) for p in PLAN.declared_outputs(build_pdf=BUILD_PDF).values()]

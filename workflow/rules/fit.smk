@@ -4,6 +4,9 @@
 rule snapshot_data:
     output:
         snapshot=str(PLAN.snapshot_path),
+    params:
+        # the hash the run was planned with: a data file replaced since then is refused
+        data_sha256=PLAN.data_sha256,
     log:
         f"{RUN}/logs/snapshot_data.log",
     benchmark:

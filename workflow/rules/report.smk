@@ -118,6 +118,8 @@ rule write_provenance:
         benchmarks=benchmark_files(),
         config_path=CONFIG_PATH,
         specs=len(PLAN.specs),
+        # the snapshot records the hash of the bytes that were fitted
+        snapshot=str(PLAN.snapshot_path),
     log:
         f"{RUN}/logs/write_provenance.log",
     conda:

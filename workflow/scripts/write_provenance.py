@@ -6,4 +6,5 @@ from fegrid.pipeline import provenance, run_logged
 snakemake = globals()["snakemake"]
 run_logged(snakemake.log[0], provenance, load_config(snakemake.config), dict(snakemake.config),
            snakemake.params.config_path, dict(snakemake.input.items()), snakemake.params.benchmarks,
-           snakemake.output.manifest, snakemake.output.replication, snakemake.params.specs)
+           snakemake.output.manifest, snakemake.output.replication, snakemake.params.specs,
+           snakemake.params.snapshot)

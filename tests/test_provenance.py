@@ -1,0 +1,107 @@
+"""Provenance: the snapshot records what was fitted, and the manifest describes exactly that.
+
+Data: statsmodels' Grunfeld investment data (see conftest.py).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.data import file_sha256
+from fegrid.errors import DataError
+from fegrid.grid import load_config
+from fegrid.pipeline import fit_grid, make_plan, provenance, snapshot_data, snapshot_sha256
+from fegrid.pipeline import test_curve as joint_test_step
+
+
+def test_data_replaced_after_planning_is_refused_and_nothing_written(tiny_project: Path, monkeypatch) -> None:
+    """The snapshot is named by the hash the run was planned with: if the file changed since, the
+    snapshot would hold other bytes than its name says (and poison the cache)."""
+    monkeypatch.chdir(tiny_project)
+    plan = make_plan("grid.yaml")
+    data = pd.read_csv("grunfeld.csv")
+    data.loc[3, "invest"] += 1.0
+    data.to_csv("grunfeld.csv", index=False)
+    with pytest.raises(DataError, match="changed after this run was planned"):
+        snapshot_data(plan.grid, plan.snapshot_path, plan.data_sha256)
+    assert not plan.snapshot_path.exists()
+    # planned again, the new bytes get their own snapshot, which records their hash
+    plan = make_plan("grid.yaml")
+    snapshot_data(plan.grid, plan.snapshot_path, plan.data_sha256)
+    assert snapshot_sha256(plan.snapshot_path) == file_sha256("grunfeld.csv") == plan.data_sha256
+
+
+def _provenance(plan, tmp: Path, config_path: str = "grid.yaml") -> dict:
+    outputs = {name: str(path) for name, path in plan.report_outputs(build_pdf=False).items() if path.is_file()}
+    provenance(plan.grid, plan.grid.raw, config_path, outputs, [], plan.paths.file("manifest.json"),
+               plan.paths.file("REPLICATION.md"), len(plan.specs), plan.snapshot_path)
+    return json.loads(plan.paths.file("manifest.json").read_text())
+
+
+def test_manifest_describes_the_snapshot_that_was_fitted(tiny_project: Path, monkeypatch) -> None:
+    monkeypatch.chdir(tiny_project)
+    plan, _ = fit_grid("grid.yaml")
+    fitted = file_sha256("grunfeld.csv")
+    man = _provenance(plan, tiny_project)
+    assert man["data"]["sha256"] == fitted and man["data"]["file_on_disk_matches"] is True
+    # the file changes after the fit: the manifest still names the bytes that were fitted, and says so
+    data = pd.read_csv("grunfeld.csv")
+    data.loc[0, "invest"] *= 2
+    data.to_csv("grunfeld.csv", index=False)
+    man = _provenance(plan, tiny_project)
+    assert man["data"]["sha256"] == fitted
+    assert man["data"]["file_on_disk_matches"] is False and man["data"]["file_on_disk_sha256"] != fitted
+    text = plan.paths.file("REPLICATION.md").read_text()
+    assert f"must print `{fitted}`" in text and "**Caution:**" in text
+
+
+def test_manifest_records_config_file_every_seed_and_quotes_paths(tiny_project: Path, monkeypatch) -> None:
+    monkeypatch.chdir(tiny_project)
+    raw = (tiny_project / "grid.yaml").read_text().replace(
+        "firm: {kind: cluster, by: firm}",
+        "firm: {kind: cluster, by: firm, wild_bootstrap: {draws: 99, weights: webb, seed: 77}}")
+    (tiny_project / "my grid.yaml").write_text(raw)
+    plan, _ = fit_grid("my grid.yaml")
+    man = _provenance(plan, tiny_project, config_path="my grid.yaml")
+    assert man["config_file"] == {"path": "my grid.yaml", "sha256": file_sha256("my grid.yaml")}
+    assert "defaults" in man["config_sha256_means"]
+    assert man["seeds"] == {"joint_inference.seed": 7, "clustering.firm.wild_bootstrap.seed": 77}
+    text = plan.paths.file("REPLICATION.md").read_text()
+    assert "fegrid run --config 'my grid.yaml'" in text
+    assert "`clustering.firm.wild_bootstrap.seed` (value 77)" in text
+    assert "`joint_inference.seed` (value 7)" in text
+    # every output is listed with its place in the run folder, which is what a round copies
+    assert man["outputs"]["ledger_csv"]["file"] == "ledger.csv"
+
+
+def test_run_wall_time_is_the_runs_own(tiny_project: Path, monkeypatch) -> None:
+    import time
+
+    monkeypatch.chdir(tiny_project)
+    plan, _ = fit_grid("grid.yaml")
+    monkeypatch.setenv("FEGRID_RUN_STARTED", repr(time.time() - 12.5))
+    man = _provenance(plan, tiny_project)
+    assert 12.5 <= man["run_wall_seconds"] < 60
+    assert "Wall time of the run: " in plan.paths.file("REPLICATION.md").read_text()
+
+
+def test_joint_p_value_of_zero_reads_as_a_bound(tiny_project: Path, monkeypatch) -> None:
+    monkeypatch.chdir(tiny_project)
+    plan, ledger = fit_grid("grid.yaml")
+    led = plan.paths.ledger_parquet
+    draws = pd.DataFrame([{"draw": d, "spec_id": s, "estimate": 0.0, "std_error": 1.0, "df_inference": 10.0}
+                          for d in range(20) for s in ledger.loc[ledger["status"] == "ok", "spec_id"]])
+    draws_file = tiny_project / "draws.parquet"
+    draws.to_parquet(draws_file)
+    table = joint_test_step(load_config("grid.yaml"), led, [draws_file], tiny_project / "j.csv", tiny_project / "j.md")
+    zero = table[table["p_value"] == 0]
+    assert len(zero) and (zero["p_value_text"] == "< 0.05").all()
+    md = (tiny_project / "j.md").read_text()
+    assert "< 0.05" in md and "| 0 " not in md
+    assert os.path.getsize(tiny_project / "j.csv") > 0
+

@@ -19,7 +19,8 @@ import pytest
 from fegrid.figures import draw_curve, pair_slug, save_curve
 from fegrid.grid import load_config, spec_table
 from fegrid.joint import draw_curves, joint_tests, resample_panel
-from fegrid.pipeline import LEDGER_COLUMNS, fit_grid
+from fegrid.ledger import LEDGER_COLUMNS
+from fegrid.pipeline import fit_grid
 from fegrid.report import compile_latex, figure_names, latex_escape, render_appendix, write_summaries
 from fegrid.summary import curve_summary
 
@@ -101,10 +102,14 @@ def test_summary_counts_and_baseline_percentile(wage_ledger: pd.DataFrame, tmp_p
     ok = part[part["status"] == "ok"]
     assert union["specs"] == len(part) and union["fitted"] == len(ok)
     assert union["median"] == pytest.approx(ok["estimate"].median())
-    base = wage_ledger[wage_ledger["is_baseline"]]
-    if base["focal"].iloc[0] == "union":
-        below = (ok["estimate"] < base["estimate"].iloc[0]).mean()
-        assert union["baseline_percentile"] == pytest.approx(100 * below + 50 / len(ok), abs=1e-9)
+    # the baseline's percentile, checked on the curve that holds the baseline (whichever focal it has)
+    base = wage_ledger[wage_ledger["is_baseline"]].iloc[0]
+    curve = wage_ledger[(wage_ledger["focal"] == base["focal"]) & (wage_ledger["status"] == "ok")]["estimate"]
+    row = summ[summ["focal"] == base["focal"]].iloc[0]
+    below, ties = (curve < base["estimate"]).sum(), (curve == base["estimate"]).sum()
+    assert ties >= 1
+    assert row["baseline_percentile"] == pytest.approx(100 * (below + 0.5 * ties) / len(curve), abs=1e-9)
+    assert row["baseline_estimate"] == base["estimate"]
     paths = write_summaries(wage_ledger, 0.95, tmp_path)
     assert pd.read_csv(paths["summary_csv"]).shape[0] == 2
     assert "| outcome" in paths["summary_md"].read_text()

@@ -24,7 +24,7 @@ import pytest
 from fegrid.absorb import parse_absorb
 from fegrid.cli import workflow_root
 from fegrid.estimate import Inference, fit_one
-from fegrid.pipeline import LEDGER_COLUMNS
+from fegrid.ledger import LEDGER_COLUMNS
 
 pytestmark = pytest.mark.slow
 

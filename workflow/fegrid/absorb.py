@@ -455,8 +455,12 @@ class Absorber:
         x = np.array(x, dtype=float, order="F")
         if x.ndim == 1:
             x = x[:, None]
-        # every choice absorbs the intercept, so centring first changes nothing but the precision
-        x -= (self.w @ x) / self.w.sum()
+        # every choice absorbs the intercept, so centring first changes nothing but the precision.
+        # Every reduction below runs column by column, so that a column's result does not depend on
+        # which other columns are demeaned with it (a refit of some columns gives the same bytes).
+        wsum = self.w.sum()
+        for j in range(x.shape[1]):
+            x[:, j] -= np.dot(self.w, x[:, j]) / wsum
         k = x.shape[1]
         iterations = np.ones(k, dtype=np.int64)
         converged = np.ones(k, dtype=bool)
@@ -465,8 +469,10 @@ class Absorber:
         unweighted = bool(np.all(self.w == 1.0))
 
         def wdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-            """Column-wise weighted inner products."""
-            return np.einsum("ij,ij->j", a, b) if unweighted else np.einsum("i,ij,ij->j", self.w, a, b)
+            """Column-wise weighted inner products, one column at a time."""
+            if unweighted:
+                return np.array([np.dot(a[:, j], b[:, j]) for j in range(a.shape[1])])
+            return np.array([np.dot(self.w * a[:, j], b[:, j]) for j in range(a.shape[1])])
 
         scale = np.sqrt(wdot(x, x))
         scale[scale == 0] = 1.0

@@ -17,14 +17,14 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
-import pandas as pd
 from tabulate import tabulate
 
 from . import __version__
 from .errors import FegridError
+from .ledger import read_ledger
 from .lock import RunLock
-from .pipeline import describe_sizes, load_checked, make_plan, plan_status, result_key
-from .store import FileResultStore, PublishedOutputs
+from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
+from .store import PublishedOutputs
 from .summary import choice_medians, curve_summary
 
 __all__ = ["main", "workflow_root"]
@@ -70,7 +70,8 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 def _cmd_plan(args: argparse.Namespace) -> int:
     plan = make_plan(args.config, prepare=True)
-    st = plan_status(plan)
+    frame = load_checked(plan.grid)
+    st = plan_status(plan, frame)
     print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} "
           f"{_plural(st['jobs'], 'job')} "
           f"(data sha256 {st['data_sha256'][:12]}...)")
@@ -78,8 +79,8 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     print(f"already fitted: {st['specs_fitted']} specifications; to fit: {st['specs_to_fit']} "
           f"(jobs to run: {st['jobs'] - st['jobs_done']} of {st['jobs']}).")
     if args.list:
-        store = FileResultStore(plan.paths.results)
-        rows = [(s.spec_id, "fitted" if store.has(result_key(plan.snapshot_key, plan.grid, s)) else "to fit",
+        done = fitted_specs(plan, frame)
+        rows = [(s.spec_id, "fitted" if s.spec_id in done else "to fit",
                  *(n for _, n in s.names)) for s in plan.specs]
         print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
     return 0
@@ -111,8 +112,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
             "it with 'pip install -e .' from the checkout."
         )
     plan = make_plan(args.config, prepare=True)
-    load_checked(plan.grid)
-    st = plan_status(plan)
+    st = plan_status(plan, load_checked(plan.grid))
     print(f"fegrid: run '{plan.grid.run_name}': {st['specifications']} specifications, "
           f"{st['specs_to_fit']} to fit; {st['jobs'] - st['jobs_done']} of {st['jobs']} fit "
           f"{_plural(st['jobs'], 'job')} to run.",
@@ -181,8 +181,7 @@ def _run_snakemake(command: list[str], lock: RunLock) -> int:
 
 
 def _print_summary(ledger_path: Path, level: float) -> None:
-    ledger = pd.read_csv(ledger_path, keep_default_na=False, na_values=[""])
-    ledger["is_baseline"] = ledger["is_baseline"].astype(str) == "True"
+    ledger = read_ledger(ledger_path)
     summ = curve_summary(ledger, level)
     print(f"\nledger: {ledger_path} ({len(ledger)} specifications)")
     cols = ["outcome", "focal", "specs", "fitted", "not_identified", "failed", "baseline_estimate",

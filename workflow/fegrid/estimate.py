@@ -16,9 +16,8 @@ weights. :func:`fit_block` evaluates all of them with as little repeated work as
 
 from __future__ import annotations
 
-import hashlib
 import json
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from dataclasses import asdict, dataclass, field, fields
 from typing import Protocol
 
@@ -26,7 +25,7 @@ import numpy as np
 import pandas as pd
 from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
-from . import __version__
+from . import __version__, keys
 from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError
@@ -42,6 +41,7 @@ __all__ = [
     "fit_block",
     "fit_one",
     "RESULT_COLUMNS",
+    "read_columns",
 ]
 
 STATUS_OK = "ok"
@@ -181,14 +181,6 @@ class BlockFit:
     columns_reused: int = 0
 
 
-def _hash(*parts: object) -> str:
-    h = hashlib.sha256()
-    for p in parts:
-        h.update(p if isinstance(p, bytes) else str(p).encode())
-        h.update(b"\x00")
-    return h.hexdigest()
-
-
 def _fmt_counts(pairs: dict[str, int]) -> str:
     return "; ".join(f"{k}={v}" for k, v in pairs.items())
 
@@ -226,13 +218,17 @@ class _Design:
             self._nested[dims] = self.absorber.nested_df([self.cluster_codes(d) for d in dims])
         return self._nested[dims]
 
+    def column_key(self, column: str) -> str:
+        """Key of a demeaned column in a store: the design and the column's values on its rows."""
+        return keys.demeaned_key(self.key, column, keys.column_key(self.frame[column]))
+
     def demean(self, columns: Sequence[str], store: DemeanStore | None) -> tuple[int, int]:
         todo = [c for c in columns if c not in self.tilde]
         reused = 0
         if store is not None:
             missing = []
             for c in todo:
-                got = store.get(_hash(self.key, c))
+                got = store.get(self.column_key(c))
                 if got is None or len(got[0]) != len(self.frame):
                     missing.append(c)
                 else:
@@ -248,7 +244,7 @@ class _Design:
                 self.iterations[c] = int(out.iterations[j])
                 self.converged[c] = bool(out.converged[j])
                 if store is not None:
-                    store.put(_hash(self.key, c), vals, self.iterations[c], self.converged[c])
+                    store.put(self.column_key(c), vals, self.iterations[c], self.converged[c])
         return len(todo), reused
 
     def cluster_codes(self, dim: tuple[str, ...]) -> np.ndarray:
@@ -394,13 +390,24 @@ class _Design:
         return out
 
 
+def _design_columns(settings: BlockSettings) -> list[str]:
+    """Columns that define a design's projections: the absorbed effects' (and trends' time), weights."""
+    cols = [c for term in settings.absorb for c in term.needed_columns(settings.time)]
+    return list(dict.fromkeys(cols + ([settings.weights] if settings.weights else [])))
+
+
 def _needed(spec: SpecRequest, settings: BlockSettings) -> list[str]:
-    cols = [spec.outcome, spec.focal, *spec.controls, *spec.inference.columns()]
-    for term in settings.absorb:
-        cols.extend(term.needed_columns(settings.time))
-    if settings.weights:
-        cols.append(settings.weights)
+    """Columns whose missing values drop a row from the specification."""
+    cols = [spec.outcome, spec.focal, *spec.controls, *spec.inference.columns(), *_design_columns(settings)]
     return list(dict.fromkeys(cols))
+
+
+def read_columns(spec: SpecRequest, settings: BlockSettings, available: Sequence[str]) -> list[str]:
+    """Every column whose values can change the specification's result (its content, for
+    :func:`fegrid.keys.content_key`): its own variables, the design's, and the panel's unit
+    (diagnostics), when they are among the ``available`` columns."""
+    cols = _needed(spec, settings) + [c for c in (settings.unit, settings.time) if c]
+    return sorted(c for c in set(cols) if c in set(available))
 
 
 def fit_block(
@@ -410,8 +417,9 @@ def fit_block(
     *,
     store: DemeanStore | None = None,
     data_key: str = "",
+    evaluate: Collection[str] | None = None,
 ) -> BlockFit:
-    """Fit every specification of a block.
+    """Fit every specification of a block (or those named in ``evaluate``).
 
     Parameters
     ----------
@@ -420,18 +428,28 @@ def fit_block(
     settings
         Absorbed effects, weights, panel keys, tolerance and confidence level.
     specs
-        The specifications; each is evaluated independently of the others' presence.
+        The specifications of the block. Specifications with the same complete-case rows share a
+        design whose QR factor holds all their columns, so the last digits of a result depend on
+        which specifications share its design: to refit some specifications of a block and get
+        the same bytes as a fit of the whole block, pass the whole block and name the ones to fit
+        in ``evaluate``.
     store
         Optional store of demeaned columns, reused across calls and runs.
     data_key
-        A string identifying the data and sample (e.g. their content hashes); it is part of every
-        key in ``store``, so different data never share demeaned columns.
+        An optional salt of every key in ``store``. The keys already hash the content of the rows
+        and columns each demeaned column depends on, so a change elsewhere in the data (another
+        unit's value, a new column) reuses every stored column it does not touch.
+
+    evaluate
+        Ids of the specifications to evaluate (default: all). The others only shape the designs;
+        designs holding none of them are skipped.
 
     Returns
     -------
     BlockFit
-        One :class:`SpecResult` per specification, in the order given.
+        One :class:`SpecResult` per evaluated specification, in the order given.
     """
+    wanted = set(evaluate) if evaluate is not None else {s.spec_id for s in specs}
     notna: dict[str, np.ndarray] = {}
     groups: dict[bytes, tuple[np.ndarray, list[int]]] = {}
     for i, spec in enumerate(specs):
@@ -440,13 +458,15 @@ def fit_block(
             if col not in notna:
                 notna[col] = frame[col].notna().to_numpy()
             mask &= notna[col]
-        key = hashlib.sha256(np.packbits(mask).tobytes() + str(len(mask)).encode()).digest()
+        key = np.packbits(mask).tobytes()  # specifications with the same rows share a design
         groups.setdefault(key, (mask, []))[1].append(i)
 
     results: list[SpecResult | None] = [None] * len(specs)
     level_codes = LevelCodes(frame)
     fit = BlockFit(results=[])
-    for mask_key, (mask, members) in groups.items():
+    for mask, members in groups.values():
+        if not any(specs[i].spec_id in wanted for i in members):
+            continue
         sub = frame.loc[mask]
         positions = np.flatnonzero(mask)
         keep = np.ones(len(sub), dtype=bool)
@@ -454,14 +474,14 @@ def fit_block(
             keep = drop_singletons(sub, settings.absorb, codes_of=level_codes.on_rows(positions))
         rows = sub.loc[keep]
         if len(rows) == 0:
-            for i in members:
+            for i in (i for i in members if specs[i].spec_id in wanted):
                 results[i] = SpecResult(specs[i].spec_id, STATUS_FAILED,
                                         "no observations are left after dropping rows with missing "
                                         "values and singletons")
             continue
-        design = _Design(rows, settings, int((~keep).sum()),
-                         _hash(data_key, mask_key, settings.demean_key()),
-                         level_codes.on_rows(positions[keep]))
+        design_key = keys.design_key(settings.demean_key() + data_key, len(rows),
+                                     {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
+        design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
         fit.designs += 1
         cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls)})
         done, reused = design.demean(cols, store)
@@ -473,7 +493,8 @@ def fit_block(
         design.prepare([c for c in cols if c not in broken])
         # all covariance choices of one regression in a row: its residuals are computed once and
         # only one regression's n-vectors are held at a time
-        for i in sorted(members, key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls)):
+        for i in sorted((i for i in members if specs[i].spec_id in wanted),
+                        key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls)):
             bad = sorted(broken.intersection((specs[i].outcome, specs[i].focal, *specs[i].controls)))
             results[i] = _evaluate(design, specs[i]) if not bad else SpecResult(
                 specs[i].spec_id, STATUS_FAILED, f"the column(s) {', '.join(bad)} hold infinite values, or values "

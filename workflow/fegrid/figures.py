@@ -21,7 +21,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-from .grid import DIMENSIONS  # noqa: E402
+from .ledger import DIMENSIONS, STATUS_OK  # noqa: E402
 from .store import pair_slug  # noqa: E402,F401 - re-exported for callers of this module
 
 __all__ = ["draw_curve", "save_curve", "pair_slug", "PALETTE"]
@@ -41,7 +41,7 @@ def draw_curve(ledger: pd.DataFrame, *, level: float = 0.95, dimensions: Sequenc
                title: str | None = None) -> Figure:
     """Draw the curve of one outcome x focal pair (``ledger`` holds that pair's rows)."""
     alpha = 1.0 - level
-    ok = ledger[ledger["status"] == "ok"].sort_values(["estimate", "spec_id"]).reset_index(drop=True)
+    ok = ledger[ledger["status"] == STATUS_OK].sort_values(["estimate", "spec_id"]).reset_index(drop=True)
     n = len(ok)
     dims = [d for d in dimensions if d not in ("outcome", "focal") and ok[d].nunique() > 1] if n else []
     rows: list[tuple[str, str]] = [(d, c) for d in dims for c in sorted(ok[d].unique(), key=str)]

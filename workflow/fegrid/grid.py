@@ -10,7 +10,6 @@ where it stands in the file), so reordering or renaming choices changes no id.
 from __future__ import annotations
 
 import difflib
-import hashlib
 import itertools
 import json
 from collections.abc import Mapping, Sequence
@@ -22,15 +21,15 @@ import jsonschema
 import pandas as pd
 import yaml
 
-from . import __version__
+from . import __version__, keys
 from .absorb import Term, parse_absorb, term_label
 from .errors import ConfigError, EstimationError
 from .estimate import RESULT_COLUMNS, BlockSettings, Inference, SpecRequest
+from .ledger import DIMENSIONS
 from .samples import Panel, SampleDef, parse_sample
 from .wild import WildBootstrap
 
 __all__ = [
-    "DIMENSIONS",
     "SCHEMA_PATH",
     "Grid",
     "Spec",
@@ -40,9 +39,6 @@ __all__ = [
     "plan_jobs",
     "spec_table",
 ]
-
-#: The grid's dimensions, in the order the ledger shows them.
-DIMENSIONS: tuple[str, ...] = ("outcome", "focal", "absorb", "clustering", "sample", "controls", "weights")
 
 SCHEMA_PATH = Path(__file__).resolve().parents[1] / "schemas" / "config.schema.yaml"
 
@@ -262,7 +258,7 @@ class Grid:
                 "panel": panel,
             }
             canonical = json.dumps(body, sort_keys=True)
-            spec_id = hashlib.sha256(canonical.encode()).hexdigest()[:12]
+            spec_id = keys.spec_id(canonical)
             if spec_id in specs:
                 other = specs[spec_id]
                 raise ConfigError(
@@ -528,10 +524,7 @@ def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[J
     jobs = []
     for members in packed:
         members = sorted(members, key=lambda s: s.spec_id)
-        h = hashlib.sha256(salt.encode())
-        for s in members:
-            h.update(s.canonical.encode())
-        jobs.append(Job(h.hexdigest()[:16], tuple(members)))
+        jobs.append(Job(keys.job_key(salt, [s.canonical for s in members]), tuple(members)))
     return sorted(jobs, key=lambda j: j.key)
 
 

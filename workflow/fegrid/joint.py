@@ -31,8 +31,8 @@ from scipy.special import ndtri, stdtr
 from .errors import FegridError
 from .estimate import fit_block
 from .grid import Grid, Spec
+from .ledger import PAIR, STATUS_OK
 from .samples import apply_sample
-from .summary import PAIR
 
 __all__ = ["resample_panel", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS"]
 
@@ -123,7 +123,7 @@ def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.D
     """
     alpha = 1.0 - level
     out = []
-    fitted = ledger[ledger["status"] == "ok"]
+    fitted = ledger[ledger["status"] == STATUS_OK]
     for (outcome, focal), part in fitted.groupby(PAIR, sort=True):
         obs_est = part["estimate"].to_numpy(dtype=float)
         dominant = _dominant(obs_est)

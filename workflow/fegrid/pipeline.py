@@ -22,12 +22,13 @@ from typing import Any
 
 import pandas as pd
 
-from . import __version__
+from . import keys
 from .data import check_data, file_sha256, levels_for, read_table, require_file
 from .demo import write_demo_data
 from .errors import DataError, FegridError
-from .estimate import RESULT_COLUMNS, fit_block
-from .grid import DIMENSIONS, Grid, Job, Spec, load_config, plan_jobs, spec_table
+from .estimate import RESULT_COLUMNS, fit_block, read_columns
+from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
+from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
 from .samples import apply_sample
 from .store import (
     FileDemeanStore,
@@ -42,7 +43,6 @@ from .store import (
 )
 
 __all__ = [
-    "LEDGER_COLUMNS",
     "Plan",
     "make_plan",
     "load_checked",
@@ -52,15 +52,12 @@ __all__ = [
     "gather_ledger",
     "plan_status",
     "run_logged",
-    "result_key",
+    "result_keys",
+    "fitted_specs",
+    "ContentKeys",
     "fit_grid",
 ]
 
-_FRONT = ["spec_id", *DIMENSIONS, "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
-          "df_inference", "n_obs", "n_clusters", "n_singletons", "within_r2", "status", "message",
-          "is_baseline"]
-#: Ledger columns, in order: identity and choices, the estimate, then the engine's diagnostics.
-LEDGER_COLUMNS: tuple[str, ...] = tuple(_FRONT + [c for c in RESULT_COLUMNS if c not in _FRONT])
 
 
 @dataclass(frozen=True)
@@ -126,24 +123,60 @@ class Plan:
 
 
 def _salt(snapshot_key: str, grid: Grid) -> str:
-    return hashlib.sha256((snapshot_key + grid.settings_key()).encode()).hexdigest()
+    return keys.settings_digest(grid.settings_key(), snapshot_key)
 
 
-def _snapshot_key(data_sha: str, grid: Grid) -> str:
-    """``<data hash>-<columns hash>``: a new column gives a new snapshot of the same data."""
-    body = json.dumps({"columns": grid.columns(), "fegrid": __version__})
-    return f"{data_sha[:16]}-{hashlib.sha256(body.encode()).hexdigest()[:8]}"
+class ContentKeys:
+    """Result keys of specifications from the content of the data they read.
+
+    A specification's key hashes the settings, its canonical content and the keys of the columns
+    that its block (the specifications of its job with the same sample, effects and weights) reads
+    on the rows of its sample (see :mod:`fegrid.keys`). A block's specifications share designs, and
+    a shared design's QR factor holds all their columns, so every column of the block can move the
+    last digits of each result: keying on the block's columns keeps an incremental refit
+    byte-identical to a cold run. A corrected value therefore refits exactly the blocks whose
+    sample and columns hold it, and a column the grid does not read changes nothing.
+    """
+
+    def __init__(self, grid: Grid, frame: pd.DataFrame) -> None:
+        self.grid = grid
+        self.frame = frame
+        self.settings = grid.settings_key()
+        self._samples: dict[str, pd.DataFrame] = {}
+        self._columns: dict[tuple[str, str], str] = {}
+
+    def sample(self, spec: Spec) -> pd.DataFrame:
+        name = json.dumps(spec.sample.canonical(), sort_keys=True)
+        if name not in self._samples:
+            self._samples[name] = apply_sample(self.frame, spec.sample, self.grid.panel)
+        return self._samples[name]
+
+    def _block_content(self, block: Sequence[Spec]) -> str:
+        sample = self.sample(block[0])
+        name = json.dumps(block[0].sample.canonical(), sort_keys=True)
+        settings = self.grid.block_settings(block[0])
+        read = sorted({c for s in block for c in read_columns(s.request(), settings, list(sample.columns))})
+        for col in read:
+            if (name, col) not in self._columns:
+                self._columns[(name, col)] = keys.column_key(sample[col])
+        return keys.content_key({col: self._columns[(name, col)] for col in read})
+
+    def of_job(self, job: Job) -> dict[str, str]:
+        """Result key of every specification of a job, by spec id."""
+        blocks: dict[str, list[Spec]] = {}
+        for spec in job.specs:
+            blocks.setdefault(spec.block_key, []).append(spec)
+        out = {}
+        for block in blocks.values():
+            content = self._block_content(block)
+            out.update({s.spec_id: keys.result_key(self.settings, s.canonical, content) for s in block})
+        return out
 
 
-def _data_key(snapshot_key: str) -> str:
-    """The data part of a snapshot key: what demeaned columns and results are keyed by."""
-    return snapshot_key.split("-")[0]
-
-
-def result_key(snapshot_key: str, grid: Grid, spec: Spec) -> str:
-    """Key of one specification's stored results: data, settings and the specification."""
-    body = _data_key(snapshot_key) + grid.settings_key() + spec.canonical
-    return hashlib.sha256(body.encode()).hexdigest()[:24]
+def result_keys(grid: Grid, frame: pd.DataFrame, jobs: Sequence[Job]) -> dict[str, str]:
+    """Result key of every specification of the jobs, by spec id (see :class:`ContentKeys`)."""
+    content = ContentKeys(grid, frame)
+    return {sid: key for job in jobs for sid, key in content.of_job(job).items()}
 
 
 def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports",
@@ -164,7 +197,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "rep
         levels = levels_for(read_table(path, grid.level_columns()), grid)
     specs = grid.expand(levels)
     grid.baseline_id(specs)
-    key = _snapshot_key(data_sha, grid)
+    key = keys.snapshot_key(data_sha, grid.columns())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
     return Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
 
@@ -227,27 +260,28 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
         )
     store = FileDemeanStore(Path(store_dir) / "demeaned") if store_dir is not None else None
     results_store = FileResultStore(Path(store_dir) / "results") if store_dir is not None else None
-    data_key = _data_key(snapshot.stem)
+    content = ContentKeys(grid, frame)
     rows: dict[str, dict[str, Any]] = {}
-    keys = {s.spec_id: result_key(snapshot.stem, grid, s) for s in jobs[job_key].specs}
+    result_key_of = content.of_job(jobs[job_key])
     by_block: dict[str, list[Spec]] = {}
+    todo: set[str] = set()
     for spec in jobs[job_key].specs:
-        stored = results_store.get(keys[spec.spec_id]) if results_store is not None else None
+        # the whole block shapes its designs (and so the last digits of every result), whether
+        # or not each of its specifications must be fitted
+        by_block.setdefault(spec.block_key, []).append(spec)
+        stored = results_store.get(result_key_of[spec.spec_id]) if results_store is not None else None
         if stored is not None:
             rows[spec.spec_id] = stored
         else:
-            by_block.setdefault(spec.block_key, []).append(spec)
-    samples: dict[str, pd.DataFrame] = {}
+            todo.add(spec.spec_id)
     counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0,
               "specs_fitted": 0, "specs_reused": len(rows)}
     for bkey in sorted(by_block):
         specs = by_block[bkey]
-        sample_key = json.dumps(specs[0].sample.canonical(), sort_keys=True)
-        if sample_key not in samples:
-            samples[sample_key] = apply_sample(frame, specs[0].sample, grid.panel)
-        block = fit_block(samples[sample_key], grid.block_settings(specs[0]),
-                          [s.request() for s in specs], store=store,
-                          data_key=data_key + sample_key)
+        if not todo.intersection(s.spec_id for s in specs):
+            continue
+        block = fit_block(content.sample(specs[0]), grid.block_settings(specs[0]),
+                          [s.request() for s in specs], store=store, evaluate=todo)
         counts["designs"] += block.designs
         counts["columns_demeaned"] += block.columns_demeaned
         counts["columns_reused"] += block.columns_reused
@@ -256,7 +290,7 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
             record = res.record()
             rows[res.spec_id] = record
             if results_store is not None:
-                results_store.put(keys[res.spec_id], record)
+                results_store.put(result_key_of[res.spec_id], record)
     results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=list(RESULT_COLUMNS))
     log = {"job": job_key, "specs": len(results), **counts,
            "seconds": round(time.perf_counter() - started, 3)}
@@ -301,12 +335,18 @@ def fit_grid(config: str | Path | Mapping[str, Any], *, root: str | Path = "repo
     return plan, gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
 
 
-def plan_status(plan: Plan) -> dict[str, Any]:
+def fitted_specs(plan: Plan, frame: pd.DataFrame | None = None) -> set[str]:
+    """Ids of the specifications whose results are stored for the data as it is now."""
+    frame = frame if frame is not None else load_checked(plan.grid)
+    store = FileResultStore(plan.paths.results)
+    return {sid for sid, key in result_keys(plan.grid, frame, plan.jobs).items() if store.has(key)}
+
+
+def plan_status(plan: Plan, frame: pd.DataFrame | None = None) -> dict[str, Any]:
     """Size per dimension, jobs, and how many specifications are already fitted."""
     sizes = {d: len({s.name(d) for s in plan.specs}) for d in DIMENSIONS}
     done_jobs = [j for j in plan.jobs if plan.paths.fit(j.key).is_file()]
-    store = FileResultStore(plan.paths.results)
-    fitted = sum(store.has(result_key(plan.snapshot_key, plan.grid, s)) for s in plan.specs)
+    fitted = len(fitted_specs(plan, frame))
     return {
         "run_name": plan.grid.run_name,
         "specifications": len(plan.specs),
@@ -352,15 +392,8 @@ def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
 
 def joint_key(grid: Grid, snapshot_key: str, specs: Sequence[Spec]) -> str:
     """Key of a grid's bootstrap draws: data, settings, specifications and the draws' settings."""
-    h = hashlib.sha256((_salt(snapshot_key, grid) + json.dumps(
-        [grid.seed, grid.resample, grid.draws_per_job])).encode())
-    for s in sorted(specs, key=lambda s: s.spec_id):
-        h.update(s.canonical.encode())
-    return h.hexdigest()[:16]
-
-
-def read_ledger(path: str | Path) -> pd.DataFrame:
-    return pd.read_parquet(path)
+    return keys.joint_key(_salt(snapshot_key, grid), [grid.seed, grid.resample, grid.draws_per_job],
+                          [s.canonical for s in specs])
 
 
 def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf: str | Path) -> None:

@@ -11,8 +11,6 @@ list of outputs with the rule that produces each.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import os
 import platform
 import shlex
@@ -25,7 +23,7 @@ from typing import Any
 
 import pandas as pd
 
-from . import __version__
+from . import __version__, keys
 from .data import file_sha256
 from .store import write_json, write_text
 
@@ -38,7 +36,7 @@ KEY_PACKAGES = ("numpy", "scipy", "pandas", "pyarrow", "matplotlib", "snakemake"
 
 def config_hash(config: Mapping[str, Any]) -> str:
     """SHA-256 of the config's canonical JSON (key order and YAML formatting do not matter)."""
-    return hashlib.sha256(json.dumps(config, sort_keys=True, default=str).encode()).hexdigest()
+    return keys.config_digest(config)
 
 
 def package_versions() -> dict[str, str]:

@@ -21,9 +21,10 @@ import numpy as np
 import pandas as pd
 from tabulate import tabulate
 
-from .grid import DIMENSIONS, Grid
+from .grid import Grid
+from .ledger import DIMENSIONS, PAIR, STATUS_OK
 from .store import pair_slug, write_csv, write_text
-from .summary import PAIR, choice_medians, curve_summary, influence
+from .summary import choice_medians, curve_summary, influence
 
 __all__ = ["latex_escape", "write_summaries", "render_appendix", "compile_latex", "significance_marks",
            "figure_names"]
@@ -202,7 +203,7 @@ def _spec_table(ledger: pd.DataFrame, level: float) -> str:
                     rf"{latex_escape(focal)}}}}} \\")
         for r in part.itertuples(index=False):
             cells = [r"\texttt{" + r.spec_id[:8] + "}"] + [latex_escape(getattr(r, d)) for d in dims]
-            if r.status == "ok":
+            if r.status == STATUS_OK:
                 marks = significance_marks(r.p_value, level) + (r"$^\dagger$" if r.inference_warning else "")
                 bold = r"\bfseries " if r.is_baseline else ""
                 cells += [f"{bold}{_num(r.estimate)}{marks}", _num(r.std_error), _p(r.p_value),

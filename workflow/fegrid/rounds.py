@@ -16,14 +16,13 @@ import pandas as pd
 from tabulate import tabulate
 
 from .errors import FegridError
-from .grid import DIMENSIONS
+from .ledger import DIMENSIONS, PAIR, STATUS_OK, read_ledger
 from .report import latex_escape
 from .store import write_json, write_text
 
 __all__ = ["LedgerComparison", "compare_ledgers", "load_ledger", "archive_round", "ROUNDS_FOLDER"]
 
 ROUNDS_FOLDER = "rounds"
-_DIMS = list(DIMENSIONS)
 
 
 def load_ledger(where: str | Path) -> tuple[pd.DataFrame, dict | None, Path]:
@@ -38,15 +37,7 @@ def load_ledger(where: str | Path) -> tuple[pd.DataFrame, dict | None, Path]:
             raise FegridError(f"The folder '{where}' holds no ledger.csv or ledger.parquet.")
     if not path.is_file():
         raise FegridError(f"There is no ledger at '{where}'.")
-    try:
-        ledger = pd.read_parquet(path) if path.suffix == ".parquet" else pd.read_csv(path, keep_default_na=False,
-                                                                                     na_values=[""])
-    except Exception as exc:  # a user's file
-        raise FegridError(f"The ledger '{path}' cannot be read: {exc}") from None
-    missing = {"spec_id", "estimate", "std_error", "p_value", "status", "is_baseline"} - set(ledger.columns)
-    if missing:
-        raise FegridError(f"'{path}' is not a fegrid ledger: it lacks the column(s) {', '.join(sorted(missing))}.")
-    ledger["is_baseline"] = ledger["is_baseline"].astype(str).isin(["True", "true", "1"])
+    ledger = read_ledger(path)
     manifest_path = path.parent / "manifest.json"
     manifest = json.loads(manifest_path.read_text()) if manifest_path.is_file() else None
     return ledger, manifest, path
@@ -69,18 +60,15 @@ class LedgerComparison:
                 "changed": len(self.changed)}
 
 
-_PAIR = ["outcome", "focal"]
-
-
 def _curve_rows(old: pd.DataFrame, new: pd.DataFrame, alpha: float) -> pd.DataFrame:
     """How each outcome x focal curve moved: one row per pair and ledger (curves are never pooled:
     two focal regressors' estimates are on different scales)."""
     rows = []
-    pairs = sorted({tuple(p) for led in (old, new) for p in led[_PAIR].astype(str).to_numpy().tolist()})
+    pairs = sorted({tuple(p) for led in (old, new) for p in led[PAIR].astype(str).to_numpy().tolist()})
     for outcome, focal in pairs:
         for name, led in (("old", old), ("new", new)):
             part = led[(led["outcome"].astype(str) == outcome) & (led["focal"].astype(str) == focal)]
-            ok = part[part["status"] == "ok"]
+            ok = part[part["status"] == STATUS_OK]
             base = part[part["is_baseline"]]
             rows.append({
                 "outcome": outcome, "focal": focal, "ledger": name,
@@ -115,7 +103,7 @@ def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 
 
     status = both["status_old"] != both["status_new"]
     sig_old, sig_new = both["p_value_old"] < alpha, both["p_value_new"] < alpha
-    flipped = (sig_old != sig_new) & (both["status_old"] == "ok") & (both["status_new"] == "ok")
+    flipped = (sig_old != sig_new) & (both["status_old"] == STATUS_OK) & (both["status_new"] == STATUS_OK)
     est, se = moved("estimate"), moved("std_error")
     reasons = []
     for s, e, v, f in zip(status, est, se, flipped):
@@ -123,10 +111,10 @@ def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 
                                                 ("significance flipped", f)) if on))
     both = both.assign(what_changed=reasons)
     is_changed = both["what_changed"] != ""
-    keep = ["spec_id", *[f"{d}_new" for d in _DIMS if f"{d}_new" in both], "status_old", "status_new",
+    keep = ["spec_id", *[f"{d}_new" for d in DIMENSIONS if f"{d}_new" in both], "status_old", "status_new",
             "estimate_old", "estimate_new", "std_error_old", "std_error_new", "p_value_old", "p_value_new",
             "what_changed"]
-    changed = both.loc[is_changed, keep].rename(columns={f"{d}_new": d for d in _DIMS})
+    changed = both.loc[is_changed, keep].rename(columns={f"{d}_new": d for d in DIMENSIONS})
     unchanged = both.loc[~is_changed, ["spec_id"]]
     curve = _curve_rows(old, new, alpha) if {"outcome", "focal"} <= set(old) & set(new) else pd.DataFrame()
     notes = []
@@ -163,7 +151,7 @@ def comparison_text(cmp: LedgerComparison, *, fmt: str = "simple", top: int = 20
     out += [""] + [f"- {n}" for n in cmp.notes]
     if len(cmp.changed):
         shown = cmp.changed.head(top)
-        cols = ["spec_id", *[d for d in _DIMS if d in shown], "estimate_old", "estimate_new", "what_changed"]
+        cols = ["spec_id", *[d for d in DIMENSIONS if d in shown], "estimate_old", "estimate_new", "what_changed"]
         first = f", first {top}" if len(cmp.changed) > top else ""
         out += ["", f"Changed specifications ({len(cmp.changed)}{first}):",
                 tabulate(shown[cols], headers="keys", tablefmt=fmt, showindex=False, floatfmt=".4g")]

@@ -5,12 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .grid import DIMENSIONS
+from .ledger import DIMENSIONS, PAIR, STATUS_FAILED, STATUS_NOT_IDENTIFIED, STATUS_OK
 
-__all__ = ["curve_summary", "choice_medians", "influence", "PAIR", "CHOICE_COLUMNS"]
+__all__ = ["curve_summary", "choice_medians", "influence", "CHOICE_COLUMNS"]
 
-#: A specification curve is drawn and summarised for each outcome x focal regressor pair.
-PAIR = ["outcome", "focal"]
 
 
 def _percentile_of(values: np.ndarray, x: float) -> float:
@@ -33,7 +31,7 @@ def curve_summary(ledger: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
     alpha = 1.0 - level
     rows = []
     for (outcome, focal), part in ledger.groupby(PAIR, sort=True):
-        ok = part[part["status"] == "ok"]
+        ok = part[part["status"] == STATUS_OK]
         est = ok["estimate"].to_numpy(dtype=float)
         base = part[part["is_baseline"]]
         base_est = float(base["estimate"].iloc[0]) if len(base) else float("nan")
@@ -46,8 +44,8 @@ def curve_summary(ledger: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
             "focal": focal,
             "specs": len(part),
             "fitted": len(ok),
-            "not_identified": int((part["status"] == "not_identified").sum()),
-            "failed": int((part["status"] == "failed").sum()),
+            "not_identified": int((part["status"] == STATUS_NOT_IDENTIFIED).sum()),
+            "failed": int((part["status"] == STATUS_FAILED).sum()),
             "baseline_estimate": base_est,
             "baseline_p_value": float(base["p_value"].iloc[0]) if len(base) else float("nan"),
             "baseline_percentile": _percentile_of(est, base_est),
@@ -90,7 +88,7 @@ def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
     absolute matched shift in the dimension; ``median`` is the plain median under the choice, kept
     for description.
     """
-    ok = ledger[ledger["status"] == "ok"]
+    ok = ledger[ledger["status"] == STATUS_OK]
     rows = []
     for (outcome, focal), part in ok.groupby(PAIR, sort=True):
         for dim in DIMENSIONS:
@@ -123,7 +121,7 @@ def influence(ledger: pd.DataFrame) -> pd.DataFrame:
     baseline's sample; without one, with the median over the generator's levels. ``rank`` orders
     the levels of each group by the size of the change (1 = the most influential).
     """
-    ok = ledger[(ledger["status"] == "ok") & ledger["sample"].astype(str).str.contains(":", regex=False)]
+    ok = ledger[(ledger["status"] == STATUS_OK) & ledger["sample"].astype(str).str.contains(":", regex=False)]
     columns = ["generator", "dropped", "outcome", "focal", "absorb", "clustering", "controls", "weights",
                "estimate", "reference", "reference_sample", "change", "rank"]
     if ok.empty:
@@ -131,7 +129,8 @@ def influence(ledger: pd.DataFrame) -> pd.DataFrame:
     base = ledger[ledger["is_baseline"]]
     base_sample = str(base["sample"].iloc[0]) if len(base) else ""
     others = ["outcome", "focal", "absorb", "clustering", "controls", "weights"]
-    reference = ledger[(ledger["sample"] == base_sample) & (ledger["status"] == "ok")].set_index(others)["estimate"]
+    on_base = ledger[(ledger["sample"] == base_sample) & (ledger["status"] == STATUS_OK)]
+    reference = on_base.set_index(others)["estimate"]
     parts = ok["sample"].str.split(":", n=1, expand=True)
     frame = ok.assign(generator=parts[0], dropped=parts[1])
     rows = []

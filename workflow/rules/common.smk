@@ -1,6 +1,4 @@
 # Parse time: check the config, resolve the grid against the data, name every job's file.
-import hashlib
-import json
 import os
 import shutil
 import time
@@ -9,7 +7,7 @@ from pathlib import Path
 from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
 
-from fegrid import pipeline
+from fegrid import keys, pipeline
 from fegrid.errors import FegridError
 from fegrid.lock import RunLock
 
@@ -33,7 +31,7 @@ if workflow.is_main_process and not workflow.dryrun:
         except FegridError as exc:
             raise WorkflowError(f"fegrid: {exc}") from None
 # what the ledger shows besides fitted numbers (choice names, baseline): reruns only the gathering
-GRID_DIGEST = hashlib.sha256(json.dumps(config, sort_keys=True, default=str).encode()).hexdigest()
+GRID_DIGEST = keys.config_digest(config)
 
 
 # the config file named in REPLICATION.md's instructions

@@ -109,7 +109,7 @@ def test_schema_defaults_filled_in_change_no_key() -> None:
     """Snakemake's validate fills the schema's defaults into the config: nothing may move."""
     from snakemake.utils import validate
 
-    from fegrid.grid import SCHEMA_PATH
+    from fegrid.defaults import SCHEMA_PATH
 
     raw = copy.deepcopy(BASE)
     filled = copy.deepcopy(BASE)

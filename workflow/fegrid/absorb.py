@@ -26,6 +26,7 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
+from .defaults import DEFAULTS
 from .errors import ConfigError
 
 __all__ = [
@@ -350,8 +351,8 @@ class Absorber:
         *,
         weights: np.ndarray | None = None,
         time: str | None = None,
-        tolerance: float = 1e-10,
-        max_iterations: int = 10_000,
+        tolerance: float = DEFAULTS["estimation.tolerance"],
+        max_iterations: int = DEFAULTS["estimation.max_iterations"],
         codes_of: CodesOf | None = None,
     ) -> None:
         n = len(frame)

@@ -20,6 +20,7 @@ from pathlib import Path
 from tabulate import tabulate
 
 from . import __version__
+from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import read_ledger
 from .lock import RunLock
@@ -282,13 +283,14 @@ def build_parser() -> argparse.ArgumentParser:
                        help="after '--': extra arguments passed to Snakemake")
     p = with_config(sub.add_parser("summary", help="summarise a finished ledger in the terminal"))
     p.add_argument("--ledger", help="a ledger.csv to summarise instead of the config's")
-    p.add_argument("--level", type=float, default=0.95, help="confidence level with --ledger")
+    p.add_argument("--level", type=float, default=DEFAULTS["confidence_level"], help="confidence level with --ledger")
     p = sub.add_parser("compare", help="what moved between two ledgers (runs, rounds or files), by spec id")
     p.add_argument("old", help="the earlier ledger: a ledger.csv/.parquet, or a run or round folder")
     p.add_argument("new", help="the later ledger, likewise")
     p.add_argument("--tolerance", type=float, default=1e-8,
                    help="relative change of an estimate or SE that counts as changed (default: %(default)s)")
-    p.add_argument("--level", type=float, default=0.95, help="confidence level for significance flips")
+    p.add_argument("--level", type=float, default=DEFAULTS["confidence_level"],
+                   help="confidence level for significance flips")
     p.add_argument("--out", help="folder for comparison.md, comparison.tex (response letter) and changed.csv")
     p = with_config(sub.add_parser("archive", help="freeze reports/<run>/ into a dated, read-only round folder"))
     p.add_argument("--label", default="", help="added to the date in the round's folder name")

@@ -28,6 +28,7 @@ from scipy.special import stdtr, stdtrit  # t distribution; lighter to import th
 from . import __version__, keys
 from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
 from .covariance import FitPieces, covariance_kind
+from .defaults import DEFAULTS
 from .errors import EstimationError
 from .wild import WildBootstrap, wild_cluster_test
 
@@ -98,13 +99,13 @@ class BlockSettings:
     weights: str | None = None
     unit: str | None = None
     time: str | None = None
-    keep_singletons: bool = False
-    tolerance: float = 1e-10
-    max_iterations: int = 10_000
-    level: float = 0.95
-    warn_min_clusters: int = 40
-    warn_max_cluster_share: float = 0.25
-    warn_min_treated_clusters: int = 5
+    keep_singletons: bool = DEFAULTS["estimation.keep_singletons"]
+    tolerance: float = DEFAULTS["estimation.tolerance"]
+    max_iterations: int = DEFAULTS["estimation.max_iterations"]
+    level: float = DEFAULTS["confidence_level"]
+    warn_min_clusters: int = DEFAULTS["inference_warnings.min_clusters"]
+    warn_max_cluster_share: float = DEFAULTS["inference_warnings.max_cluster_share"]
+    warn_min_treated_clusters: int = DEFAULTS["inference_warnings.min_treated_clusters"]
 
     def demean_key(self) -> str:
         """Everything that decides the demeaned columns (level and warning thresholds do not),
@@ -616,9 +617,9 @@ def fit_one(
     weights: str | None = None,
     unit: str | None = None,
     time: str | None = None,
-    keep_singletons: bool = False,
-    tolerance: float = 1e-10,
-    level: float = 0.95,
+    keep_singletons: bool = DEFAULTS["estimation.keep_singletons"],
+    tolerance: float = DEFAULTS["estimation.tolerance"],
+    level: float = DEFAULTS["confidence_level"],
 ) -> SpecResult:
     """Fit one specification; a convenience wrapper around :func:`fit_block`.
 

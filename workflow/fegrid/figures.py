@@ -21,6 +21,7 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
+from .defaults import DEFAULTS  # noqa: E402
 from .ledger import DIMENSIONS, STATUS_OK  # noqa: E402
 from .store import pair_slug  # noqa: E402,F401 - re-exported for callers of this module
 
@@ -37,8 +38,8 @@ def _short(name: str) -> str:
     return name if len(name) <= _LABEL_CHARS else name[: _LABEL_CHARS - 1] + "\u2026"
 
 
-def draw_curve(ledger: pd.DataFrame, *, level: float = 0.95, dimensions: Sequence[str] = DIMENSIONS,
-               title: str | None = None) -> Figure:
+def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_level"],
+               dimensions: Sequence[str] = DIMENSIONS, title: str | None = None) -> Figure:
     """Draw the curve of one outcome x focal pair (``ledger`` holds that pair's rows)."""
     alpha = 1.0 - level
     ok = ledger[ledger["status"] == STATUS_OK].sort_values(["estimate", "spec_id"]).reset_index(drop=True)

@@ -23,6 +23,7 @@ import yaml
 
 from . import __version__, keys
 from .absorb import Term, parse_absorb, term_label
+from .defaults import DEFAULTS, fill_defaults, schema
 from .errors import ConfigError, EstimationError
 from .estimate import RESULT_COLUMNS, BlockSettings, Inference, SpecRequest
 from .ledger import DIMENSIONS
@@ -30,7 +31,6 @@ from .samples import Panel, SampleDef, parse_sample
 from .wild import WildBootstrap
 
 __all__ = [
-    "SCHEMA_PATH",
     "Grid",
     "Spec",
     "Job",
@@ -40,7 +40,6 @@ __all__ = [
     "spec_table",
 ]
 
-SCHEMA_PATH = Path(__file__).resolve().parents[1] / "schemas" / "config.schema.yaml"
 
 
 class _UniqueKeyLoader(yaml.SafeLoader):
@@ -84,12 +83,8 @@ def read_yaml(path: str | Path) -> dict[str, Any]:
     return raw
 
 
-def _schema() -> dict[str, Any]:
-    return yaml.safe_load(SCHEMA_PATH.read_text())
-
-
 def _schema_error(raw: Mapping[str, Any]) -> None:
-    validator = jsonschema.Draft202012Validator(_schema())
+    validator = jsonschema.Draft202012Validator(schema())
     errors = sorted(validator.iter_errors(raw), key=lambda e: (len(e.absolute_path), str(e.absolute_path)))
     if not errors:
         return
@@ -164,10 +159,10 @@ class Grid:
     max_iterations: int
     keep_singletons: bool
     specs_per_job: int
-    draws: int = 500
-    seed: int = 20201
+    draws: int = DEFAULTS["joint_inference.draws"]
+    seed: int = DEFAULTS["joint_inference.seed"]
     resample: str = ""
-    draws_per_job: int = 50
+    draws_per_job: int = DEFAULTS["joint_inference.draws_per_job"]
     warnings: dict[str, Any] = field(default_factory=dict)
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
@@ -324,9 +319,9 @@ class Grid:
             tolerance=self.tolerance,
             max_iterations=self.max_iterations,
             level=self.level,
-            warn_min_clusters=int(self.warnings.get("min_clusters", 40)),
-            warn_max_cluster_share=float(self.warnings.get("max_cluster_share", 0.25)),
-            warn_min_treated_clusters=int(self.warnings.get("min_treated_clusters", 5)),
+            warn_min_clusters=int(self.warnings["min_clusters"]),
+            warn_max_cluster_share=float(self.warnings["max_cluster_share"]),
+            warn_min_treated_clusters=int(self.warnings["min_treated_clusters"]),
         )
 
     def settings_key(self) -> str:
@@ -363,7 +358,7 @@ def _matches(rule: Mapping[str, Any], names: Mapping[str, str], declared: Mappin
     return True
 
 
-def _choices(raw: Mapping[str, Any], key: str, default: Any) -> Any:
+def _choices(raw: Mapping[str, Any], key: str, default: Any = None) -> Any:
     value = raw.get(key)
     if value is None:
         return default
@@ -376,12 +371,14 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     """Check a config (a path or an already-read mapping) and return its :class:`Grid`."""
     raw = read_yaml(source) if isinstance(source, (str, Path)) else dict(source)
     _schema_error(raw)
+    # every default comes from the schema, filled in once here (as Snakemake's validate does)
+    raw = fill_defaults(raw)
     data = raw["data"]
     panel = Panel(unit=data["unit"], time=data.get("time"))
-    absorb_raw = _choices(raw, "absorb", {panel.unit: [panel.unit]})
+    absorb_raw = _choices(raw, "absorb", {panel.unit: [panel.unit]})  # a default that depends on data.unit
     absorb = {name: parse_absorb(terms, where=f"absorb.{name}") for name, terms in absorb_raw.items()}
     clustering: dict[str, Inference] = {}
-    for name, body in _choices(raw, "clustering", {"robust": {"kind": "robust"}}).items():
+    for name, body in _choices(raw, "clustering").items():
         by = body.get("by", [])
         by = [by] if isinstance(by, str) else list(by)
         dims = tuple(tuple(term_label(t).split(" x ")) for t in parse_absorb(by, where=f"clustering.{name}.by"))
@@ -390,11 +387,11 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
             clustering[name] = Inference(body["kind"], dims, WildBootstrap(**boot) if boot is not None else None)
         except EstimationError as exc:
             raise ConfigError(f"clustering.{name}: {exc}") from None
-    samples = dict(_choices(raw, "samples", {"all": {}}))
+    samples = dict(_choices(raw, "samples"))
     for name, body in samples.items():
         if body.get("drop_each") and ":" in name:
             raise ConfigError(f"samples.{name}: a sample with drop_each cannot have ':' in its name.")
-    cs_raw = raw.get("control_sets") or {"named": {"none": []}}
+    cs_raw = raw["control_sets"]
     controls: dict[str, tuple[str, ...]] = {n: tuple(c) for n, c in (cs_raw.get("named") or {}).items()}
     combos = cs_raw.get("combinations_of") or []
     if len(set(combos)) != len(combos):
@@ -412,7 +409,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
             controls[name] = tuple(subset)
     if not controls:
         raise ConfigError("control_sets declares no control set; use named: {none: []} for none.")
-    weights = dict(_choices(raw, "weights", {"unweighted": None}))
+    weights = dict(_choices(raw, "weights"))
     grid_names = {
         "outcome": list(raw["outcomes"]),
         "focal": list(raw["focal_regressors"]),
@@ -442,8 +439,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
                 f"baseline.{dim} is '{name}', which the grid does not declare; the {dim} choices "
                 f"are: {', '.join(map(str, grid_names[dim]))}."
             )
-    est = raw.get("estimation") or {}
-    joint = raw.get("joint_inference") or {}
+    est, joint, warnings = raw["estimation"], raw["joint_inference"], raw["inference_warnings"]
     return Grid(
         run_name=raw["run_name"],
         data_path=data["path"],
@@ -457,19 +453,16 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         weights=weights,
         exclude=exclude,
         baseline=baseline,
-        level=float(raw.get("confidence_level", 0.95)),
-        tolerance=float(est.get("tolerance", 1e-10)),
-        max_iterations=int(est.get("max_iterations", 10_000)),
-        keep_singletons=bool(est.get("keep_singletons", False)),
-        specs_per_job=int((raw.get("jobs") or {}).get("specs_per_job", 500)),
-        draws=int(joint.get("draws", 500)),
-        seed=int(joint.get("seed", 20201)),
-        resample=str(joint.get("resample", panel.unit)),
-        draws_per_job=int(joint.get("draws_per_job", 50)),
-        # complete with the defaults, so that a config with the schema's defaults filled in (as
-        # Snakemake's validate does) has the same settings, hence the same job keys
-        warnings={"min_clusters": 40, "max_cluster_share": 0.25, "min_treated_clusters": 5,
-                  **(raw.get("inference_warnings") or {})},
+        level=float(raw["confidence_level"]),
+        tolerance=float(est["tolerance"]),
+        max_iterations=int(est["max_iterations"]),
+        keep_singletons=bool(est["keep_singletons"]),
+        specs_per_job=int(raw["jobs"]["specs_per_job"]),
+        draws=int(joint["draws"]),
+        seed=int(joint["seed"]),
+        resample=str(joint.get("resample", panel.unit)),  # the unit: a default that depends on data.unit
+        draws_per_job=int(joint["draws_per_job"]),
+        warnings=dict(warnings),
         raw=raw,
     )
 

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 from tabulate import tabulate
 
+from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import DIMENSIONS, PAIR, STATUS_OK, read_ledger
 from .report import latex_escape
@@ -82,8 +83,9 @@ def _curve_rows(old: pd.DataFrame, new: pd.DataFrame, alpha: float) -> pd.DataFr
                                        "baseline_estimate", "baseline_std_error"])
 
 
-def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 1e-8, level: float = 0.95,
-                    old_manifest: dict | None = None, new_manifest: dict | None = None) -> LedgerComparison:
+def compare_ledgers(old: pd.DataFrame, new: pd.DataFrame, *, tolerance: float = 1e-8,
+                    level: float = DEFAULTS["confidence_level"], old_manifest: dict | None = None,
+                    new_manifest: dict | None = None) -> LedgerComparison:
     """Match two ledgers by spec id.
 
     A specification present in both has *changed* when its status changed, its estimate or standard

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from .defaults import DEFAULTS
 from .ledger import DIMENSIONS, PAIR, STATUS_FAILED, STATUS_NOT_IDENTIFIED, STATUS_OK
 
 __all__ = ["curve_summary", "choice_medians", "influence", "CHOICE_COLUMNS"]
@@ -20,7 +21,7 @@ def _percentile_of(values: np.ndarray, x: float) -> float:
     return float(100.0 * (below + 0.5 * equal) / len(values))
 
 
-def curve_summary(ledger: pd.DataFrame, level: float = 0.95) -> pd.DataFrame:
+def curve_summary(ledger: pd.DataFrame, level: float = DEFAULTS["confidence_level"]) -> pd.DataFrame:
     """One row per outcome x focal pair.
 
     Columns: counts by status; the baseline's estimate, its percentile in the curve and its

@@ -41,6 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from .defaults import DEFAULTS
 from .errors import EstimationError
 
 __all__ = ["WildBootstrap", "WEIGHT_KINDS", "wild_weights", "WildOutcome", "wild_cluster_test"]
@@ -55,10 +56,10 @@ WEIGHT_KINDS = ("rademacher", "webb")
 class WildBootstrap:
     """Settings of the wild cluster restricted bootstrap of one clustering choice."""
 
-    draws: int = 999
-    weights: str = "webb"
-    seed: int = 1
-    interval: bool = True
+    draws: int = DEFAULTS["wild_bootstrap.draws"]
+    weights: str = DEFAULTS["wild_bootstrap.weights"]
+    seed: int = DEFAULTS["wild_bootstrap.seed"]
+    interval: bool = DEFAULTS["wild_bootstrap.interval"]
 
     def __post_init__(self) -> None:
         if self.weights not in WEIGHT_KINDS:

@@ -9,6 +9,7 @@ from snakemake.utils import validate
 
 from fegrid import keys, pipeline
 from fegrid.errors import FegridError
+from fegrid.defaults import SCHEMA_PATH
 from fegrid.lock import RunLock
 
 
@@ -16,7 +17,7 @@ try:
     PLAN = pipeline.make_plan(config, prepare=True)
 except FegridError as exc:
     raise WorkflowError(f"fegrid: {exc}") from None
-validate(config, "../schemas/config.schema.yaml")
+validate(config, str(SCHEMA_PATH))
 
 RUN = str(PLAN.paths.run)
 

@@ -11,8 +11,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from fegrid.cli import workflow_root
 from fegrid.demo import TRUE_EFFECT
+from fegrid.locations import workflow_root
 
 pytestmark = pytest.mark.slow
 

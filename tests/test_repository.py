@@ -40,3 +40,56 @@ def test_ruff_is_clean() -> None:
         pytest.skip("ruff is not installed")
     proc = subprocess.run([ruff, "check", "workflow", "tests"], cwd=ROOT, capture_output=True, text=True)
     assert proc.returncode == 0, proc.stdout[-3000:]
+
+
+def _imports(module: Path) -> set[str]:
+    """fegrid modules imported by one module of the package (relative or absolute imports)."""
+    import ast
+
+    names = set()
+    for node in ast.walk(ast.parse(module.read_text())):
+        if isinstance(node, ast.ImportFrom):
+            if node.level == 1 and node.module:
+                names.add(node.module.split(".")[0])
+            elif node.level == 1:
+                names.update(a.name for a in node.names)
+            elif node.module and node.module.startswith("fegrid."):
+                names.add(node.module.split(".")[1])
+        elif isinstance(node, ast.Import):
+            names.update(a.name.split(".")[1] for a in node.names if a.name.startswith("fegrid."))
+    return names - {"__init__"}
+
+
+def test_the_package_import_graph_has_no_cycle() -> None:
+    package = ROOT / "workflow" / "fegrid"
+    modules = {p.stem for p in package.glob("*.py")} - {"__init__"}
+    graph = {m: _imports(package / f"{m}.py") & modules for m in modules}
+    state: dict[str, int] = {}
+
+    def visit(node: str, path: list[str]) -> None:
+        state[node] = 1
+        for nxt in sorted(graph[node]):
+            assert state.get(nxt) != 1, f"import cycle: {' -> '.join(path + [node, nxt])}"
+            if nxt not in state:
+                visit(nxt, path + [node])
+        state[node] = 2
+
+    for module in sorted(modules):
+        if module not in state:
+            visit(module, [])
+    # leaves stay leaves: the keys and the locations know nothing of the rest
+    assert graph["keys"] == set() and graph["locations"] == set()
+
+
+def test_every_rule_is_a_known_stage(tiny_project: Path, fegrid_env) -> None:
+    """Benchmarks and logs are named from pipeline.STAGES: a rule outside it would be missing from
+    the manifest's stages, so the rule list and the stage list must agree."""
+    from fegrid.locations import SNAKEFILE
+    from fegrid.pipeline import RULES
+
+    proc = subprocess.run([sys.executable, "-m", "snakemake", "--snakefile", str(SNAKEFILE), "--configfile",
+                           "grid.yaml", "--list-rules"], cwd=tiny_project, capture_output=True, text=True,
+                          env=fegrid_env)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    rules = {line.strip() for line in proc.stdout.splitlines() if line.strip()}
+    assert rules == set(RULES) | {"all"}

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from fegrid.cli import workflow_root
+from fegrid.locations import workflow_root
 
 pytestmark = [
     pytest.mark.slow,

@@ -22,9 +22,9 @@ import pandas as pd
 import pytest
 
 from fegrid.absorb import parse_absorb
-from fegrid.cli import workflow_root
 from fegrid.estimate import Inference, fit_one
 from fegrid.ledger import LEDGER_COLUMNS
+from fegrid.locations import workflow_root
 
 pytestmark = pytest.mark.slow
 

@@ -23,6 +23,7 @@ from . import __version__
 from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import read_ledger
+from .locations import workflow_root
 from .lock import RunLock
 from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
 from .store import PublishedOutputs
@@ -31,11 +32,6 @@ from .summary import choice_medians, curve_summary
 __all__ = ["main", "workflow_root"]
 
 DEFAULT_CONFIG = "config/config.yaml"
-
-
-def workflow_root() -> Path:
-    """The folder holding the Snakefile (fegrid's source checkout)."""
-    return Path(__file__).resolve().parents[2]
 
 
 def _note_pdflatex() -> None:

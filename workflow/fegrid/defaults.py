@@ -11,16 +11,15 @@ from __future__ import annotations
 import copy
 from collections.abc import Iterator, Mapping
 from functools import lru_cache
-from pathlib import Path
 from typing import Any
 
 import jsonschema
 import yaml
 
+from .locations import SCHEMA_PATH
+
 __all__ = ["SCHEMA_PATH", "schema", "fill_defaults", "DEFAULTS"]
 
-#: The config's JSON Schema (draft 2020-12).
-SCHEMA_PATH = Path(__file__).resolve().parents[1] / "schemas" / "config.schema.yaml"
 
 
 @lru_cache(maxsize=1)

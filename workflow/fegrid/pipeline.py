@@ -29,8 +29,10 @@ from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
+from .locations import WORKFLOW_ROOT
 from .samples import apply_sample
 from .store import (
+    REPORTS_ROOT,
     FileDemeanStore,
     FileResultStore,
     RunPaths,
@@ -52,6 +54,9 @@ __all__ = [
     "gather_ledger",
     "plan_status",
     "run_logged",
+    "STAGES",
+    "RULES",
+    "stage",
     "result_keys",
     "fitted_specs",
     "ContentKeys",
@@ -116,10 +121,43 @@ class Plan:
             out[f"figure_{outcome}_{focal}_pdf"] = pdf
         return out
 
+    def job_names(self, *, build_pdf: bool) -> dict[str, list[str]]:
+        """The name of every job of each stage in this run (what its log and benchmark are called)."""
+        names = {
+            "snapshot_data": ["all"], "fit_job": [j.key for j in self.jobs], "gather_ledger": ["all"],
+            "draw_curve": [pair_slug(o, f) for o, f in self.pairs], "summarise_curve": ["all"],
+            "draw_null_curves": [f"{self.joint_key}-{i:04d}" for i in range(len(self.joint_paths()))],
+            "test_curve": ["all"], "render_appendix": ["all"], "compile_appendix": ["all"] if build_pdf else [],
+        }
+        assert set(names) == set(STAGES), "every stage names its jobs"
+        return names
+
+    def benchmark_files(self, *, build_pdf: bool) -> list[Path]:
+        """The benchmark file of every job of this run, stage by stage."""
+        names = self.job_names(build_pdf=build_pdf)
+        return [self.paths.benchmark(st, n) for st in STAGES for n in names[st]]
+
     def declared_outputs(self, *, build_pdf: bool) -> dict[str, Path]:
         """Every output a finished run holds, provenance included: what a round archives."""
         return {**self.report_outputs(build_pdf=build_pdf), "manifest": self.paths.file("manifest.json"),
                 "replication": self.paths.file("REPLICATION.md")}
+
+
+#: The pipeline's stages (its Snakemake rules) whose jobs are timed for the manifest, in order.
+#: Every rule but ``all`` and ``write_provenance`` is one of them (a test checks the Snakefile).
+STAGES: tuple[str, ...] = ("snapshot_data", "fit_job", "gather_ledger", "draw_curve", "summarise_curve",
+                           "draw_null_curves", "test_curve", "render_appendix", "compile_appendix")
+
+
+#: Every rule that runs a job: the timed stages, then the provenance step (which times the others).
+RULES: tuple[str, ...] = (*STAGES, "write_provenance")
+
+
+def stage(name: str) -> str:
+    """``name`` if it is one of :data:`RULES`; a rule file naming another fails at parse time."""
+    if name not in RULES:
+        raise FegridError(f"'{name}' is not a pipeline stage; the stages are: {', '.join(RULES)}.")
+    return name
 
 
 def _salt(snapshot_key: str, grid: Grid) -> str:
@@ -179,7 +217,7 @@ def result_keys(grid: Grid, frame: pd.DataFrame, jobs: Sequence[Job]) -> dict[st
     return {sid: key for job in jobs for sid, key in content.of_job(job).items()}
 
 
-def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports",
+def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPORTS_ROOT,
               prepare: bool = False) -> Plan:
     """Read the config, hash the data file and expand the grid into jobs (no fitting).
 
@@ -324,7 +362,8 @@ def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Pa
     return ledger
 
 
-def fit_grid(config: str | Path | Mapping[str, Any], *, root: str | Path = "reports") -> tuple[Plan, pd.DataFrame]:
+def fit_grid(config: str | Path | Mapping[str, Any], *,
+             root: str | Path = REPORTS_ROOT) -> tuple[Plan, pd.DataFrame]:
     """Snapshot, fit and gather a grid in this process, without Snakemake (the rules' own steps,
     run one after another): for notebooks, tests and small grids. Paths are relative to the
     working directory, as in a Snakemake run."""
@@ -494,7 +533,7 @@ def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs:
 
     started = os.environ.get(RUN_STARTED_ENV)
     man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs, seeds=grid_seeds(grid),
-                         outputs=outputs, benchmarks=benchmarks, workflow_root=Path(__file__).resolve().parents[2],
+                         outputs=outputs, benchmarks=benchmarks, workflow_root=WORKFLOW_ROOT,
                          fitted_data_sha256=snapshot_sha256(snapshot) if snapshot is not None else None,
                          config_path=config_path, run_folder=Path(manifest).parent,
                          run_wall_seconds=time.time() - float(started) if started else None)

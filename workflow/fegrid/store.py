@@ -26,6 +26,7 @@ __all__ = [
     "read_fegrid_metadata",
     "write_json",
     "RunPaths",
+    "REPORTS_ROOT",
     "FileDemeanStore",
     "FileResultStore",
     "PublishedOutputs",
@@ -102,6 +103,10 @@ def pair_slug(outcome: str, focal: str) -> str:
     return f"{keep(outcome)}--{keep(focal)}"
 
 
+#: The folder, under the working directory, that holds one folder per run (``reports/<run_name>/``).
+REPORTS_ROOT = "reports"
+
+
 @dataclass(frozen=True)
 class RunPaths:
     """Where one run's files live: ``<root>/<run_name>/``."""
@@ -159,15 +164,22 @@ class RunPaths:
     def figure(self, slug: str, ext: str) -> Path:
         return self.run / "figures" / f"curve-{slug}.{ext}"
 
-    def joint_draws(self, key: str, chunk: int) -> Path:
-        return self.cache / "joint" / key / f"draws-{chunk:04d}.parquet"
+    def joint_draws(self, key: str, chunk: int | str) -> Path:
+        """One chunk of bootstrap draws (``chunk`` may be a wildcard such as ``"{chunk}"``)."""
+        name = f"{chunk:04d}" if isinstance(chunk, int) else chunk
+        return self.cache / "joint" / key / f"draws-{name}.parquet"
+
+    def log(self, stage: str, name: str = "") -> Path:
+        """The log of one job of a stage: ``logs/<stage>.log`` or ``logs/<stage>/<name>.log``."""
+        return self.run / "logs" / (f"{stage}/{name}.log" if name else f"{stage}.log")
 
     def file(self, name: str) -> Path:
         """A report file directly in the run folder (summary.csv, appendix.tex, manifest.json...)."""
         return self.run / name
 
-    def benchmark(self, rule: str, name: str) -> Path:
-        return self.run / "benchmarks" / rule / f"{name}.tsv"
+    def benchmark(self, stage: str, name: str = "all") -> Path:
+        """Wall time and memory of one job of a stage, as Snakemake's benchmark writes them."""
+        return self.run / "benchmarks" / stage / f"{name}.tsv"
 
 
 class FileDemeanStore:

@@ -9,7 +9,7 @@ from snakemake.utils import validate
 
 from fegrid import keys, pipeline
 from fegrid.errors import FegridError
-from fegrid.defaults import SCHEMA_PATH
+from fegrid.locations import SCHEMA_PATH
 from fegrid.lock import RunLock
 
 
@@ -19,7 +19,6 @@ except FegridError as exc:
     raise WorkflowError(f"fegrid: {exc}") from None
 validate(config, str(SCHEMA_PATH))
 
-RUN = str(PLAN.paths.run)
 
 if workflow.is_main_process and not workflow.dryrun:
     # the run's wall time in the manifest counts from here; jobs inherit the variable
@@ -63,15 +62,19 @@ def report_outputs(wildcards=None):
 
 def benchmark_files():
     """The benchmark files of the current run's jobs (wall time and memory per stage)."""
-    b = PLAN.paths.benchmark
-    files = [b("snapshot_data", "all"), b("gather_ledger", "all"), b("summarise_curve", "all"),
-             b("test_curve", "all"), b("render_appendix", "all")]
-    files += [b("fit_job", job.key) for job in PLAN.jobs]
-    files += [b("draw_curve", p.stem.removeprefix("curve-")) for p in PLAN.figure_paths("png")]
-    files += [b("draw_null_curves", f"{p.parent.name}-{p.stem.removeprefix('draws-')}") for p in PLAN.joint_paths()]
-    if BUILD_PDF:
-        files.append(b("compile_appendix", "all"))
-    return [str(f) for f in files]
+    return [str(f) for f in PLAN.benchmark_files(build_pdf=BUILD_PDF)]
+
+
+def log_of(stage, name=""):
+    """A rule's log, from the package's run-folder layout (the stage name is checked)."""
+    return str(PLAN.paths.log(pipeline.stage(stage), name))
+
+
+def benchmark_of(stage, name="all"):
+    """A rule's benchmark file, from the package's run-folder layout (the stage name is checked)."""
+    if pipeline.stage(stage) not in pipeline.STAGES:
+        raise WorkflowError(f"fegrid: the rule {stage} is not a timed stage (pipeline.STAGES)")
+    return str(PLAN.paths.benchmark(stage, name))
 
 
 def final_outputs():

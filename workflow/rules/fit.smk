@@ -8,9 +8,9 @@ rule snapshot_data:
         # the hash the run was planned with: a data file replaced since then is refused
         data_sha256=PLAN.data_sha256,
     log:
-        f"{RUN}/logs/snapshot_data.log",
+        log_of("snapshot_data"),
     benchmark:
-        f"{RUN}/benchmarks/snapshot_data/all.tsv"
+        benchmark_of("snapshot_data")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -21,15 +21,15 @@ rule fit_job:
     input:
         snapshot=str(PLAN.snapshot_path),
     output:
-        results=f"{RUN}/cache/fits/{{job}}.parquet",
-        work=f"{RUN}/cache/fits/{{job}}.json",
+        results=str(PLAN.paths.fit("{job}")),
+        work=str(PLAN.paths.work_log("{job}")),
     params:
         # the run's cache folder: fits/ sits beside demeaned/ and results/
-        store=lambda wildcards, output: str(Path(output.results).parent.parent),
+        store=str(PLAN.paths.cache),
     log:
-        f"{RUN}/logs/fit_job/{{job}}.log",
+        log_of("fit_job", "{job}"),
     benchmark:
-        f"{RUN}/benchmarks/fit_job/{{job}}.tsv"
+        benchmark_of("fit_job", "{job}")
     wildcard_constraints:
         job="[0-9a-f]{16}",
     resources:

@@ -11,10 +11,11 @@ rule gather_ledger:
         timings=str(PLAN.paths.timings),
     params:
         grid_digest=GRID_DIGEST,
+        root=str(PLAN.paths.root),
     log:
-        f"{RUN}/logs/gather_ledger.log",
+        log_of("gather_ledger"),
     benchmark:
-        f"{RUN}/benchmarks/gather_ledger/all.tsv"
+        benchmark_of("gather_ledger")
     conda:
         "../envs/fegrid.yaml"
     script:

@@ -6,15 +6,15 @@ rule draw_curve:
         ledger=str(PLAN.paths.ledger_parquet),
     output:
         png=report(
-            f"{RUN}/figures/curve-{{pair}}.png",
+            str(PLAN.paths.figure("{pair}", "png")),
             caption="../report/curve.rst",
             category="Specification curves",
         ),
-        pdf=f"{RUN}/figures/curve-{{pair}}.pdf",
+        pdf=str(PLAN.paths.figure("{pair}", "pdf")),
     log:
-        f"{RUN}/logs/draw_curve/{{pair}}.log",
+        log_of("draw_curve", "{pair}"),
     benchmark:
-        f"{RUN}/benchmarks/draw_curve/{{pair}}.tsv"
+        benchmark_of("draw_curve", "{pair}")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -31,9 +31,9 @@ rule summarise_curve:
         choices=PLAN.paths.file("choices.csv"),
         influence=PLAN.paths.file("influence.csv"),
     log:
-        f"{RUN}/logs/summarise_curve.log",
+        log_of("summarise_curve"),
     benchmark:
-        f"{RUN}/benchmarks/summarise_curve/all.tsv"
+        benchmark_of("summarise_curve")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -44,11 +44,11 @@ rule draw_null_curves:
     input:
         snapshot=str(PLAN.snapshot_path),
     output:
-        draws=f"{RUN}/cache/joint/{{key}}/draws-{{chunk}}.parquet",
+        draws=str(PLAN.paths.joint_draws("{key}", "{chunk}")),
     log:
-        f"{RUN}/logs/draw_null_curves/{{key}}-{{chunk}}.log",
+        log_of("draw_null_curves", "{key}-{chunk}"),
     benchmark:
-        f"{RUN}/benchmarks/draw_null_curves/{{key}}-{{chunk}}.tsv"
+        benchmark_of("draw_null_curves", "{key}-{chunk}")
     wildcard_constraints:
         key="[0-9a-f]{16}",
         chunk="[0-9]{4}",
@@ -66,9 +66,9 @@ rule test_curve:
         csv=report(PLAN.paths.file("joint_tests.csv"), caption="../report/joint.rst", category="Tables"),
         md=PLAN.paths.file("joint_tests.md"),
     log:
-        f"{RUN}/logs/test_curve.log",
+        log_of("test_curve"),
     benchmark:
-        f"{RUN}/benchmarks/test_curve/all.tsv"
+        benchmark_of("test_curve")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -83,9 +83,9 @@ rule render_appendix:
     output:
         tex=PLAN.paths.file("appendix.tex"),
     log:
-        f"{RUN}/logs/render_appendix.log",
+        log_of("render_appendix"),
     benchmark:
-        f"{RUN}/benchmarks/render_appendix/all.tsv"
+        benchmark_of("render_appendix")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -99,9 +99,9 @@ rule compile_appendix:
     output:
         pdf=report(PLAN.paths.file("appendix.pdf"), caption="../report/appendix.rst", category="Appendix"),
     log:
-        f"{RUN}/logs/compile_appendix.log",
+        log_of("compile_appendix"),
     benchmark:
-        f"{RUN}/benchmarks/compile_appendix/all.tsv"
+        benchmark_of("compile_appendix")
     conda:
         "../envs/fegrid.yaml"
     script:
@@ -121,7 +121,7 @@ rule write_provenance:
         # the snapshot records the hash of the bytes that were fitted
         snapshot=str(PLAN.snapshot_path),
     log:
-        f"{RUN}/logs/write_provenance.log",
+        log_of("write_provenance"),
     conda:
         "../envs/fegrid.yaml"
     script:

@@ -6,5 +6,5 @@ from fegrid.store import RunPaths
 
 snakemake = globals()["snakemake"]
 grid = load_config(snakemake.config)
-paths = RunPaths("reports", grid.run_name)
+paths = RunPaths(snakemake.params.root, grid.run_name)
 run_logged(snakemake.log[0], gather_ledger, grid, snakemake.input.snapshot, snakemake.input.fits, paths)

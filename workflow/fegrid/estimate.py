@@ -18,8 +18,8 @@ from __future__ import annotations
 
 import json
 from collections.abc import Collection, Sequence
-from dataclasses import asdict, dataclass, field, fields
-from typing import Protocol
+from dataclasses import asdict, dataclass, field, fields, replace
+from typing import NamedTuple, Protocol
 
 import numpy as np
 import pandas as pd
@@ -186,6 +186,24 @@ def _fmt_counts(pairs: dict[str, int]) -> str:
     return "; ".join(f"{k}={v}" for k, v in pairs.items())
 
 
+class _Regressors(NamedTuple):
+    """The regressors of one focal regressor and control set in a design."""
+
+    columns: list[int]  # positions in the design's matrix, focal first (empty when not identified)
+    bread: np.ndarray  # (X'X)^{-1} of those columns
+    dropped: list[str]  # controls dropped, with the reason
+    problem: str  # why the focal coefficient is not identified ("" when it is)
+
+
+class _FocalDiagnostics(NamedTuple):
+    """How much the focal regressor varies before and after absorbing the effects."""
+
+    sd: float
+    sd_within: float
+    variance_share: float
+    units_with_variation: int
+
+
 class _Design:
     """Rows, absorbed effects and demeaned columns shared by specifications with the same rows."""
 
@@ -208,9 +226,9 @@ class _Design:
         self.converged: dict[str, bool] = {}
         self._clusters: dict[tuple[str, ...], np.ndarray] = {}
         self._controls: dict[tuple[str, ...], tuple[list[str], list[str]]] = {}
-        self._regressors: dict[tuple[str, tuple[str, ...]], tuple] = {}
+        self._regressors: dict[tuple[str, tuple[str, ...]], _Regressors] = {}
         self._fits: dict[tuple[str, str, tuple[str, ...]], FitPieces] = {}
-        self._diagnostics: dict[str, dict[str, object]] = {}
+        self._diagnostics: dict[str, _FocalDiagnostics] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
@@ -303,8 +321,8 @@ class _Design:
             self._controls[controls] = (kept, dropped)
         return self._controls[controls]
 
-    def regressors(self, focal: str, controls: tuple[str, ...]):
-        """``(columns, (X'X)^{-1}, dropped, problem)`` for the focal regressor with a control set."""
+    def regressors(self, focal: str, controls: tuple[str, ...]) -> _Regressors:
+        """The focal regressor with a control set: kept columns, ``(X'X)^{-1}``, dropped controls, problem."""
         key = (focal, controls)
         if key not in self._regressors:
             kept, dropped = self.controls(controls)
@@ -321,10 +339,10 @@ class _Design:
                 problem = (f"the focal regressor '{focal}' is collinear with the controls "
                            f"{', '.join(kept)}")
             if problem:
-                self._regressors[key] = (None, None, dropped, problem)
+                self._regressors[key] = _Regressors([], np.empty((0, 0)), dropped, problem)
             else:
                 rs = self.R[:, idx]
-                self._regressors[key] = (idx, np.linalg.inv(rs.T @ rs), dropped, "")
+                self._regressors[key] = _Regressors(idx, np.linalg.inv(rs.T @ rs), dropped, "")
         return self._regressors[key]
 
     def partial_out(self, columns: np.ndarray) -> np.ndarray:
@@ -363,22 +381,17 @@ class _Design:
                 scores=lambda idx=idx, e=eh[:, 0]: self._scores(idx, e))
         return self._fits[key]
 
-    def focal_diagnostics(self, focal: str) -> dict[str, object]:
+    def focal_diagnostics(self, focal: str) -> _FocalDiagnostics:
         if focal not in self._diagnostics:
             self._diagnostics[focal] = self._focal_diagnostics(focal)
         return self._diagnostics[focal]
 
-    def _focal_diagnostics(self, focal: str) -> dict[str, object]:
+    def _focal_diagnostics(self, focal: str) -> _FocalDiagnostics:
         x = self.frame[focal].to_numpy(dtype=float)
         n = len(x)
         xt = self.tilde[focal]
         raw = float(self.raw_norm[self.pos[focal]])
-        out: dict[str, object] = {
-            "focal_sd": float(np.std(x, ddof=1)) if n > 1 else float("nan"),
-            "focal_sd_within": float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
-            "focal_variance_share": float(np.sum(self.w * xt * xt)) / raw**2 if raw > 0 else 0.0,
-            "units_with_variation": 0,
-        }
+        with_variation = 0
         unit = self.settings.unit
         if unit is not None and unit in self.frame:
             codes = self.codes_of((unit,))
@@ -387,8 +400,12 @@ class _Design:
             mean = np.bincount(codes, x, minlength=n_units) / np.maximum(cnt, 1)
             ss = np.bincount(codes, (x - mean[codes]) ** 2, minlength=n_units)
             scale = max(float(np.max(np.abs(x))), 1e-300) if n else 1.0
-            out["units_with_variation"] = int(np.count_nonzero(ss > (1e-12 * scale) ** 2))
-        return out
+            with_variation = int(np.count_nonzero(ss > (1e-12 * scale) ** 2))
+        return _FocalDiagnostics(
+            sd=float(np.std(x, ddof=1)) if n > 1 else float("nan"),
+            sd_within=float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
+            variance_share=float(np.sum(self.w * xt * xt)) / raw**2 if raw > 0 else 0.0,
+            units_with_variation=with_variation)
 
 
 def _design_columns(settings: BlockSettings) -> list[str]:
@@ -512,23 +529,24 @@ def _usable(raw: np.ndarray, demeaned: np.ndarray) -> bool:
         return bool(np.isfinite(demeaned @ demeaned) and np.isfinite(raw @ raw))
 
 
+def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> SpecResult:
+    """What every row of a design reports, whatever its status."""
+    cols = (spec.outcome, spec.focal, *spec.controls)
+    focal = design.focal_diagnostics(spec.focal)
+    return SpecResult(
+        spec_id=spec.spec_id, status=STATUS_FAILED, n_obs=len(design.frame), n_singletons=design.n_singletons,
+        absorbed_df=design.absorber.absorbed_df, absorb_levels=_fmt_counts(design.absorber.levels),
+        iterations=max(design.iterations[c] for c in cols), converged=all(design.converged[c] for c in cols),
+        controls_dropped="; ".join(dropped), focal_sd=focal.sd, focal_sd_within=focal.sd_within,
+        focal_variance_share=focal.variance_share, units_with_variation=focal.units_with_variation)
+
+
 def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
     s = design.settings
-    cols = (spec.outcome, spec.focal, *spec.controls)
-    common = dict(
-        spec_id=spec.spec_id,
-        n_obs=len(design.frame),
-        n_singletons=design.n_singletons,
-        absorbed_df=design.absorber.absorbed_df,
-        absorb_levels=_fmt_counts(design.absorber.levels),
-        iterations=max(design.iterations[c] for c in cols),
-        converged=all(design.converged[c] for c in cols),
-    )
-    common.update(design.focal_diagnostics(spec.focal))
-    _, _, dropped, problem = design.regressors(spec.focal, spec.controls)
-    common["controls_dropped"] = "; ".join(dropped)
-    if problem:
-        return SpecResult(status=STATUS_NOT_IDENTIFIED, message=problem, **common)  # type: ignore[arg-type]
+    regressors = design.regressors(spec.focal, spec.controls)
+    base = _base_result(design, spec, regressors.dropped)
+    if regressors.problem:
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem)
     pieces = design.fit(spec.outcome, spec.focal, spec.controls)
     beta, r2 = pieces.estimate, pieces.within_r2
     codes = [design.cluster_codes(dim) for dim in spec.inference.by]
@@ -539,49 +557,55 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
             pieces, n_params=pieces.bread.shape[0], absorbed_df=design.absorber.absorbed_df,
             nested_df=design.nested_df(spec.inference.by), clusters=codes)
     except EstimationError as exc:
-        return SpecResult(status=STATUS_FAILED, message=str(exc), estimate=beta, within_r2=r2,
-                          **common)  # type: ignore[arg-type]
+        return replace(base, message=str(exc), estimate=beta, within_r2=r2)
     se = float(np.sqrt(cov.variance))
     if not (np.isfinite(beta) and np.isfinite(se)):
-        return SpecResult(status=STATUS_FAILED, message="the estimate or its standard error is not finite "
-                          "(numerical overflow: check the scale of the variables)", **common)  # type: ignore[arg-type]
+        return replace(base, message="the estimate or its standard error is not finite (numerical overflow: "
+                       "check the scale of the variables)")
     t = beta / se if se > 0 else float("nan")
     p = float(2 * stdtr(cov.df, -abs(t))) if se > 0 else float("nan")
     crit = float(stdtrit(cov.df, 0.5 + s.level / 2))
-    notes = [] if common["converged"] else [
+    notes = [] if base.converged else [
         f"alternating projections did not reach the tolerance in {s.max_iterations} iterations"]
     if cov.psd_adjusted:
         notes.append("two-way covariance was not positive semi-definite: negative eigenvalues set to zero")
     clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
-    extra = _cluster_checks(design, spec, codes[: len(spec.inference.by)])
-    if spec.inference.bootstrap is not None and se > 0:
-        g = cov.n_clusters[0]
-        n = len(pieces.e)
-        k_total = pieces.bread.shape[0] + design.absorber.absorbed_df - design.nested_df(spec.inference.by)
-        idx = design.regressors(spec.focal, spec.controls)[0]
-        wild = wild_cluster_test(
-            y=design.Z[:, design.pos[spec.outcome]], x=design.Z[:, idx], bread=pieces.bread, codes=codes[0],
-            factor=g / (g - 1) * (n - 1) / (n - k_total), estimate=beta, std_error=se,
-            settings=spec.inference.bootstrap, key=spec.spec_id, level=s.level,
-            partial_out=None if design.absorber.nested_in(codes[0]) else design.partial_out)
-        extra.update(wild_p_value=wild.p_value, wild_ci_low=wild.ci_low, wild_ci_high=wild.ci_high,
-                     wild_draws=wild.draws, wild_weights=spec.inference.bootstrap.weights,
-                     wild_enumerated=wild.enumerated)
-    return SpecResult(
-        status=STATUS_OK, message="; ".join(notes), estimate=beta, std_error=se, t_stat=t, p_value=p,
+    result = replace(
+        base, status=STATUS_OK, message="; ".join(notes), estimate=beta, std_error=se, t_stat=t, p_value=p,
         ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
-        within_r2=r2, psd_adjusted=cov.psd_adjusted, **common, **extra)  # type: ignore[arg-type]
+        within_r2=r2, psd_adjusted=cov.psd_adjusted)
+    result = _cluster_checks(design, spec, codes[: len(spec.inference.by)], result)
+    if spec.inference.bootstrap is not None and se > 0:
+        result = _with_wild(design, spec, pieces, regressors.columns, codes[0], cov.n_clusters[0], result)
+    return result
 
 
-def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarray]) -> dict[str, object]:
+def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[int], codes: np.ndarray,
+               n_groups: int, result: SpecResult) -> SpecResult:
+    """``result`` with the wild cluster restricted bootstrap of its focal coefficient."""
+    boot = spec.inference.bootstrap
+    assert boot is not None
+    n = len(pieces.e)
+    k_total = pieces.bread.shape[0] + design.absorber.absorbed_df - design.nested_df(spec.inference.by)
+    wild = wild_cluster_test(
+        y=design.Z[:, design.pos[spec.outcome]], x=design.Z[:, idx], bread=pieces.bread, codes=codes,
+        factor=n_groups / (n_groups - 1) * (n - 1) / (n - k_total), estimate=result.estimate,
+        std_error=result.std_error, settings=boot, key=spec.spec_id, level=design.settings.level,
+        partial_out=None if design.absorber.nested_in(codes) else design.partial_out)
+    return replace(result, wild_p_value=wild.p_value, wild_ci_low=wild.ci_low, wild_ci_high=wild.ci_high,
+                   wild_draws=wild.draws, wild_weights=boot.weights, wild_enumerated=wild.enumerated)
+
+
+def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarray],
+                    result: SpecResult) -> SpecResult:
     """Warnings when clustered inference is fragile (MacKinnon & Webb 2017).
 
     Few clusters, one cluster holding a large share of the observations, or (for a 0/1 focal
     regressor) few clusters with any treated observation. Thresholds are the block settings'.
     """
     if not codes:
-        return {}
+        return result
     s = design.settings
     notes = []
     shares, treated = [], []
@@ -602,8 +626,8 @@ def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarr
             treated.append(n_treated)
             if n_treated < s.warn_min_treated_clusters:
                 notes.append(f"few treated clusters: {n_treated} {name} with any treated observation")
-    return {"inference_warning": "; ".join(notes), "largest_cluster_share": max(shares),
-            "treated_clusters": min(treated) if treated else -1}
+    return replace(result, inference_warning="; ".join(notes), largest_cluster_share=max(shares),
+                   treated_clusters=min(treated) if treated else -1)
 
 
 def fit_one(

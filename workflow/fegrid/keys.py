@@ -31,6 +31,7 @@ joint draws    settings, snapshot, seed, resampling  the data, settings, any spe
                column, draws per job, every spec
 config         the config as JSON with sorted keys   any setting (formatting and key order do not
                                                      count)
+plan           config, data file, fegrid version     any of them
 ============== ===================================== ==================================================
 """
 
@@ -59,6 +60,7 @@ __all__ = [
     "demeaned_key",
     "joint_key",
     "config_digest",
+    "plan_key",
     "ENGINE_VERSION",
 ]
 
@@ -137,6 +139,11 @@ def joint_key(salt: str, settings: Any, canonicals: Iterable[str]) -> str:
     for canonical in sorted(canonicals):
         h.update(canonical.encode())
     return h.hexdigest()[:16]
+
+
+def plan_key(config: Mapping[str, Any], data_sha256: str) -> str:
+    """16-hex key of a resolved plan: the config (defaults filled in), the data file, the version."""
+    return digest(ENGINE_VERSION, config_digest(config), data_sha256)[:16]
 
 
 def config_digest(config: Mapping[str, Any]) -> str:

@@ -14,9 +14,10 @@ import contextlib
 import hashlib
 import json
 import math
+import pickle
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -24,6 +25,7 @@ import pandas as pd
 
 from . import keys
 from .data import check_data, file_sha256, levels_for, read_table, require_file
+from .defaults import fill_defaults
 from .demo import write_demo_data
 from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
@@ -36,6 +38,7 @@ from .store import (
     FileDemeanStore,
     FileResultStore,
     RunPaths,
+    atomic_write,
     pair_slug,
     read_fegrid_metadata,
     write_csv,
@@ -47,6 +50,10 @@ from .store import (
 __all__ = [
     "Plan",
     "make_plan",
+    "save_plan",
+    "load_plan",
+    "plan_for_job",
+    "PLAN_ENV",
     "load_checked",
     "snapshot_data",
     "snapshot_sha256",
@@ -66,6 +73,17 @@ __all__ = [
 
 
 @dataclass(frozen=True)
+class _PlanFacts:
+    """What the rules need of a plan's specifications, kept so that a job can parse the Snakefile
+    without loading every specification (see :meth:`Plan.for_rules`)."""
+
+    n_specs: int
+    pairs: tuple[tuple[str, str], ...]
+    joint_key: str
+    job_sizes: dict[str, int]
+
+
+@dataclass(frozen=True)
 class Plan:
     """A grid resolved against its data file: specifications, jobs and file names."""
 
@@ -75,22 +93,39 @@ class Plan:
     specs: tuple[Spec, ...]
     jobs: tuple[Job, ...]
     paths: RunPaths
+    facts: _PlanFacts | None = None
 
     @property
     def snapshot_path(self) -> Path:
         return self.paths.snapshot(self.snapshot_key)
 
     @property
+    def n_specs(self) -> int:
+        return self.facts.n_specs if self.facts else len(self.specs)
+
+    @property
+    def job_sizes(self) -> dict[str, int]:
+        """Specifications per fit job, by job key."""
+        return self.facts.job_sizes if self.facts else {j.key: len(j.specs) for j in self.jobs}
+
+    @property
     def pairs(self) -> list[tuple[str, str]]:
         """Outcome x focal pairs of the grid, sorted."""
+        if self.facts:
+            return list(self.facts.pairs)
         return sorted({(s.outcome, s.focal) for s in self.specs})
-
-    def figure_paths(self, ext: str) -> list[Path]:
-        return [self.paths.figure(pair_slug(o, f), ext) for o, f in self.pairs]
 
     @property
     def joint_key(self) -> str:
-        return joint_key(self.grid, self.snapshot_key, self.specs)
+        return self.facts.joint_key if self.facts else joint_key(self.grid, self.snapshot_key, self.specs)
+
+    def for_rules(self) -> Plan:
+        """The same plan without its specifications: all that the rules of a job's parse need."""
+        facts = _PlanFacts(self.n_specs, tuple(self.pairs), self.joint_key, self.job_sizes)
+        return replace(self, specs=(), jobs=tuple(Job(j.key, ()) for j in self.jobs), facts=facts)
+
+    def figure_paths(self, ext: str) -> list[Path]:
+        return [self.paths.figure(pair_slug(o, f), ext) for o, f in self.pairs]
 
     def joint_paths(self) -> list[Path]:
         chunks = math.ceil(self.grid.draws / self.grid.draws_per_job) if self.grid.draws else 0
@@ -240,6 +275,60 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     return Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
 
 
+#: Environment variable naming the resolved plan of the running Snakemake run (set by the main
+#: process at parse time; its jobs inherit it and read the plan instead of expanding the grid).
+PLAN_ENV = "FEGRID_PLAN_FILE"
+
+
+def save_plan(plan: Plan) -> Path:
+    """Keep a resolved plan, its slim form for the rules and each job's specifications in the run's
+    cache (content-addressed); returns the full plan's file."""
+    path = plan.paths.plan_file(keys.plan_key(plan.grid.raw, plan.data_sha256))
+    if not path.is_file():
+        for job in plan.jobs:
+            job_file = plan.paths.job_specs(job.key)
+            if not job_file.is_file():
+                atomic_write(job_file, lambda fh, job=job: pickle.dump(job.specs, fh), durable=False)
+        slim = plan.for_rules()
+        atomic_write(_rules_file(path), lambda fh: pickle.dump(slim, fh), durable=False)
+        atomic_write(path, lambda fh: pickle.dump(plan, fh), durable=False)
+    return path
+
+
+def _rules_file(plan_file: Path) -> Path:
+    return plan_file.with_name(plan_file.stem + "-rules.pkl")
+
+
+def load_plan(path: str | Path) -> Plan:
+    with open(path, "rb") as fh:
+        return pickle.load(fh)  # noqa: S301 - our own cache, named by the hash of its content
+
+
+def plan_for_job(config: Mapping[str, Any]) -> Plan:
+    """The plan a Snakemake job process needs: the one its run saved when the config matches
+    (see :data:`PLAN_ENV`), else a fresh one."""
+    import os
+
+    saved = os.environ.get(PLAN_ENV)
+    if saved and _rules_file(Path(saved)).is_file():
+        plan = load_plan(_rules_file(Path(saved)))
+        if keys.config_digest(plan.grid.raw) == keys.config_digest(fill_defaults(config)):
+            return plan
+    return make_plan(config, prepare=True)
+
+
+def _specs_of(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> tuple[Spec, ...]:
+    """The grid's specifications: from the run's saved plan when there is one for this snapshot."""
+    import os
+
+    saved = os.environ.get(PLAN_ENV)
+    if saved and Path(saved).is_file():
+        plan = load_plan(saved)
+        if plan.snapshot_key == snapshot.stem and plan.grid.settings_key() == grid.settings_key():
+            return plan.specs
+    return tuple(grid.expand(levels_for(frame, grid)))
+
+
 def load_checked(grid: Grid) -> pd.DataFrame:
     """Read the grid's columns from the data file and check them (see :func:`check_data`)."""
     frame = read_table(grid.data_path, grid.columns())
@@ -276,8 +365,8 @@ def snapshot_sha256(snapshot: str | Path) -> str | None:
 
 
 def _jobs_from_snapshot(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> list[Job]:
-    specs = grid.expand(levels_for(frame, grid))
-    return plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(snapshot.stem, grid))
+    return plan_jobs(_specs_of(grid, snapshot, frame), specs_per_job=grid.specs_per_job,
+                     salt=_salt(snapshot.stem, grid))
 
 
 def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
@@ -290,7 +379,12 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
     started = time.perf_counter()
     snapshot = Path(snapshot)
     frame = pd.read_parquet(snapshot)
-    jobs = {j.key: j for j in _jobs_from_snapshot(grid, snapshot, frame)}
+    job_file = Path(store_dir) / "jobs" / f"{job_key}.pkl" if store_dir is not None else None
+    if job_file is not None and job_file.is_file():  # written at plan time: no re-expansion of the grid
+        with open(job_file, "rb") as fh:
+            jobs = {job_key: Job(job_key, pickle.load(fh))}  # noqa: S301 - our own content-addressed cache
+    else:
+        jobs = {j.key: j for j in _jobs_from_snapshot(grid, snapshot, frame)}
     if job_key not in jobs:
         raise FegridError(
             f"Job {job_key} is not part of the grid any more (the config or data changed during the "
@@ -313,13 +407,15 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
         else:
             todo.add(spec.spec_id)
     counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0,
-              "specs_fitted": 0, "specs_reused": len(rows)}
+              "specs_fitted": 0, "specs_reused": len(rows), "fit_seconds": 0.0}
     for bkey in sorted(by_block):
         specs = by_block[bkey]
         if not todo.intersection(s.spec_id for s in specs):
             continue
+        fit_started = time.perf_counter()
         block = fit_block(content.sample(specs[0]), grid.block_settings(specs[0]),
                           [s.request() for s in specs], store=store, evaluate=todo)
+        counts["fit_seconds"] += time.perf_counter() - fit_started
         counts["designs"] += block.designs
         counts["columns_demeaned"] += block.columns_demeaned
         counts["columns_reused"] += block.columns_reused
@@ -330,6 +426,7 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
             if results_store is not None:
                 results_store.put(result_key_of[res.spec_id], record)
     results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=list(RESULT_COLUMNS))
+    counts["fit_seconds"] = round(counts["fit_seconds"], 3)
     log = {"job": job_key, "specs": len(results), **counts,
            "seconds": round(time.perf_counter() - started, 3)}
     out = Path(out)
@@ -346,8 +443,7 @@ def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Pa
     the jobs' timings and work counts go to ``timings.csv``.
     """
     frame = pd.read_parquet(snapshot)
-    specs = grid.expand(levels_for(frame, grid))
-    table = spec_table(grid, specs)
+    table = spec_table(grid, _specs_of(grid, Path(snapshot), frame))
     fit_files = [Path(f) for f in fit_files]
     results = pd.concat([pd.read_parquet(f) for f in fit_files], ignore_index=True)
     ledger = table.merge(results, on="spec_id", how="left", validate="one_to_one")
@@ -368,6 +464,7 @@ def fit_grid(config: str | Path | Mapping[str, Any], *,
     run one after another): for notebooks, tests and small grids. Paths are relative to the
     working directory, as in a Snakemake run."""
     plan = make_plan(config, root=root, prepare=True)
+    save_plan(plan)
     snapshot_data(plan.grid, plan.snapshot_path, plan.data_sha256)
     for job in plan.jobs:
         fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
@@ -459,7 +556,7 @@ def draw_null_chunk(grid: Grid, snapshot: str | Path, key: str, chunk: int, out:
     started = time.perf_counter()
     snapshot = Path(snapshot)
     frame = pd.read_parquet(snapshot)
-    specs = grid.expand(levels_for(frame, grid))
+    specs = _specs_of(grid, snapshot, frame)
     if joint_key(grid, snapshot.stem, specs) != key:
         raise FegridError(f"The bootstrap draws {key} are not those of the current grid; run again.")
     first = chunk * grid.draws_per_job

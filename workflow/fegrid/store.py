@@ -138,6 +138,14 @@ class RunPaths:
     def fit(self, job_key: str) -> Path:
         return self.cache / "fits" / f"{job_key}.parquet"
 
+    def plan_file(self, key: str) -> Path:
+        """A resolved plan, kept so that every job of a run reads it instead of expanding the grid."""
+        return self.cache / "plans" / f"{key}.pkl"
+
+    def job_specs(self, job_key: str) -> Path:
+        """The specifications of one fit job, written when the run is planned."""
+        return self.cache / "jobs" / f"{job_key}.pkl"
+
     def work_log(self, job_key: str) -> Path:
         return self.cache / "fits" / f"{job_key}.json"
 

@@ -14,7 +14,13 @@ from fegrid.lock import RunLock
 
 
 try:
-    PLAN = pipeline.make_plan(config, prepare=True)
+    if workflow.is_main_process:
+        # plan once; the jobs read the saved plan (and their own specifications) instead of
+        # expanding the grid again
+        PLAN = pipeline.make_plan(config, prepare=True)
+        os.environ[pipeline.PLAN_ENV] = str(pipeline.save_plan(PLAN))
+    else:
+        PLAN = pipeline.plan_for_job(config)
 except FegridError as exc:
     raise WorkflowError(f"fegrid: {exc}") from None
 validate(config, str(SCHEMA_PATH))
@@ -42,7 +48,7 @@ BUILD_PDF = shutil.which("pdflatex") is not None
 
 # cluster resources of a fit job, from its size: rows x columns read, and specifications fitted
 _DATA_MB = os.path.getsize(PLAN.grid.data_path) / 1e6
-_SPECS = {job.key: len(job.specs) for job in PLAN.jobs}
+_SPECS = PLAN.job_sizes
 
 
 def fit_mem_mb(wildcards):

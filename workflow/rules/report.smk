@@ -117,7 +117,7 @@ rule write_provenance:
     params:
         benchmarks=benchmark_files(),
         config_path=CONFIG_PATH,
-        specs=len(PLAN.specs),
+        specs=PLAN.n_specs,
         # the snapshot records the hash of the bytes that were fitted
         snapshot=str(PLAN.snapshot_path),
     log:

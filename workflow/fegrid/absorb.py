@@ -53,9 +53,27 @@ class EffectTerm:
 
     columns: tuple[str, ...]
     kind: str = field(default="effect", init=False)
+    #: Whether the term adds a slope per group (and so may never be dropped as redundant).
+    has_slope = False
+
+    @classmethod
+    def parse(cls, value: object, *, where: str) -> EffectTerm:
+        """``{effect: column}`` or ``{effect: [columns]}``."""
+        cols = (value,) if isinstance(value, str) else tuple(value) if isinstance(value, (list, tuple)) else ()
+        if not cols or not all(isinstance(c, str) for c in cols):
+            raise ConfigError(f"{where}: 'effect' takes a column name or a list of them.")
+        return cls(cols)
 
     def canonical(self) -> dict[str, object]:
         return {"kind": self.kind, "columns": list(self.columns)}
+
+    def label(self) -> str:
+        return " x ".join(self.columns)
+
+    @property
+    def groups(self) -> tuple[str, ...]:
+        """The columns whose levels (or level combinations) are the term's groups."""
+        return self.columns
 
     def needed_columns(self, time: str | None) -> tuple[str, ...]:
         return self.columns
@@ -67,9 +85,24 @@ class TrendTerm:
 
     group: str
     kind: str = field(default="trend", init=False)
+    has_slope = True
+
+    @classmethod
+    def parse(cls, value: object, *, where: str) -> TrendTerm:
+        """``{trend: column}``."""
+        if not isinstance(value, str):
+            raise ConfigError(f"{where}: 'trend' takes one column name, got {value!r}.")
+        return cls(value)
 
     def canonical(self) -> dict[str, object]:
         return {"kind": self.kind, "group": self.group}
+
+    def label(self) -> str:
+        return f"trend({self.group})"
+
+    @property
+    def groups(self) -> tuple[str, ...]:
+        return (self.group,)
 
     def needed_columns(self, time: str | None) -> tuple[str, ...]:
         if time is None:
@@ -82,8 +115,9 @@ class TrendTerm:
 
 Term = EffectTerm | TrendTerm
 
-#: Registry of absorbed-effect kinds: the config's spelling -> term class.
-ABSORB_KINDS: dict[str, type] = {"effect": EffectTerm, "trend": TrendTerm}
+#: Registry of absorbed-effect kinds: the config's spelling -> term class. Each class parses its own
+#: config value, labels itself, names its columns and gives its canonical form.
+ABSORB_KINDS: dict[str, type[EffectTerm] | type[TrendTerm]] = {"effect": EffectTerm, "trend": TrendTerm}
 
 
 def parse_term(raw: object, *, where: str = "absorb") -> Term:
@@ -116,14 +150,7 @@ def parse_term(raw: object, *, where: str = "absorb") -> Term:
                 f"{where}: unknown kind of absorbed term '{kind}'; the kinds are "
                 f"{', '.join(sorted(ABSORB_KINDS))}."
             )
-        if kind == "trend":
-            if not isinstance(value, str):
-                raise ConfigError(f"{where}: 'trend' takes one column name, got {value!r}.")
-            return TrendTerm(value)
-        cols = (value,) if isinstance(value, str) else tuple(value)  # type: ignore[arg-type]
-        if not cols or not all(isinstance(c, str) for c in cols):
-            raise ConfigError(f"{where}: 'effect' takes a column name or a list of them.")
-        return EffectTerm(cols)
+        return ABSORB_KINDS[kind].parse(value, where=where)
     raise ConfigError(
         f"{where}: an absorbed term is a column name, 'a x b' for an interaction, or a mapping "
         f"such as {{trend: unit_column}}; got {raw!r}."
@@ -142,9 +169,7 @@ def parse_absorb(raw: Sequence[object] | None, *, where: str = "absorb") -> tupl
 
 def term_label(term: Term) -> str:
     """Short human label: ``valley x season`` or ``trend(orchard)``."""
-    if isinstance(term, TrendTerm):
-        return f"trend({term.group})"
-    return " x ".join(term.columns)
+    return term.label()
 
 
 def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, int]:
@@ -202,10 +227,6 @@ def _densify(codes: np.ndarray) -> np.ndarray:
     return (np.cumsum(present) - 1)[codes]
 
 
-def _term_columns(term: Term) -> tuple[str, ...]:
-    return term.columns if isinstance(term, EffectTerm) else (term.group,)
-
-
 def _default_codes(frame: pd.DataFrame) -> CodesOf:
     return lambda columns: factorize(frame, columns)[0]
 
@@ -221,7 +242,7 @@ def drop_singletons(frame: pd.DataFrame, terms: Sequence[Term], *, codes_of: Cod
     if not terms:
         return keep
     codes_of = codes_of or _default_codes(frame)
-    codes = [codes_of(_term_columns(t)) for t in terms]
+    codes = [codes_of(t.groups) for t in terms]
     while True:
         changed = False
         for c in codes:
@@ -310,7 +331,7 @@ def _nested(inner: np.ndarray, outer: np.ndarray) -> bool:
 def _outranks(other: Term, other_levels: int, other_pos: int, levels: int, pos: int) -> bool:
     """Whether ``other`` stays when it refines a term with ``levels`` levels (identical partitions:
     the earlier term stays; a trend term always stays)."""
-    if isinstance(other, TrendTerm):
+    if other.has_slope:
         return True
     return other_levels > levels or (other_levels == levels and other_pos < pos)
 
@@ -368,19 +389,19 @@ class Absorber:
         slopes: list[np.ndarray | None] = []
         self._time = frame[time].to_numpy(dtype=float) if time and time in frame else None
         for term in self.terms:
-            codes = codes_of(_term_columns(term))
+            codes = codes_of(term.groups)
             nlev = int(codes.max()) + 1 if n else 0
-            self.levels[term_label(term)] = nlev
+            self.levels[term.label()] = nlev
             self._codes.append(codes)
             self._nlev.append(nlev)
             slopes.append(
-                frame[time].to_numpy(dtype=float) if isinstance(term, TrendTerm) and time else None
+                frame[time].to_numpy(dtype=float) if term.has_slope and time else None
             )
         # skip a term that a finer term refines (each of the finer term's groups lies inside one of
         # its groups): its dummies are sums of the finer term's dummies
         active = []
         for i, term in enumerate(self.terms):
-            redundant = isinstance(term, EffectTerm) and any(
+            redundant = not term.has_slope and any(
                 j != i and _outranks(self.terms[j], self._nlev[j], j, self._nlev[i], i)
                 and _nested(self._codes[j], self._codes[i])
                 for j in range(len(self.terms))
@@ -416,7 +437,7 @@ class Absorber:
             if self._projections[self._active.index(i)].slope is None:
                 continue
             # the slopes sum to the time variable itself, which an effect constant in time spans
-            if any(j != i and isinstance(self.terms[j], EffectTerm)
+            if any(j != i and not self.terms[j].has_slope
                    and _constant_within(self._time, self._codes[j]) for j in members):
                 df -= 1
         return df

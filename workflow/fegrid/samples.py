@@ -17,7 +17,7 @@ import pandas as pd
 
 from .errors import ConfigError, DataError
 
-__all__ = ["SampleDef", "Panel", "SAMPLE_FILTERS", "apply_sample", "parse_sample"]
+__all__ = ["SampleDef", "SampleFilter", "Panel", "SAMPLE_FILTERS", "apply_sample", "parse_sample"]
 
 
 @dataclass(frozen=True)
@@ -39,11 +39,8 @@ class SampleDef:
         return {k: v for k, v in self.filters}
 
     def columns(self) -> set[str]:
-        cols: set[str] = set()
-        for key, arg in self.filters:
-            if key in ("range", "keep", "drop"):
-                cols.update(arg)
-        return cols
+        """The data columns the filters read (the panel's keys aside)."""
+        return {c for key, arg in self.filters for c in SAMPLE_FILTERS[key].columns(arg)}
 
 
 def _level_match(series: pd.Series, levels: list[Any], *, sample: str, key: str) -> np.ndarray:
@@ -115,38 +112,47 @@ def _balanced(frame: pd.DataFrame, arg: bool, panel: Panel, sample: str) -> np.n
     return (_periods_per_unit(frame, panel) == n_periods).to_numpy()
 
 
-#: Filter key -> function, in the order the filters apply.
-SAMPLE_FILTERS: dict[str, Callable[[pd.DataFrame, Any, Panel, str], np.ndarray]] = {
-    "range": _range,
-    "keep": _keep,
-    "drop": _drop,
-    "min_periods": _min_periods,
-    "balanced": _balanced,
-}
+@dataclass(frozen=True)
+class SampleFilter:
+    """One kind of sample filter: how its config argument is canonicalised (``None``: no-op, left
+    out of the sample's content), which columns it reads, and the rows it keeps."""
+
+    key: str
+    mask: Callable[[pd.DataFrame, Any, Panel, str], np.ndarray]
+    canonical: Callable[[Any], Any]
+    columns: Callable[[Any], set[str]] = lambda arg: set()
 
 
-def _canonical_levels(levels: list[Any]) -> list[Any]:
-    return sorted(levels, key=lambda v: json.dumps(v))
+def _levels_by_column(arg: Mapping[str, Any]) -> dict[str, list[Any]] | None:
+    out = {c: sorted(list(v), key=lambda level: json.dumps(level)) for c, v in sorted(arg.items())}
+    return out or None
+
+
+def _bounds_by_column(arg: Mapping[str, Any]) -> dict[str, dict[str, Any]] | None:
+    return {c: dict(sorted(b.items())) for c, b in sorted(arg.items())} or None
+
+
+def _named_columns(arg: Mapping[str, Any]) -> set[str]:
+    return set(arg)
+
+
+#: Filter key -> filter, in the order the filters apply. Adding a kind of filter touches this table
+#: (and the schema's ``$defs/sample``), nothing else.
+SAMPLE_FILTERS: dict[str, SampleFilter] = {f.key: f for f in (
+    SampleFilter("range", _range, _bounds_by_column, _named_columns),
+    SampleFilter("keep", _keep, _levels_by_column, _named_columns),
+    SampleFilter("drop", _drop, _levels_by_column, _named_columns),
+    SampleFilter("min_periods", _min_periods, lambda arg: arg),
+    SampleFilter("balanced", _balanced, lambda arg: arg or None),
+)}
 
 
 def parse_sample(name: str, raw: Mapping[str, Any]) -> SampleDef:
     """Canonical form of one sample entry (without ``drop_each``, which the grid expands)."""
     filters: list[tuple[str, Any]] = []
-    for key in SAMPLE_FILTERS:
-        if key not in raw:
-            continue
-        arg = raw[key]
-        if key in ("keep", "drop"):
-            arg = {c: _canonical_levels(list(v)) for c, v in sorted(arg.items())}
-            if not arg:
-                continue
-        elif key == "range":
-            arg = {c: dict(sorted(b.items())) for c, b in sorted(arg.items())}
-            if not arg:
-                continue
-        elif key == "balanced" and not arg:
-            continue
-        filters.append((key, arg))
+    for key, kind in SAMPLE_FILTERS.items():
+        if key in raw and (arg := kind.canonical(raw[key])) is not None:
+            filters.append((key, arg))
     return SampleDef(name, tuple(filters))
 
 
@@ -154,7 +160,7 @@ def apply_sample(frame: pd.DataFrame, sample: SampleDef, panel: Panel) -> pd.Dat
     """Rows of ``frame`` in ``sample``; an empty result is an error naming the sample."""
     out = frame
     for key, arg in sample.filters:
-        out = out.loc[SAMPLE_FILTERS[key](out, arg, panel, sample.name)]
+        out = out.loc[SAMPLE_FILTERS[key].mask(out, arg, panel, sample.name)]
     if len(out) == 0:
         raise DataError(
             f"Sample '{sample.name}' keeps no rows of the data: its filters "

@@ -48,11 +48,9 @@ def test_a_corrected_value_refits_only_the_specifications_that_read_it(fitted, t
     cold = tmp_path_factory.mktemp("cold")
     for name in ("grunfeld.csv", "grid.yaml"):
         (cold / name).write_bytes((folder / name).read_bytes())
-    import os
-
-    os.chdir(cold)
-    fit_grid("grid.yaml")
-    os.chdir(folder)
+    with pytest.MonkeyPatch.context() as mp:
+        mp.chdir(cold)
+        fit_grid("grid.yaml")
     assert (cold / "reports/tiny/ledger.csv").read_bytes() == (folder / "reports/tiny/ledger.csv").read_bytes()
 
 

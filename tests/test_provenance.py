@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from helpers import fit_in_process, wage_grid
 
 from fegrid.data import file_sha256
 from fegrid.errors import DataError
@@ -105,3 +106,35 @@ def test_joint_p_value_of_zero_reads_as_a_bound(tiny_project: Path, monkeypatch)
     assert "< 0.05" in md and "| 0 " not in md
     assert os.path.getsize(tiny_project / "j.csv") > 0
 
+
+
+@pytest.fixture(scope="module")
+def wage_ledger(tmp_path_factory, wage_panel) -> pd.DataFrame:
+    folder = tmp_path_factory.mktemp("wage")
+    return fit_in_process(wage_grid(folder, wage_panel), folder)
+
+
+def test_manifest_and_replication(wage_ledger, tmp_path: Path, wage_panel) -> None:
+    from fegrid.provenance import build_manifest, replication_section
+
+    raw = wage_grid(tmp_path, wage_panel)
+    out = tmp_path / "ledger.csv"
+    wage_ledger.to_csv(out, index=False)
+    bench = tmp_path / "benchmarks" / "fit_job" / "abc.tsv"
+    bench.parent.mkdir(parents=True)
+    bench.write_text("s\th:m:s\tmax_rss\n1.5\t0:00:01\t120.0\n")
+    man = build_manifest(config=raw, data_path=raw["data"]["path"], n_specs=len(wage_ledger),
+                         seeds={"joint_inference.seed": 5}, outputs={"ledger_csv": out}, benchmarks=[bench],
+                         workflow_root=tmp_path)
+    import hashlib
+
+    assert man["data"]["sha256"] == hashlib.sha256(Path(raw["data"]["path"]).read_bytes()).hexdigest()
+    assert man["stages"]["fit_job"] == {"jobs": 1, "wall_seconds": 1.5, "max_rss_mb": 120.0}
+    assert man["outputs"]["ledger_csv"]["sha256"] == hashlib.sha256(out.read_bytes()).hexdigest()
+    assert set(man["packages"]) >= {"numpy", "pandas", "snakemake"}
+    text = replication_section(man, config_path="grid.yaml", draws=500, seed=5)
+    for heading in ("### Computational requirements", "#### Software requirements", "#### Controlled randomness",
+                    "#### Memory and runtime requirements", "### List of outputs"):
+        assert heading in text
+    assert "`joint_inference.seed` (value 5)" in text
+    json.dumps(man)

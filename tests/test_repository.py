@@ -9,6 +9,8 @@ from pathlib import Path
 
 import pytest
 
+from fegrid.ledger import LEDGER_COLUMNS
+
 ROOT = Path(__file__).resolve().parents[1]
 
 
@@ -93,3 +95,9 @@ def test_every_rule_is_a_known_stage(tiny_project: Path, fegrid_env) -> None:
     assert proc.returncode == 0, proc.stderr[-2000:]
     rules = {line.strip() for line in proc.stdout.splitlines() if line.strip()}
     assert rules == set(RULES) | {"all"}
+
+
+def test_ledger_columns_documented_in_readme() -> None:
+    readme = (ROOT / "README.md").read_text()
+    for col in LEDGER_COLUMNS:
+        assert f"`{col}`" in readme, col

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 import stat
 from datetime import date
 from pathlib import Path
@@ -20,9 +19,8 @@ from fegrid.store import write_json
 
 def _run(folder: Path, config: str = "grid.yaml") -> Path:
     """Fit the grid in-process (the rules' functions) and write a manifest beside the ledger."""
-    cwd = os.getcwd()
-    os.chdir(folder)
-    try:
+    with pytest.MonkeyPatch.context() as mp:  # the tests' one way of changing folder
+        mp.chdir(folder)
         plan, _ = fit_grid(config)
         outputs = {"ledger_csv": plan.paths.ledger_csv, "ledger_parquet": plan.paths.ledger_parquet}
         manifest = build_manifest(config=plan.grid.raw, data_path=plan.grid.data_path, n_specs=len(plan.specs),
@@ -30,8 +28,6 @@ def _run(folder: Path, config: str = "grid.yaml") -> Path:
                                   run_folder=plan.paths.run)
         write_json(plan.paths.run / "manifest.json", manifest)
         return folder / plan.paths.run
-    finally:
-        os.chdir(cwd)
 
 
 def _freeze(run: Path, tmp: Path, name: str) -> Path:

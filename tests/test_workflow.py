@@ -47,52 +47,80 @@ def _fitted_jobs(result: subprocess.CompletedProcess) -> int:
 
 
 def _work_logs(folder: Path) -> dict[str, dict]:
+    """Work logs of the fit jobs, by job key."""
     return {p.stem: json.loads(p.read_text()) for p in (folder / "reports/tiny/cache/fits").glob("*.json")}
 
 
-def test_full_run_rerun_and_incremental(tiny_project: Path, fegrid_env: dict) -> None:
-    first = _snakemake(tiny_project, fegrid_env)
+@pytest.fixture(scope="module")
+def fitted_once(tmp_path_factory, grunfeld: pd.DataFrame) -> tuple[Path, subprocess.CompletedProcess]:
+    """The tiny grid (conftest.py) run once through Snakemake; tests work on copies of the folder."""
+    from conftest import TINY_CONFIG
+
+    folder = tmp_path_factory.mktemp("fitted_once")
+    grunfeld.to_csv(folder / "grunfeld.csv", index=False)
+    (folder / "grid.yaml").write_text(TINY_CONFIG)
+    env = dict(os.environ)
+    env["PATH"] = str(Path(sys.executable).parent) + os.pathsep + env.get("PATH", "")
+    first = _snakemake(folder, env)
     assert first.returncode == 0, first.stderr[-3000:]
-    ledger_path = tiny_project / "reports/tiny/ledger.csv"
-    ledger = pd.read_csv(ledger_path)
+    return folder, first
+
+
+@pytest.fixture()
+def fitted(fitted_once, tmp_path: Path) -> Path:
+    """A copy of the fitted folder (time stamps and Snakemake's records kept)."""
+    copy = tmp_path / "project"
+    shutil.copytree(fitted_once[0], copy, symlinks=True)
+    return copy
+
+
+def test_a_run_writes_the_ledger_the_engine_computes(fitted_once) -> None:
+    folder, first = fitted_once
+    ledger = pd.read_csv(folder / "reports/tiny/ledger.csv")
     assert list(ledger.columns) == list(LEDGER_COLUMNS)
     assert ledger["spec_id"].is_monotonic_increasing and ledger["spec_id"].is_unique
     assert len(ledger) == 2 * 2 * 2 * 2 * 2  # focal x absorb x clustering x sample x usable controls
     assert ledger["is_baseline"].sum() == 1 and (ledger["status"] == "ok").all()
-    assert (tiny_project / "reports/tiny/ledger.parquet").is_file()
+    assert (folder / "reports/tiny/ledger.parquet").is_file()
     assert _fitted_jobs(first) > 1  # several jobs (specs_per_job: 4)
-
     # the ledger's numbers are the engine's: check the baseline against a direct fit
     base = ledger[ledger["is_baseline"]].iloc[0]
-    data = pd.read_csv(tiny_project / "grunfeld.csv")
+    data = pd.read_csv(folder / "grunfeld.csv")
     direct = fit_one(data, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm", "year"]),
                      inference=Inference("cluster", (("firm",),)))
     assert base["estimate"] == pytest.approx(direct.estimate, rel=1e-12)
     assert base["std_error"] == pytest.approx(direct.std_error, rel=1e-12)
 
-    before = ledger_path.read_bytes()
-    again = _snakemake(tiny_project, fegrid_env)
+
+def test_a_rerun_does_nothing(fitted: Path, fegrid_env: dict) -> None:
+    again = _snakemake(fitted, fegrid_env)
     assert again.returncode == 0 and "Nothing to be done" in again.stdout + again.stderr
 
-    # touching the data or rewriting it with the same bytes fits nothing
-    data_file = tiny_project / "grunfeld.csv"
+
+def test_touching_or_rewriting_the_data_fits_nothing(fitted: Path, fegrid_env: dict) -> None:
+    before = (fitted / "reports/tiny/ledger.csv").read_bytes()
+    data_file = fitted / "grunfeld.csv"
     os.utime(data_file, (time.time() + 100, time.time() + 100))
     data_file.write_bytes(data_file.read_bytes())
-    touched = _snakemake(tiny_project, fegrid_env)
+    touched = _snakemake(fitted, fegrid_env)
     assert touched.returncode == 0 and _fitted_jobs(touched) == 0
-    assert ledger_path.read_bytes() == before
+    assert (fitted / "reports/tiny/ledger.csv").read_bytes() == before
 
-    # one more clustering choice: only additions in the ledger, no demeaning redone
-    logs_before = set(_work_logs(tiny_project))
-    config = (tiny_project / "grid.yaml").read_text()
+
+def test_an_added_clustering_fits_only_the_new_specifications(fitted: Path, fegrid_env: dict) -> None:
+    """One more clustering choice: only additions in the ledger, no demeaning redone."""
+    ledger_path = fitted / "reports/tiny/ledger.csv"
+    ledger = pd.read_csv(ledger_path)
+    logs_before = set(_work_logs(fitted))
+    config = (fitted / "grid.yaml").read_text()
     config = config.replace("  firm: {kind: cluster, by: firm}",
                             "  firm: {kind: cluster, by: firm}\n  firm_year: {kind: twoway, by: [firm, year]}")
-    (tiny_project / "grid.yaml").write_text(config)
-    plan = _fegrid(tiny_project, fegrid_env, "plan", "--config", "grid.yaml")
+    (fitted / "grid.yaml").write_text(config)
+    plan = _fegrid(fitted, fegrid_env, "plan", "--config", "grid.yaml")
     assert plan.returncode == 0 and "to fit: 16" in plan.stdout, plan.stdout
-    added = _snakemake(tiny_project, fegrid_env)
+    added = _snakemake(fitted, fegrid_env)
     assert added.returncode == 0, added.stderr[-3000:]
-    new_logs = {k: v for k, v in _work_logs(tiny_project).items() if k not in logs_before}
+    new_logs = {k: v for k, v in _work_logs(fitted).items() if k not in logs_before}
     assert new_logs and all(v["columns_demeaned"] == 0 for v in new_logs.values())
     assert sum(v["specs_fitted"] for v in new_logs.values()) == 16
     assert sum(v["specs_reused"] for v in new_logs.values()) == len(ledger)

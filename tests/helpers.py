@@ -1,0 +1,63 @@
+"""Shared helpers of the report tests: a grid over linearmodels' wage_panel (an open dataset),
+fitted in-process with the functions the Snakemake rules call, and the appendix built from it."""
+
+from __future__ import annotations
+
+import os
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from fegrid.figures import draw_curve, pair_slug, save_curve
+from fegrid.grid import load_config
+from fegrid.pipeline import fit_grid
+from fegrid.report import figure_names, render_appendix
+
+NEEDS_TEX = pytest.mark.skipif(
+    shutil.which("pdflatex") is None and os.environ.get("CI") != "true",
+    reason="pdflatex is not installed (CI installs it and runs these tests)",
+)
+
+
+def wage_grid(tmp: Path, wage_panel: pd.DataFrame, **extra) -> dict:
+    wage_panel.to_csv(tmp / "wage.csv", index=False)
+    raw = {
+        "run_name": "wage",
+        "data": {"path": str(tmp / "wage.csv"), "unit": "nr", "time": "year"},
+        "outcomes": ["lwage"],
+        "focal_regressors": ["union", "married"],
+        "absorb": {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": [],
+                   "worker_occupation": ["nr", "year", "occupation"]},
+        "clustering": {"robust": {"kind": "robust"}, "worker": {"kind": "cluster", "by": "nr"},
+                       "iid": {"kind": "iid"}, "two_way": {"kind": "twoway", "by": ["nr", "year"]}},
+        "samples": {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}},
+                    "not_1987": {"drop": {"year": [1987]}}, "balanced": {"balanced": True}},
+        "control_sets": {"combinations_of": ["expersq", "hours", "black", "union", "married"]},
+        "joint_inference": {"draws": 0},
+    }
+    raw.update(extra)
+    return raw
+
+
+def fit_in_process(raw: dict, folder: Path) -> pd.DataFrame:
+    """The grid fitted with the same functions the Snakemake rules call."""
+    with pytest.MonkeyPatch.context() as mp:  # the tests' one way of changing folder
+        mp.chdir(folder)
+        return fit_grid(raw)[1]
+
+
+def build_appendix(folder: Path, ledger: pd.DataFrame, raw: dict) -> Path:
+    grid = load_config(raw)
+    figures = figure_names(ledger)
+    for rel, (outcome, focal) in zip(figures, sorted({tuple(x) for x in ledger[["outcome", "focal"]].to_numpy()})):
+        part = ledger[(ledger["outcome"] == outcome) & (ledger["focal"] == focal)]
+        save_curve(draw_curve(part), folder / rel.replace(".pdf", ".png"), folder / rel)
+        assert rel.endswith(f"curve-{pair_slug(outcome, focal)}.pdf")
+    joint = pd.DataFrame([{"outcome": "lwage", "focal": "union", "statistic": "median_estimate", "observed": 0.07,
+                           "p_value": 0.0, "draws": 10, "specs": 5, "dominant_sign": "+"}])
+    return render_appendix(grid, ledger, joint, figures, folder / "appendix.tex", draws=10, seed=1,
+                           resample="nr")
+
+

@@ -1,0 +1,123 @@
+"""Unit tests of small parts: covariance kinds, atomic writes, sample filters, the CLI's summary.
+
+Data: statsmodels' Grunfeld investment data (see conftest.py); references: statsmodels' OLS with
+its covariance options (a general-purpose reference library) and pandas computations written out.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from fegrid.cli import main
+from fegrid.estimate import Inference, fit_one
+from fegrid.samples import SAMPLE_FILTERS, Panel, apply_sample, parse_sample
+from fegrid.store import atomic_write, write_text
+
+PANEL = Panel(unit="firm", time="year")
+
+
+# ---- covariance kinds -----------------------------------------------------------------------------
+
+@pytest.mark.parametrize("kind", ["iid", "robust", "cluster"])
+def test_each_covariance_kind_equals_statsmodels_on_pooled_ols(grunfeld: pd.DataFrame, kind: str) -> None:
+    """Source: statsmodels OLS with a constant: nonrobust, HC1, and cluster (G/(G-1)(N-1)/(N-K),
+    the same small-sample factor; pooled OLS has no absorbed effect nested in the clusters)."""
+    import statsmodels.api as sm
+
+    by = (("firm",),) if kind == "cluster" else ()
+    ours = fit_one(grunfeld, "invest", "value", controls=["capital"], absorb=(), inference=Inference(kind, by))
+    model = sm.OLS(grunfeld["invest"], sm.add_constant(grunfeld[["value", "capital"]]))
+    options = {"iid": {"cov_type": "nonrobust"}, "robust": {"cov_type": "HC1"},
+               "cluster": {"cov_type": "cluster", "cov_kwds": {"groups": pd.factorize(grunfeld["firm"])[0]}}}
+    ref = model.fit(**options[kind])
+    assert ours.estimate == pytest.approx(ref.params["value"], rel=1e-10)
+    assert ours.std_error == pytest.approx(ref.bse["value"], rel=1e-9)
+    expected_df = grunfeld["firm"].nunique() - 1 if kind == "cluster" else len(grunfeld) - 3
+    assert ours.df_inference == expected_df
+
+
+def test_twoway_is_the_sum_of_its_one_way_parts(grunfeld: pd.DataFrame) -> None:
+    """Published identity (Cameron, Gelbach & Miller 2011): V = V_firm + V_year - V_firm x year; with
+    one observation per firm-year the intersection is the heteroskedasticity-robust sandwich."""
+    kw = {"controls": ["capital"], "absorb": ()}
+    firm = fit_one(grunfeld, "invest", "value", inference=Inference("cluster", (("firm",),)), **kw)
+    year = fit_one(grunfeld, "invest", "value", inference=Inference("cluster", (("year",),)), **kw)
+    both = fit_one(grunfeld, "invest", "value", inference=Inference("twoway", (("firm",), ("year",))), **kw)
+    n, k = len(grunfeld), 3
+    g_f, g_y = grunfeld["firm"].nunique(), grunfeld["year"].nunique()
+    raw = lambda se, g: se**2 / (g / (g - 1) * (n - 1) / (n - k))  # noqa: E731 - undo one factor
+    hetero = fit_one(grunfeld, "invest", "value", inference=Inference("robust"), **kw).std_error ** 2 * (n - k) / n
+    expected = (g_f / (g_f - 1) * raw(firm.std_error, g_f) + g_y / (g_y - 1) * raw(year.std_error, g_y)
+                - n / (n - 1) * hetero) * (n - 1) / (n - k)
+    assert both.std_error ** 2 == pytest.approx(expected, rel=1e-9)
+    assert both.df_inference == min(g_f, g_y) - 1
+
+
+# ---- atomic writes --------------------------------------------------------------------------------
+
+def test_an_interrupted_write_leaves_the_old_file_and_no_fragment(tmp_path: Path) -> None:
+    target = write_text(tmp_path / "ledger.csv", "old\n")
+
+    def half(fh) -> None:
+        fh.write(b"new, half written")
+        raise KeyboardInterrupt  # the user stops the run in the middle of the write
+
+    with pytest.raises(KeyboardInterrupt):
+        atomic_write(target, half)
+    assert target.read_text() == "old\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["ledger.csv"]
+
+
+# ---- sample filters -------------------------------------------------------------------------------
+
+SAMPLE_CASES = {
+    "range": ({"range": {"year": {"min": 1940, "max": 1949}}}, lambda d: d["year"].between(1940, 1949)),
+    "keep": ({"keep": {"firm": ["IBM", "Chrysler"]}}, lambda d: d["firm"].isin(["IBM", "Chrysler"])),
+    "drop": ({"drop": {"firm": ["IBM"]}}, lambda d: d["firm"] != "IBM"),
+    "min_periods": ({"range": {"value": {"min": 100}}, "min_periods": 15},
+                    lambda d: (d["value"] >= 100) & (d.loc[d["value"] >= 100].groupby("firm")["year"]
+                                                     .transform("nunique").reindex(d.index) >= 15)),
+    "balanced": ({"range": {"value": {"min": 100}}, "balanced": True},
+                 lambda d: (d["value"] >= 100) & (d.loc[d["value"] >= 100].groupby("firm")["year"]
+                                                  .transform("nunique").reindex(d.index) == 20)),
+}
+
+
+@pytest.mark.parametrize("case", sorted(SAMPLE_CASES))
+def test_each_sample_filter_keeps_the_rows_pandas_selects(grunfeld: pd.DataFrame, case: str) -> None:
+    raw, expected = SAMPLE_CASES[case]
+    sample = parse_sample(case, raw)
+    kept = apply_sample(grunfeld, sample, PANEL)
+    want = grunfeld[expected(grunfeld).fillna(False).astype(bool)]
+    assert sorted(kept.index) == sorted(want.index) and 0 < len(kept) < len(grunfeld)
+    assert sample.columns() >= set(raw.get("range", {})) | set(raw.get("keep", {})) | set(raw.get("drop", {}))
+
+
+def test_sample_filters_are_canonical_and_no_ops_are_left_out() -> None:
+    a = parse_sample("a", {"keep": {"firm": ["b", "a"]}, "balanced": False, "drop": {}})
+    b = parse_sample("b", {"keep": {"firm": ["a", "b"]}})
+    assert a.canonical() == b.canonical() == {"keep": {"firm": ["a", "b"]}}
+    assert list(SAMPLE_FILTERS) == ["range", "keep", "drop", "min_periods", "balanced"]
+
+
+# ---- the CLI's summary ----------------------------------------------------------------------------
+
+def test_cli_summary_of_a_ledger(tiny_project: Path, monkeypatch, capsys) -> None:
+    from fegrid.pipeline import fit_grid
+
+    monkeypatch.chdir(tiny_project)
+    plan, ledger = fit_grid("grid.yaml")
+    assert main(["summary", "--ledger", str(plan.paths.ledger_csv)]) == 0
+    out = capsys.readouterr().out
+    base = ledger[ledger["is_baseline"]].iloc[0]
+    assert f"({len(ledger)} specifications)" in out
+    assert f"{base['estimate']:.4f}" in out
+    assert "dimensions that move the estimate most" in out
+    # clustering cannot move a point estimate: it is never listed as a dimension that moves it
+    moves = out.split("dimensions that move the estimate most")[1]
+    assert "clustering" not in moves
+    assert np.isfinite(base["estimate"])

@@ -62,3 +62,33 @@ def test_a_new_column_in_the_file_refits_and_demeans_nothing(fitted) -> None:
     work = _work(plan)
     assert work["specs_fitted"] == 0 and work["specs_reused"] == len(ledger)
     pd.testing.assert_frame_equal(after, ledger)
+
+
+def test_a_one_row_correction_in_the_demo_refits_only_samples_holding_it(tmp_path: Path, monkeypatch) -> None:
+    """On the INVENTED demo panel and grid (config/config.yaml): a rainfall value of season 2 in
+    valley V01 is corrected. Samples without that row (seasons from 4 on, the sample leaving V01 out)
+    are not refitted, and the ledger equals a cold fit of the corrected data."""
+    from fegrid.demo import write_demo_data
+    from fegrid.locations import WORKFLOW_ROOT
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "grid.yaml").write_text((WORKFLOW_ROOT / "config" / "config.yaml").read_text())
+    write_demo_data(tmp_path / "data/demo/orchards.csv")
+    plan, ledger = fit_grid("grid.yaml")
+    data = pd.read_csv("data/demo/orchards.csv")
+    row = data.index[(data["season"] == 2) & (data["valley"] == "V01")][0]
+    data.loc[row, "rainfall"] += 0.5
+    data.to_csv("data/demo/orchards.csv", index=False)
+    plan, after = fit_grid("grid.yaml")
+    work = _work(plan)
+    holds_row = ~ledger["sample"].isin(["from_season_4", "leave_one_valley_out:V01"])
+    assert work["specs_reused"] >= int((~holds_row).sum()) > 0
+    assert work["specs_fitted"] <= int(holds_row.sum())
+    assert work["columns_reused"] > work["columns_demeaned"] > 0  # most demeaning is kept
+    cold = tmp_path / "cold"
+    (cold / "data/demo").mkdir(parents=True)
+    (cold / "data/demo/orchards.csv").write_bytes((tmp_path / "data/demo/orchards.csv").read_bytes())
+    (cold / "grid.yaml").write_bytes((tmp_path / "grid.yaml").read_bytes())
+    monkeypatch.chdir(cold)
+    fit_grid("grid.yaml")
+    assert (cold / "reports/demo/ledger.csv").read_bytes() == (tmp_path / "reports/demo/ledger.csv").read_bytes()

@@ -112,9 +112,9 @@ def main() -> None:
             "specs": len(job.specs),
             "parse_with_saved_plan_s": round(parse_saved, 3), "parse_expanding_grid_s": round(parse_fresh, 3),
             "job_with_spec_file_s": round(run_file, 3), "job_expanding_grid_s": round(run_fresh, 3),
-            "fit_step_s": log_file["fit_seconds"],
-            "share_outside_fitting_saved_plan": round(1 - log_file["fit_seconds"] / (parse_saved + run_file), 3),
-            "share_outside_fitting_expanding": round(1 - log_fresh["fit_seconds"] / (parse_fresh + run_fresh), 3),
+            "fit_step_s": log_file.fit_seconds,
+            "share_outside_fitting_saved_plan": round(1 - log_file.fit_seconds / (parse_saved + run_file), 3),
+            "share_outside_fitting_expanding": round(1 - log_fresh.fit_seconds / (parse_fresh + run_fresh), 3),
         },
     }
     print(json.dumps(report, indent=2))

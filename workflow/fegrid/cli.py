@@ -69,12 +69,12 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     plan = make_plan(args.config, prepare=True)
     frame = load_checked(plan.grid)
     st = plan_status(plan, frame)
-    print(f"run '{st['run_name']}': {st['specifications']} specifications in {st['jobs']} "
-          f"{_plural(st['jobs'], 'job')} "
-          f"(data sha256 {st['data_sha256'][:12]}...)")
+    print(f"run '{st.run_name}': {st.specifications} specifications in {st.jobs} "
+          f"{_plural(st.jobs, 'job')} "
+          f"(data sha256 {st.data_sha256[:12]}...)")
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
-    print(f"already fitted: {st['specs_fitted']} specifications; to fit: {st['specs_to_fit']} "
-          f"(jobs to run: {st['jobs'] - st['jobs_done']} of {st['jobs']}).")
+    print(f"already fitted: {st.specs_fitted} specifications; to fit: {st.specs_to_fit} "
+          f"(jobs to run: {st.jobs - st.jobs_done} of {st.jobs}).")
     if args.list:
         done = fitted_specs(plan, frame)
         rows = [(s.spec_id, "fitted" if s.spec_id in done else "to fit",
@@ -110,9 +110,9 @@ def _cmd_run(args: argparse.Namespace) -> int:
         )
     plan = make_plan(args.config, prepare=True)
     st = plan_status(plan, load_checked(plan.grid))
-    print(f"fegrid: run '{plan.grid.run_name}': {st['specifications']} specifications, "
-          f"{st['specs_to_fit']} to fit; {st['jobs'] - st['jobs_done']} of {st['jobs']} fit "
-          f"{_plural(st['jobs'], 'job')} to run.",
+    print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
+          f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
+          f"{_plural(st.jobs, 'job')} to run.",
           flush=True)
     _note_pdflatex()
     with RunLock(plan.paths.lock) as lock:

@@ -14,6 +14,7 @@ import itertools
 import json
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
@@ -120,11 +121,16 @@ class Spec:
     def name(self, dimension: str) -> str:
         return dict(self.names)[dimension]
 
-    @property
+    @cached_property
     def block_key(self) -> str:
         """Specifications with equal block keys share a sample, absorbed effects and weights."""
-        body = json.loads(self.canonical)
-        return json.dumps([body["sample"], body["absorb"], body["weights"]], sort_keys=True)
+        absorb = [t.canonical() for t in self.absorb]  # already in canonical order
+        return json.dumps([self.sample.canonical(), absorb, self.weights], sort_keys=True)
+
+    @cached_property
+    def sample_key(self) -> str:
+        """Specifications with equal sample keys share a sample and weights (and so a fit job)."""
+        return json.dumps([self.sample.canonical(), self.weights], sort_keys=True)
 
     def request(self) -> SpecRequest:
         return SpecRequest(self.spec_id, self.outcome, self.focal, self.controls, self.inference)
@@ -479,8 +485,7 @@ def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[J
     """
     by_sample: dict[str, list[Spec]] = {}
     for s in specs:
-        body = json.loads(s.canonical)
-        by_sample.setdefault(json.dumps([body["sample"], body["weights"]], sort_keys=True), []).append(s)
+        by_sample.setdefault(s.sample_key, []).append(s)
     groups: list[list[Spec]] = []
     for key in sorted(by_sample):
         members = by_sample[key]

@@ -17,7 +17,7 @@ import math
 import pickle
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import asdict, dataclass, is_dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -68,6 +68,8 @@ __all__ = [
     "fitted_specs",
     "ContentKeys",
     "fit_grid",
+    "JobWork",
+    "PlanStatus",
 ]
 
 
@@ -369,8 +371,23 @@ def _jobs_from_snapshot(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> list
                      salt=_salt(snapshot.stem, grid))
 
 
+@dataclass(frozen=True)
+class JobWork:
+    """What one fit job did (its work log, beside its results file, and a row of timings.csv)."""
+
+    job: str
+    specs: int
+    specs_fitted: int
+    specs_reused: int
+    designs: int
+    columns_demeaned: int
+    columns_reused: int
+    fit_seconds: float  # inside the engine
+    seconds: float  # the whole step: reading the snapshot and the job's specifications too
+
+
 def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
-            store_dir: str | Path | None = None) -> dict[str, Any]:
+            store_dir: str | Path | None = None) -> JobWork:
     """Fit the specifications of one job and write their results (Parquet, one row per spec).
 
     With ``store_dir`` (the run's cache folder), specifications whose results are stored are not
@@ -406,8 +423,8 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
             rows[spec.spec_id] = stored
         else:
             todo.add(spec.spec_id)
-    counts = {"designs": 0, "columns_demeaned": 0, "columns_reused": 0,
-              "specs_fitted": 0, "specs_reused": len(rows), "fit_seconds": 0.0}
+    designs = demeaned = reused_columns = fitted = 0
+    fit_seconds = 0.0
     for bkey in sorted(by_block):
         specs = by_block[bkey]
         if not todo.intersection(s.spec_id for s in specs):
@@ -415,22 +432,22 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
         fit_started = time.perf_counter()
         block = fit_block(content.sample(specs[0]), grid.block_settings(specs[0]),
                           [s.request() for s in specs], store=store, evaluate=todo)
-        counts["fit_seconds"] += time.perf_counter() - fit_started
-        counts["designs"] += block.designs
-        counts["columns_demeaned"] += block.columns_demeaned
-        counts["columns_reused"] += block.columns_reused
-        counts["specs_fitted"] += len(block.results)
+        fit_seconds += time.perf_counter() - fit_started
+        designs += block.designs
+        demeaned += block.columns_demeaned
+        reused_columns += block.columns_reused
+        fitted += len(block.results)
         for res in block.results:
             record = res.record()
             rows[res.spec_id] = record
             if results_store is not None:
                 results_store.put(result_key_of[res.spec_id], record)
     results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=list(RESULT_COLUMNS))
-    counts["fit_seconds"] = round(counts["fit_seconds"], 3)
-    log = {"job": job_key, "specs": len(results), **counts,
-           "seconds": round(time.perf_counter() - started, 3)}
+    log = JobWork(job=job_key, specs=len(results), specs_fitted=fitted, specs_reused=len(rows) - fitted,
+                  designs=designs, columns_demeaned=demeaned, columns_reused=reused_columns,
+                  fit_seconds=round(fit_seconds, 3), seconds=round(time.perf_counter() - started, 3))
     out = Path(out)
-    write_json(out.with_suffix(".json"), log)
+    write_json(out.with_suffix(".json"), asdict(log))
     write_parquet(out, results)
     return log
 
@@ -478,21 +495,30 @@ def fitted_specs(plan: Plan, frame: pd.DataFrame | None = None) -> set[str]:
     return {sid for sid, key in result_keys(plan.grid, frame, plan.jobs).items() if store.has(key)}
 
 
-def plan_status(plan: Plan, frame: pd.DataFrame | None = None) -> dict[str, Any]:
+@dataclass(frozen=True)
+class PlanStatus:
+    """How big a planned grid is and how much of it is fitted already."""
+
+    run_name: str
+    specifications: int
+    sizes: dict[str, int]
+    jobs: int
+    jobs_done: int
+    specs_fitted: int
+    data_sha256: str
+
+    @property
+    def specs_to_fit(self) -> int:
+        return self.specifications - self.specs_fitted
+
+
+def plan_status(plan: Plan, frame: pd.DataFrame | None = None) -> PlanStatus:
     """Size per dimension, jobs, and how many specifications are already fitted."""
-    sizes = {d: len({s.name(d) for s in plan.specs}) for d in DIMENSIONS}
-    done_jobs = [j for j in plan.jobs if plan.paths.fit(j.key).is_file()]
-    fitted = len(fitted_specs(plan, frame))
-    return {
-        "run_name": plan.grid.run_name,
-        "specifications": len(plan.specs),
-        "sizes": sizes,
-        "jobs": len(plan.jobs),
-        "jobs_done": len(done_jobs),
-        "specs_fitted": fitted,
-        "specs_to_fit": len(plan.specs) - fitted,
-        "data_sha256": plan.data_sha256,
-    }
+    return PlanStatus(
+        run_name=plan.grid.run_name, specifications=len(plan.specs),
+        sizes={d: len({s.name(d) for s in plan.specs}) for d in DIMENSIONS}, jobs=len(plan.jobs),
+        jobs_done=sum(plan.paths.fit(j.key).is_file() for j in plan.jobs),
+        specs_fitted=len(fitted_specs(plan, frame)), data_sha256=plan.data_sha256)
 
 
 def describe_sizes(specs: Sequence[Spec]) -> list[tuple[str, int, str]]:
@@ -519,6 +545,8 @@ def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
         except FegridError as exc:
             print(f"fegrid: {exc}", file=fh)
             raise SystemExit(1) from None
+        if is_dataclass(result) and not isinstance(result, type):
+            result = asdict(result)
         if isinstance(result, dict):
             print(json.dumps(result, sort_keys=True), file=fh)
     return result

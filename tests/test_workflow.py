@@ -194,7 +194,13 @@ def test_snakemake_lint(tiny_project: Path, fegrid_env) -> None:
 
 
 def test_reports_and_snakemake_report(tiny_project: Path, fegrid_env) -> None:
-    assert _snakemake(tiny_project, fegrid_env).returncode == 0
+    run_log = _snakemake(tiny_project, fegrid_env)
+    assert run_log.returncode == 0
+    # the first answer comes first: ledger, summary and figures are done before any draw starts
+    text = run_log.stdout + run_log.stderr
+    first_draw = text.index("rule draw_null_curves:")
+    for rule in ("gather_ledger", "summarise_curve", "draw_curve"):
+        assert text.rindex(f"(Rule: {rule})") < first_draw, rule
     run = tiny_project / "reports/tiny"
     for name in ("summary.csv", "summary.md", "summary.tex", "choices.csv", "joint_tests.csv", "appendix.tex",
                  "manifest.json", "REPLICATION.md", "figures/curve-invest--value.png",

@@ -40,6 +40,13 @@ def _note_pdflatex() -> None:
               "distribution with booktabs and longtable to get it).")
 
 
+def _job_counts(plan) -> str:
+    """Every kind of job a full run of the plan holds, with its count (bootstrap draws included)."""
+    names = plan.job_names(build_pdf=shutil.which("pdflatex") is not None)
+    parts = [f"{stage} {len(jobs)}" for stage, jobs in names.items() if jobs]
+    return f"jobs of a full run ({sum(len(j) for j in names.values())}): " + ", ".join(parts)
+
+
 def _plural(n: int, word: str) -> str:
     """``word`` with an s unless ``n`` is one: "1 job", "2 jobs"."""
     return word if n == 1 else word + "s"
@@ -58,6 +65,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
           f"{frame[plan.grid.panel.unit].nunique()} units, checks passed.")
     _note_pdflatex()
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
+    print(_job_counts(plan))
     left_out = plan.grid.self_controlled()
     if left_out:
         print(f"left out of the grid ({len(left_out)}): " + "; ".join(left_out))
@@ -74,7 +82,8 @@ def _cmd_plan(args: argparse.Namespace) -> int:
           f"(data sha256 {st.data_sha256[:12]}...)")
     print(tabulate(describe_sizes(plan.specs), headers=["dimension", "choices", "names"]))
     print(f"already fitted: {st.specs_fitted} specifications; to fit: {st.specs_to_fit} "
-          f"(jobs to run: {st.jobs - st.jobs_done} of {st.jobs}).")
+          f"(fit jobs to run: {st.jobs - st.jobs_done} of {st.jobs}).")
+    print(_job_counts(plan))
     if args.list:
         done = fitted_specs(plan, frame)
         rows = [(s.spec_id, "fitted" if s.spec_id in done else "to fit",

@@ -114,6 +114,12 @@ class RunPaths:
     root: Path
     run_name: str
 
+    @staticmethod
+    def of_file(path: str | Path, depth: int = 1) -> RunPaths:
+        """The run whose folder holds ``path`` ``depth`` levels down (the ledger: 1; a fit file: 3)."""
+        run = Path(path).parents[depth - 1]
+        return RunPaths(run.parent, run.name)
+
     @property
     def run(self) -> Path:
         return Path(self.root) / self.run_name

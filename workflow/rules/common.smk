@@ -11,6 +11,7 @@ from fegrid import keys, pipeline
 from fegrid.errors import FegridError
 from fegrid.locations import SCHEMA_PATH
 from fegrid.lock import RunLock
+from fegrid.store import RunPaths
 
 
 try:
@@ -81,6 +82,12 @@ def benchmark_of(stage, name="all"):
     if pipeline.stage(stage) not in pipeline.STAGES:
         raise WorkflowError(f"fegrid: the rule {stage} is not a timed stage (pipeline.STAGES)")
     return str(PLAN.paths.benchmark(stage, name))
+
+
+def first_answer():
+    """The outputs a user waits for: the ledger, its summary and the curve figures."""
+    return [str(PLAN.paths.ledger_parquet), str(PLAN.paths.file("summary.csv"))] + [
+        str(p) for p in PLAN.figure_paths("png")]
 
 
 def final_outputs():

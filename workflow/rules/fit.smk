@@ -2,6 +2,8 @@
 
 
 rule snapshot_data:
+    # the ledger, its summary and its figures come before any bootstrap draw
+    priority: 50
     output:
         snapshot=str(PLAN.snapshot_path),
     params:
@@ -18,6 +20,8 @@ rule snapshot_data:
 
 
 rule fit_job:
+    # the ledger, its summary and its figures come before any bootstrap draw
+    priority: 50
     input:
         snapshot=str(PLAN.snapshot_path),
     output:
@@ -25,7 +29,7 @@ rule fit_job:
         work=str(PLAN.paths.work_log("{job}")),
     params:
         # the run's cache folder: fits/ sits beside demeaned/ and results/
-        store=str(PLAN.paths.cache),
+        store=lambda wildcards, output: str(RunPaths.of_file(output.results, depth=3).cache),
     log:
         log_of("fit_job", "{job}"),
     benchmark:

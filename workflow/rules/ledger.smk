@@ -2,6 +2,8 @@
 
 
 rule gather_ledger:
+    # the ledger, its summary and its figures come before any bootstrap draw
+    priority: 50
     input:
         snapshot=str(PLAN.snapshot_path),
         fits=[str(p) for p in PLAN.fit_paths()],
@@ -11,7 +13,7 @@ rule gather_ledger:
         timings=str(PLAN.paths.timings),
     params:
         grid_digest=GRID_DIGEST,
-        root=str(PLAN.paths.root),
+        root=lambda wildcards, output: str(RunPaths.of_file(output.csv).root),
     log:
         log_of("gather_ledger"),
     benchmark:

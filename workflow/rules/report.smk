@@ -2,6 +2,8 @@
 
 
 rule draw_curve:
+    # the ledger, its summary and its figures come before any bootstrap draw
+    priority: 50
     input:
         ledger=str(PLAN.paths.ledger_parquet),
     output:
@@ -22,6 +24,8 @@ rule draw_curve:
 
 
 rule summarise_curve:
+    # the ledger, its summary and its figures come before any bootstrap draw
+    priority: 50
     input:
         ledger=str(PLAN.paths.ledger_parquet),
     output:
@@ -43,6 +47,9 @@ rule summarise_curve:
 rule draw_null_curves:
     input:
         snapshot=str(PLAN.snapshot_path),
+        # the first answer comes first: no draw starts before the ledger, its summary and its figures
+        # exist (ancient: their time stamps never make the draws, which do not read them, run again)
+        first_answer=[ancient(p) for p in first_answer()],
     output:
         draws=str(PLAN.paths.joint_draws("{key}", "{chunk}")),
     log:

@@ -97,7 +97,7 @@ def test_unparseable_data_file(fitted: Path, capsys) -> None:
     bad = fitted / "bad.yaml"
     bad.write_text(_edit((fitted / "grid.yaml").read_text(), "grunfeld.csv", "grunfeld.parquet"))
     assert main(["check", "--config", str(bad)]) == 2
-    assert "cannot be read as .parquet" in capsys.readouterr().err
+    assert "cannot be read as Parquet" in capsys.readouterr().err
 
 
 def test_absorbed_focal_is_a_ledger_row_not_an_error(fitted: Path) -> None:
@@ -133,6 +133,9 @@ def test_data_path_that_is_a_folder_or_semicolon_separated(fitted: Path, capsys)
     assert main(["check", "--config", str(bad)]) == 2
     err = capsys.readouterr().err
     assert "separated by semicolons" in err and err.count("\n") == 1
+    # declared, the same file reads
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "path: grunfeld.csv", "path: semi.csv, csv: {separator: ';'}"))
+    assert main(["check", "--config", str(bad)]) == 0, capsys.readouterr().err
 
 
 def test_demo_refuses_a_config_instead_of_ignoring_it(capsys) -> None:

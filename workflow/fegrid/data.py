@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import hashlib
 import io
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -14,23 +16,93 @@ from .errors import DataError
 from .grid import Grid
 from .samples import apply_sample
 
-__all__ = ["READERS", "file_sha256", "read_table", "check_data", "levels_for", "require_file"]
+__all__ = ["READERS", "CsvOptions", "file_sha256", "read_table", "check_data", "levels_for", "require_file"]
 
 
-def _read_csv(path, columns: list[str] | None) -> pd.DataFrame:
-    return pd.read_csv(path, usecols=columns)
+@dataclass(frozen=True)
+class CsvOptions:
+    """How a CSV file is written (``data.csv`` in the config)."""
+
+    separator: str = ","
+    decimal: str = "."
+    encoding: str = "utf-8"
+
+    def kwargs(self) -> dict[str, str]:
+        return {"sep": self.separator, "decimal": self.decimal, "encoding": self.encoding}
 
 
-def _read_parquet(path, columns: list[str] | None) -> pd.DataFrame:
-    return pd.read_parquet(path, columns=columns)
+@dataclass(frozen=True)
+class _Format:
+    """One file format: the names of its columns, and a reader of only the columns asked for."""
+
+    name: str
+    endings: tuple[str, ...]
+    header: Callable[[Any, CsvOptions], list[str]]
+    read: Callable[[Any, list[str] | None, CsvOptions], pd.DataFrame]
 
 
-def _read_dta(path, columns: list[str] | None) -> pd.DataFrame:
-    return pd.read_stata(path, columns=columns, convert_categoricals=False)
+def _compression(source: Any) -> str | None:
+    name = str(getattr(source, "name", source))
+    return "gzip" if name.lower().endswith(".gz") else None
 
 
-#: File ending -> reader.
-READERS = {".csv": _read_csv, ".parquet": _read_parquet, ".pq": _read_parquet, ".dta": _read_dta}
+def _csv_header(source: Any, csv: CsvOptions) -> list[str]:
+    return list(pd.read_csv(source, nrows=0, compression=_compression(source), **csv.kwargs()).columns)
+
+
+def _csv_read(source: Any, columns: list[str] | None, csv: CsvOptions) -> pd.DataFrame:
+    return pd.read_csv(source, usecols=columns, compression=_compression(source), **csv.kwargs())
+
+
+def _parquet_header(source: Any, csv: CsvOptions) -> list[str]:
+    import pyarrow.parquet as pq
+
+    return list(pq.read_schema(source).names)
+
+
+def _parquet_read(source: Any, columns: list[str] | None, csv: CsvOptions) -> pd.DataFrame:
+    return pd.read_parquet(source, columns=columns)
+
+
+def _feather_header(source: Any, csv: CsvOptions) -> list[str]:
+    import pyarrow.ipc
+
+    return list(pyarrow.ipc.open_file(source).schema.names)
+
+
+def _feather_read(source: Any, columns: list[str] | None, csv: CsvOptions) -> pd.DataFrame:
+    import pyarrow.feather
+
+    return pyarrow.feather.read_table(source, columns=columns).to_pandas()
+
+
+def _dta_header(source: Any, csv: CsvOptions) -> list[str]:
+    with pd.read_stata(source, iterator=True, convert_categoricals=False) as reader:
+        return list(reader.variable_labels())
+
+
+def _dta_read(source: Any, columns: list[str] | None, csv: CsvOptions) -> pd.DataFrame:
+    return pd.read_stata(source, columns=columns, convert_categoricals=False)
+
+
+_FORMATS = (
+    _Format("CSV", (".csv", ".csv.gz"), _csv_header, _csv_read),
+    _Format("Parquet", (".parquet", ".pq"), _parquet_header, _parquet_read),
+    _Format("Feather (Arrow IPC)", (".feather", ".arrow"), _feather_header, _feather_read),
+    _Format("Stata", (".dta",), _dta_header, _dta_read),
+)
+
+#: File ending -> format. Each format reads only the columns the grid uses.
+READERS: dict[str, _Format] = {ending: f for f in _FORMATS for ending in f.endings}
+
+
+def _format_of(path: Path) -> _Format:
+    name = path.name.lower()
+    for ending in sorted(READERS, key=len, reverse=True):
+        if name.endswith(ending):
+            return READERS[ending]
+    raise DataError(f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
+                    f"{', '.join(READERS)}.")
 
 
 def file_sha256(path: str | Path) -> str:
@@ -61,44 +133,38 @@ def _separator_hint(path: Path, header: list[str]) -> None:
                 )
 
 
-def read_table(path: str | Path, columns: Iterable[str] | None = None, *, content: bytes | None = None) -> pd.DataFrame:
-    """Read a CSV, Parquet or .dta file; with ``columns``, only those of them that exist.
+def read_table(path: str | Path, columns: Iterable[str] | None = None, *, content: bytes | None = None,
+               csv: CsvOptions | None = None) -> pd.DataFrame:
+    """Read a CSV (or .csv.gz), Parquet, Feather or .dta file; with ``columns``, only those of them
+    that exist, and only those are read from the file.
 
     Columns the file lacks are left for :func:`check_data` to name together with their role. With
     ``content``, the file's bytes already read are parsed (``path`` then only names the format), so
     that what is hashed and what is parsed are the same bytes.
     """
     path = Path(path)
-    if content is not None:
-        reader = READERS.get(path.suffix.lower())
-        if reader is None:
-            raise DataError(f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
-                            f"{', '.join(READERS)}.")
-        return _parse(path, columns, lambda: io.BytesIO(content), reader)
-    reader = READERS.get(path.suffix.lower())
-    if reader is None:
-        raise DataError(
-            f"The data file '{path}' has an unknown ending '{path.suffix}'; fegrid reads "
-            f"{', '.join(READERS)}."
-        )
-    require_file(path)
-    return _parse(path, columns, lambda: path, reader)
+    fmt = _format_of(path)
+    csv = csv or CsvOptions()
+    if content is None:
+        require_file(path)
 
+    def source() -> Any:
+        if content is None:
+            return path
+        buffer = io.BytesIO(content)
+        buffer.name = path.name  # the ending tells the CSV reader about gzip
+        return buffer
 
-def _parse(path: Path, columns: Iterable[str] | None, source, reader) -> pd.DataFrame:
     wanted = list(dict.fromkeys(columns)) if columns is not None else None
     try:
-        if wanted is not None and reader is _read_csv:
-            header = list(pd.read_csv(source(), nrows=0).columns)
+        header = fmt.header(source(), csv)
+        if fmt.name == "CSV":
             _separator_hint(path, header)
-            frame = reader(source(), [c for c in wanted if c in set(header)])
-        else:
-            frame = reader(source(), None)
-            header = list(frame.columns)
+        frame = fmt.read(source(), [c for c in wanted if c in set(header)] if wanted is not None else None, csv)
     except DataError:
         raise
     except Exception as exc:  # any parser's failure is the user's file, not our bug
-        raise DataError(f"The data file '{path}' cannot be read as {path.suffix}: {exc}") from None
+        raise DataError(f"The data file '{path}' cannot be read as {fmt.name}: {exc}") from None
     if wanted is not None:
         frame = frame[[c for c in wanted if c in frame.columns]]
     frame.attrs["file_columns"] = header  # for error messages: the whole file, not what was read

@@ -170,6 +170,7 @@ class Grid:
     resample: str = ""
     draws_per_job: int = DEFAULTS["joint_inference.draws_per_job"]
     warnings: dict[str, Any] = field(default_factory=dict)
+    csv: dict[str, str] = field(default_factory=dict)
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
 
     # ---- columns ----------------------------------------------------------------------------
@@ -469,6 +470,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         resample=str(joint.get("resample", panel.unit)),  # the unit: a default that depends on data.unit
         draws_per_job=int(joint["draws_per_job"]),
         warnings=dict(warnings),
+        csv=dict(data["csv"]),
         raw=raw,
     )
 

@@ -24,7 +24,7 @@ from typing import Any
 import pandas as pd
 
 from . import keys
-from .data import check_data, file_sha256, levels_for, read_table, require_file
+from .data import CsvOptions, check_data, file_sha256, levels_for, read_table, require_file
 from .defaults import fill_defaults
 from .demo import write_demo_data
 from .errors import DataError, FegridError
@@ -269,7 +269,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     data_sha = file_sha256(path)
     levels: dict[str, list] = {}
     if grid.level_columns():
-        levels = levels_for(read_table(path, grid.level_columns()), grid)
+        levels = levels_for(read_table(path, grid.level_columns(), csv=CsvOptions(**grid.csv)), grid)
     specs = grid.expand(levels)
     grid.baseline_id(specs)
     key = keys.snapshot_key(data_sha, grid.columns())
@@ -333,7 +333,7 @@ def _specs_of(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> tuple[Spec, ..
 
 def load_checked(grid: Grid) -> pd.DataFrame:
     """Read the grid's columns from the data file and check them (see :func:`check_data`)."""
-    frame = read_table(grid.data_path, grid.columns())
+    frame = read_table(grid.data_path, grid.columns(), csv=CsvOptions(**grid.csv))
     check_data(frame, grid, path=f"the data file '{grid.data_path}'")
     return frame
 
@@ -355,7 +355,7 @@ def snapshot_data(grid: Grid, out: str | Path, expected_sha256: str | None = Non
             f"The data file '{path}' changed after this run was planned (SHA-256 {expected_sha256[:12]}... when "
             f"planned, {actual[:12]}... now); nothing was fitted from it. Run again to fit the file as it is now."
         )
-    frame = read_table(path, grid.columns(), content=content)
+    frame = read_table(path, grid.columns(), content=content, csv=CsvOptions(**grid.csv))
     check_data(frame, grid, path=f"the data file '{grid.data_path}'")
     write_parquet(out, frame.reset_index(drop=True),
                   fegrid_metadata={"data_path": str(path), "data_sha256": actual, "rows": len(frame)})

@@ -101,3 +101,16 @@ def test_ledger_columns_documented_in_readme() -> None:
     readme = (ROOT / "README.md").read_text()
     for col in LEDGER_COLUMNS:
         assert f"`{col}`" in readme, col
+
+
+def test_no_module_imports_a_posix_only_module_at_top_level() -> None:
+    """fegrid must import on Windows: POSIX-only modules are imported inside functions, with a
+    fallback (see fegrid.lock), never at a module's top level."""
+    import ast
+
+    posix_only = {"fcntl", "pwd", "grp", "resource", "termios", "tty", "pty", "posix"}
+    for module in sorted((ROOT / "workflow" / "fegrid").glob("*.py")):
+        for node in ast.parse(module.read_text()).body:
+            names = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                     else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            assert not {n.split(".")[0] for n in names} & posix_only, (module.name, names)

@@ -134,7 +134,8 @@ def test_data_path_that_is_a_folder_or_semicolon_separated(fitted: Path, capsys)
     err = capsys.readouterr().err
     assert "separated by semicolons" in err and err.count("\n") == 1
     # declared, the same file reads
-    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "path: grunfeld.csv", "path: semi.csv, csv: {separator: ';'}"))
+    declared = "path: semi.csv, csv: {separator: ';'}"
+    bad.write_text(_edit((fitted / "grid.yaml").read_text(), "path: grunfeld.csv", declared))
     assert main(["check", "--config", str(bad)]) == 0, capsys.readouterr().err
 
 

@@ -19,7 +19,7 @@ try:
         # plan once; the jobs read the saved plan (and their own specifications) instead of
         # expanding the grid again
         PLAN = pipeline.make_plan(config, prepare=True)
-        os.environ[pipeline.PLAN_ENV] = str(pipeline.save_plan(PLAN))
+        os.environ[pipeline.PLAN_ENV] = str(pipeline.save_plan(PLAN).resolve())
     else:
         PLAN = pipeline.plan_for_job(config)
 except FegridError as exc:

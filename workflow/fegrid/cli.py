@@ -10,7 +10,6 @@ from __future__ import annotations
 import argparse
 import contextlib
 import os
-import shutil
 import signal
 import subprocess
 import sys
@@ -23,10 +22,10 @@ from . import __version__
 from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import read_ledger
-from .locations import workflow_root
+from .locations import pdflatex, workflow_root
 from .lock import RunLock
 from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
-from .store import PublishedOutputs
+from .store import PublishedOutputs, RunPaths
 from .summary import choice_medians, curve_summary
 
 __all__ = ["main", "workflow_root"]
@@ -35,14 +34,14 @@ DEFAULT_CONFIG = "config/config.yaml"
 
 
 def _note_pdflatex() -> None:
-    if shutil.which("pdflatex") is None:
+    if pdflatex() is None:
         print("note: pdflatex is not installed: appendix.tex is written, appendix.pdf is not (install a TeX "
               "distribution with booktabs and longtable to get it).")
 
 
 def _job_counts(plan) -> str:
     """Every kind of job a full run of the plan holds, with its count (bootstrap draws included)."""
-    names = plan.job_names(build_pdf=shutil.which("pdflatex") is not None)
+    names = plan.job_names(build_pdf=pdflatex() is not None)
     parts = [f"{stage} {len(jobs)}" for stage, jobs in names.items() if jobs]
     return f"jobs of a full run ({sum(len(j) for j in names.values())}): " + ", ".join(parts)
 
@@ -131,7 +130,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
         if code != 0:
             restored = outputs.restore_previous()
             if restored:
-                _forget_restored(args.config, outputs.current(), plan.paths.run)
+                _forget_restored(args.config, outputs.current(), plan.paths)
             what = (f"the previous run's {restored} output files were put back, so the run folder holds "
                     "one consistent set" if restored else
                     "there were no earlier results; what this run wrote before failing is kept")
@@ -140,7 +139,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
             print(f"fegrid: {reason}. {what.capitalize()}. Run the same command again to resume.", file=sys.stderr)
             return code if code > 0 else 128 - code
         outputs.drop_previous()
-        stale = outputs.prune_undeclared(plan.declared_outputs(build_pdf=shutil.which("pdflatex") is not None))
+        stale = outputs.prune_undeclared(plan.declared_outputs(build_pdf=pdflatex() is not None))
         if stale:
             print(f"fegrid: removed {len(stale)} output(s) the grid no longer declares: {', '.join(stale)}")
     if not args.quiet:
@@ -148,15 +147,15 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _forget_restored(config: str, files: Sequence[Path], run: Path) -> None:
+def _forget_restored(config: str, files: Sequence[Path], paths: RunPaths) -> None:
     """Make Snakemake redo the jobs of restored files on the next run.
 
     Snakemake's records of those files describe the failed run's jobs (its inputs' checksums), so
     a put-back file would look up to date; without a record, Snakemake reruns the job.
     """
-    cmd = snakemake_command(config, 1, ["--cleanup-metadata", *(str(run / f) for f in files)])
+    cmd = snakemake_command(config, 1, ["--cleanup-metadata", *(str(paths.run / f) for f in files)])
     subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=False,
-                   env={**os.environ, RunLock.HELD_ENV: str(run / ".lock")})
+                   env={**os.environ, RunLock.HELD_ENV: str(paths.lock)})
 
 
 def _run_snakemake(command: list[str], lock: RunLock) -> int:

@@ -230,6 +230,7 @@ class _Design:
         self._fits: dict[tuple[str, str, tuple[str, ...]], FitPieces] = {}
         self._diagnostics: dict[str, _FocalDiagnostics] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
+        self._column_keys: dict[str, str] = {}
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
         """Absorbed df nested in every cluster dimension (memoised per clustering)."""
@@ -238,8 +239,11 @@ class _Design:
         return self._nested[dims]
 
     def column_key(self, column: str) -> str:
-        """Key of a demeaned column in a store: the design and the column's values on its rows."""
-        return keys.demeaned_key(self.key, column, keys.column_key(self.frame[column]))
+        """Key of a demeaned column in a store: the design and the column's values on its rows
+        (hashed once, whether the column is then read from the store or written to it)."""
+        if column not in self._column_keys:
+            self._column_keys[column] = keys.demeaned_key(self.key, column, keys.column_key(self.frame[column]))
+        return self._column_keys[column]
 
     def demean(self, columns: Sequence[str], store: DemeanStore | None) -> tuple[int, int]:
         todo = [c for c in columns if c not in self.tilde]

@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+import shutil
 from pathlib import Path
 
-__all__ = ["WORKFLOW_ROOT", "SNAKEFILE", "SCHEMA_PATH", "workflow_root"]
+__all__ = ["WORKFLOW_ROOT", "SNAKEFILE", "SCHEMA_PATH", "workflow_root", "pdflatex"]
 
 #: The folder holding the Snakefile (fegrid's source checkout).
 WORKFLOW_ROOT = Path(__file__).resolve().parents[2]
@@ -16,3 +17,8 @@ SCHEMA_PATH = Path(__file__).resolve().parents[1] / "schemas" / "config.schema.y
 def workflow_root() -> Path:
     """The folder holding the Snakefile (fegrid's source checkout)."""
     return WORKFLOW_ROOT
+
+
+def pdflatex() -> str | None:
+    """The pdflatex executable, or None where it is not installed (then no appendix PDF is built)."""
+    return shutil.which("pdflatex")

@@ -14,6 +14,7 @@ import contextlib
 import hashlib
 import json
 import math
+import os
 import pickle
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -269,7 +270,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     data_sha = file_sha256(path)
     levels: dict[str, list] = {}
     if grid.level_columns():
-        levels = levels_for(read_table(path, grid.level_columns(), csv=CsvOptions(**grid.csv)), grid)
+        levels = levels_for(_read_grid_table(grid, grid.level_columns()), grid)
     specs = grid.expand(levels)
     grid.baseline_id(specs)
     key = keys.snapshot_key(data_sha, grid.columns())
@@ -309,8 +310,6 @@ def load_plan(path: str | Path) -> Plan:
 def plan_for_job(config: Mapping[str, Any]) -> Plan:
     """The plan a Snakemake job process needs: the one its run saved when the config matches
     (see :data:`PLAN_ENV`), else a fresh one."""
-    import os
-
     saved = os.environ.get(PLAN_ENV)
     if saved and _rules_file(Path(saved)).is_file():
         plan = load_plan(_rules_file(Path(saved)))
@@ -321,8 +320,6 @@ def plan_for_job(config: Mapping[str, Any]) -> Plan:
 
 def _specs_of(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> tuple[Spec, ...]:
     """The grid's specifications: from the run's saved plan when there is one for this snapshot."""
-    import os
-
     saved = os.environ.get(PLAN_ENV)
     if saved and Path(saved).is_file():
         plan = load_plan(saved)
@@ -331,9 +328,14 @@ def _specs_of(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> tuple[Spec, ..
     return tuple(grid.expand(levels_for(frame, grid)))
 
 
+def _read_grid_table(grid: Grid, columns: Sequence[str], content: bytes | None = None) -> pd.DataFrame:
+    """The grid's data file (or its bytes already read), only ``columns``, with the config's CSV options."""
+    return read_table(grid.data_path, columns, content=content, csv=CsvOptions(**grid.csv))
+
+
 def load_checked(grid: Grid) -> pd.DataFrame:
     """Read the grid's columns from the data file and check them (see :func:`check_data`)."""
-    frame = read_table(grid.data_path, grid.columns(), csv=CsvOptions(**grid.csv))
+    frame = _read_grid_table(grid, grid.columns())
     check_data(frame, grid, path=f"the data file '{grid.data_path}'")
     return frame
 
@@ -355,7 +357,7 @@ def snapshot_data(grid: Grid, out: str | Path, expected_sha256: str | None = Non
             f"The data file '{path}' changed after this run was planned (SHA-256 {expected_sha256[:12]}... when "
             f"planned, {actual[:12]}... now); nothing was fitted from it. Run again to fit the file as it is now."
         )
-    frame = read_table(path, grid.columns(), content=content, csv=CsvOptions(**grid.csv))
+    frame = _read_grid_table(grid, grid.columns(), content=content)
     check_data(frame, grid, path=f"the data file '{grid.data_path}'")
     write_parquet(out, frame.reset_index(drop=True),
                   fegrid_metadata={"data_path": str(path), "data_sha256": actual, "rows": len(frame)})
@@ -652,8 +654,6 @@ RUN_STARTED_ENV = "FEGRID_RUN_STARTED"
 def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs: Mapping[str, str],
                benchmarks: Sequence[str], manifest: str | Path, replication: str | Path, n_specs: int,
                snapshot: str | Path | None = None) -> None:
-    import os
-
     from .provenance import build_manifest, write_provenance
 
     started = os.environ.get(RUN_STARTED_ENV)

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import shutil
 import subprocess
 import tempfile
 from collections.abc import Sequence
@@ -23,6 +22,7 @@ from tabulate import tabulate
 
 from .grid import Grid
 from .ledger import DIMENSIONS, PAIR, STATUS_OK
+from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
 from .summary import choice_medians, curve_summary, influence
 
@@ -330,7 +330,7 @@ def compile_latex(tex: str | Path, pdf: str | Path) -> Path:
     The scratch folder is a copy of the tex file's folder contents that the document uses, so no
     auxiliary file is left beside the appendix and a failed compile leaves no PDF.
     """
-    exe = shutil.which("pdflatex")
+    exe = pdflatex()
     if exe is None:
         raise RuntimeError("pdflatex is not installed (Debian: texlive-latex-recommended)")
     tex = Path(tex).resolve()

@@ -1,6 +1,5 @@
 # Parse time: check the config, resolve the grid against the data, name every job's file.
 import os
-import shutil
 import time
 from pathlib import Path
 
@@ -9,7 +8,7 @@ from snakemake.utils import validate
 
 from fegrid import keys, pipeline
 from fegrid.errors import FegridError
-from fegrid.locations import SCHEMA_PATH
+from fegrid.locations import SCHEMA_PATH, pdflatex
 from fegrid.lock import RunLock
 from fegrid.store import RunPaths
 
@@ -44,7 +43,7 @@ GRID_DIGEST = keys.config_digest(config)
 # the config file named in REPLICATION.md's instructions
 CONFIG_PATH = os.path.relpath(workflow.configfiles[-1]) if workflow.configfiles else "config/config.yaml"
 # the PDF of the appendix is built where pdflatex is installed; appendix.tex always is
-BUILD_PDF = shutil.which("pdflatex") is not None
+BUILD_PDF = pdflatex() is not None
 
 
 # cluster resources of a fit job, from its size: rows x columns read, and specifications fitted

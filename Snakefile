@@ -1,8 +1,6 @@
-# fegrid: a declared grid of fixed-effects regressions, fitted in cached blocks.
-# This file only wires: the package workflow/fegrid/ does every computation.
-from snakemake.utils import min_version
-
-min_version("8.20")
+# fegrid, run from its source checkout: `snakemake -c 2` fits the invented demo grid,
+# `snakemake -c 2 --configfile my_grid.yaml` a grid of your own. The workflow itself is
+# workflow/Snakefile (it ships inside the package; `fegrid run` calls it from any folder).
 
 
 # `--configfile other.yaml` replaces the demo grid entirely instead of merging into it.
@@ -11,13 +9,4 @@ if not config:
     configfile: "config/config.yaml"
 
 
-include: "workflow/rules/common.smk"
-include: "workflow/rules/fit.smk"
-include: "workflow/rules/ledger.smk"
-include: "workflow/rules/report.smk"
-
-
-rule all:
-    input:
-        final_outputs(),
-    default_target: True
+include: "workflow/Snakefile"

@@ -10,9 +10,9 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
+import fegrid
 from fegrid.figures import draw_curve, pair_slug, save_curve
 from fegrid.grid import load_config
-from fegrid.pipeline import fit_grid
 from fegrid.report import figure_names, render_appendix
 
 NEEDS_TEX = pytest.mark.skipif(
@@ -45,7 +45,7 @@ def fit_in_process(raw: dict, folder: Path) -> pd.DataFrame:
     """The grid fitted with the same functions the Snakemake rules call."""
     with pytest.MonkeyPatch.context() as mp:  # the tests' one way of changing folder
         mp.chdir(folder)
-        return fit_grid(raw)[1]
+        return fegrid.fit_grid(raw, cache="reports", progress=False).ledger
 
 
 def build_appendix(folder: Path, ledger: pd.DataFrame, raw: dict) -> Path:

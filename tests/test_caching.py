@@ -69,10 +69,10 @@ def test_a_one_row_correction_in_the_demo_refits_only_samples_holding_it(tmp_pat
     valley V01 is corrected. Samples without that row (seasons from 4 on, the sample leaving V01 out)
     are not refitted, and the ledger equals a cold fit of the corrected data."""
     from fegrid.demo import write_demo_data
-    from fegrid.locations import WORKFLOW_ROOT
+    from fegrid.locations import DEMO_CONFIG
 
     monkeypatch.chdir(tmp_path)
-    (tmp_path / "grid.yaml").write_text((WORKFLOW_ROOT / "config" / "config.yaml").read_text())
+    (tmp_path / "grid.yaml").write_text(DEMO_CONFIG.read_text())
     write_demo_data(tmp_path / "data/demo/orchards.csv")
     plan, ledger = fit_grid("grid.yaml")
     data = pd.read_csv("data/demo/orchards.csv")

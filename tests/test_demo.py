@@ -12,13 +12,13 @@ import pandas as pd
 import pytest
 
 from fegrid.demo import TRUE_EFFECT
-from fegrid.locations import workflow_root
+from fegrid.locations import DEMO_CONFIG
 
 pytestmark = pytest.mark.slow
 
 
 def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
-    config = workflow_root() / "config" / "config.yaml"
+    config = DEMO_CONFIG
     proc = subprocess.run([sys.executable, "-m", "fegrid.cli", "run", "--config", str(config), "-c", "2"],
                           cwd=tmp_path, capture_output=True, text=True, env=fegrid_env, timeout=3000)
     assert proc.returncode == 0, proc.stderr[-4000:]

@@ -15,8 +15,6 @@ from pathlib import Path
 
 import pytest
 
-from fegrid.locations import workflow_root
-
 pytestmark = [
     pytest.mark.slow,
     pytest.mark.skipif(shutil.which("slurmctld") is None or os.geteuid() != 0
@@ -24,7 +22,7 @@ pytestmark = [
                        reason="needs root, Debian's slurm-wlm and snakemake-executor-plugin-slurm"),
 ]
 
-ROOT = workflow_root()
+ROOT = Path(__file__).resolve().parents[1]  # the source checkout
 
 
 @pytest.fixture(scope="module")

@@ -22,13 +22,13 @@ from . import __version__
 from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import read_ledger
-from .locations import pdflatex, workflow_root
+from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
 from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
 from .store import PublishedOutputs, RunPaths
 from .summary import choice_medians, curve_summary
 
-__all__ = ["main", "workflow_root"]
+__all__ = ["main", "snakemake_command"]
 
 DEFAULT_CONFIG = "config/config.yaml"
 
@@ -98,10 +98,9 @@ def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ())
     command: every output is written atomically and named by content, and fegrid's own lock (an
     ``flock`` that dies with its process) keeps two runs of one grid apart.
     """
-    root = workflow_root()
     return [
         sys.executable, "-m", "snakemake",
-        "--snakefile", str(root / "Snakefile"),
+        "--snakefile", str(SNAKEFILE),
         "--directory", os.getcwd(),
         "--configfile", str(Path(config).resolve()),
         "--cores", str(cores),
@@ -111,11 +110,9 @@ def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ())
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    if not (workflow_root() / "Snakefile").is_file():
-        raise FegridError(
-            f"fegrid run needs fegrid's source checkout (no Snakefile in {workflow_root()}); install "
-            "it with 'pip install -e .' from the checkout."
-        )
+    extra = list(args.snakemake_args)
+    if args.profile:
+        extra = ["--workflow-profile", str(_profile(args.profile)), *extra]
     plan = make_plan(args.config, prepare=True)
     st = plan_status(plan, load_checked(plan.grid))
     print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
@@ -126,7 +123,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     with RunLock(plan.paths.lock) as lock:
         outputs = PublishedOutputs(plan.paths)
         outputs.keep_previous()
-        code = _run_snakemake(snakemake_command(args.config, args.cores, args.snakemake_args), lock)
+        code = _run_snakemake(snakemake_command(args.config, args.cores, extra), lock)
         if code != 0:
             restored = outputs.restore_previous()
             if restored:
@@ -145,6 +142,18 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if not args.quiet:
         _print_summary(plan.paths.ledger_csv, plan.grid.level)
     return 0
+
+
+def _profile(name: str) -> Path:
+    """A Snakemake profile shipped with fegrid (by name), or a profile folder of the user's."""
+    shipped = PROFILES / name
+    if shipped.is_dir():
+        return shipped
+    if Path(name).is_dir():
+        return Path(name).resolve()
+    known = sorted(p.name for p in PROFILES.iterdir() if p.is_dir())
+    raise FegridError(f"--profile '{name}' is neither a profile shipped with fegrid ({', '.join(known)}) nor a "
+                      "folder holding a Snakemake profile's config.yaml.")
 
 
 def _forget_restored(config: str, files: Sequence[Path], paths: RunPaths) -> None:
@@ -224,7 +233,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
             f"'fegrid demo' always runs the invented demo grid and takes no --config (got '{args.config}'); "
             f"to run your own grid, use 'fegrid run --config {args.config}'."
         )
-    args.config = str(workflow_root() / DEFAULT_CONFIG)
+    args.config = str(DEMO_CONFIG)
     cfg = make_plan(args.config, prepare=True).grid
     print(f"fegrid demo: INVENTED orchard data at {cfg.data_path}; outputs in reports/{cfg.run_name}/")
     return _cmd_run(args)
@@ -283,6 +292,8 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("-c", "--cores", type=int, default=max(1, (os.cpu_count() or 1)),
                        help="jobs run in parallel (default: all cores)")
         p.add_argument("--quiet", action="store_true", help="no summary at the end")
+        p.add_argument("--profile", default=None,
+                       help="a Snakemake profile: 'slurm' (shipped with fegrid) or a folder of your own")
         p.add_argument("snakemake_args", nargs=argparse.REMAINDER,
                        help="after '--': extra arguments passed to Snakemake")
     p = with_config(sub.add_parser("summary", help="summarise a finished ledger in the terminal"))

@@ -32,7 +32,7 @@ from .errors import DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
-from .locations import WORKFLOW_ROOT
+from .locations import SOURCE_CHECKOUT
 from .samples import apply_sample
 from .store import (
     REPORTS_ROOT,
@@ -477,16 +477,22 @@ def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Pa
     return ledger
 
 
-def fit_grid(config: str | Path | Mapping[str, Any], *,
-             root: str | Path = REPORTS_ROOT) -> tuple[Plan, pd.DataFrame]:
+def fit_grid(config: str | Path | Mapping[str, Any], *, root: str | Path = REPORTS_ROOT,
+             say: Callable[[str], None] | None = None) -> tuple[Plan, pd.DataFrame]:
     """Snapshot, fit and gather a grid in this process, without Snakemake (the rules' own steps,
-    run one after another): for notebooks, tests and small grids. Paths are relative to the
-    working directory, as in a Snakemake run."""
+    run one after another); :func:`fegrid.fit_grid` is the public form. Paths are relative to the
+    working directory, as in a Snakemake run; ``say`` gets one line per job."""
     plan = make_plan(config, root=root, prepare=True)
     save_plan(plan)
+    if say is not None:
+        say(f"run '{plan.grid.run_name}': {len(plan.specs)} specifications in {len(plan.jobs)} "
+            f"job{'s' if len(plan.jobs) != 1 else ''}")
     snapshot_data(plan.grid, plan.snapshot_path, plan.data_sha256)
-    for job in plan.jobs:
-        fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+    for i, job in enumerate(plan.jobs, 1):
+        work = fit_job(plan.grid, plan.snapshot_path, job.key, plan.paths.fit(job.key), plan.paths.cache)
+        if say is not None:
+            say(f"job {i} of {len(plan.jobs)}: {work.specs_fitted} specifications fitted, "
+                f"{work.specs_reused} reused ({work.seconds:.2f} s)")
     return plan, gather_ledger(plan.grid, plan.snapshot_path, plan.fit_paths(), plan.paths)
 
 
@@ -658,7 +664,7 @@ def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs:
 
     started = os.environ.get(RUN_STARTED_ENV)
     man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs, seeds=grid_seeds(grid),
-                         outputs=outputs, benchmarks=benchmarks, workflow_root=WORKFLOW_ROOT,
+                         outputs=outputs, benchmarks=benchmarks, workflow_root=SOURCE_CHECKOUT,
                          fitted_data_sha256=snapshot_sha256(snapshot) if snapshot is not None else None,
                          config_path=config_path, run_folder=Path(manifest).parent,
                          run_wall_seconds=time.time() - float(started) if started else None)

@@ -100,7 +100,7 @@ def _output_record(path: str | Path, run_folder: str | Path | None) -> dict[str,
 
 def build_manifest(*, config: Mapping[str, Any], data_path: str | Path, n_specs: int, seeds: Mapping[str, Any],
                    outputs: Mapping[str, str | Path], benchmarks: Sequence[str | Path],
-                   workflow_root: str | Path, fitted_data_sha256: str | None = None,
+                   workflow_root: str | Path | None, fitted_data_sha256: str | None = None,
                    config_path: str | Path | None = None, run_wall_seconds: float | None = None,
                    run_folder: str | Path | None = None) -> dict[str, Any]:
     """The manifest of a run (see the module docstring).
@@ -128,7 +128,7 @@ def build_manifest(*, config: Mapping[str, Any], data_path: str | Path, n_specs:
         "python": sys.version.split()[0],
         "packages": package_versions(),
         "platform": {"system": platform.platform(), "machine": platform.machine(), "cpus": os.cpu_count()},
-        "git": git_commit(workflow_root),
+        "git": git_commit(workflow_root) if workflow_root is not None else None,
         "stages": stage_costs(benchmarks),
         "outputs": {name: _output_record(p, run_folder) for name, p in sorted(outputs.items()) if Path(p).is_file()},
     }

@@ -26,7 +26,8 @@ from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
 from .summary import choice_medians, curve_summary, influence
 
-__all__ = ["latex_escape", "write_summaries", "render_appendix", "compile_latex", "significance_marks",
+__all__ = ["latex_escape", "write_summaries", "summary_markdown", "summary_latex", "render_appendix",
+           "compile_latex", "significance_marks",
            "figure_names"]
 
 _LATEX_SPECIAL = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
@@ -96,6 +97,16 @@ def write_summaries(ledger: pd.DataFrame, level: float, out_dir: str | Path) -> 
         "summary_tex": write_text(out_dir / "summary.tex", _summary_table(summ, level)),
     }
     return paths
+
+
+def summary_markdown(ledger: pd.DataFrame, level: float) -> str:
+    """summary.md's text: the curves, the choices that move them and the most influential choices."""
+    return _summary_markdown(curve_summary(ledger, level), choice_medians(ledger), level, influence(ledger))
+
+
+def summary_latex(ledger: pd.DataFrame, level: float) -> str:
+    """summary.tex's table (booktabs): one row per outcome x focal curve."""
+    return _summary_table(curve_summary(ledger, level), level)
 
 
 def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, infl: pd.DataFrame) -> str:

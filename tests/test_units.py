@@ -154,3 +154,65 @@ def test_every_format_reads_only_the_columns_asked_for(grunfeld: pd.DataFrame, t
     again = read_table(path, ["invest", "firm"], content=path.read_bytes(), csv=csv)
     pd.testing.assert_frame_equal(again, frame)
     assert len(file_sha256(path)) == 64
+
+
+# ---- dated time columns ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("frequency", ["monthly", "quarterly", "yearly"])
+def test_a_dated_time_column_fits_as_its_integer_periods(grunfeld: pd.DataFrame, tmp_path: Path,
+                                                         frequency: str, monkeypatch) -> None:
+    """statsmodels' Grunfeld data (years 1935-1954) with the year recoded as consecutive months,
+    quarters or years written as dates or labels: trends, time effects, balance (one unit's period
+    removed) and a range filter written as a date give the ledger of the integer years."""
+    import fegrid
+
+    data = grunfeld.drop(index=grunfeld.index[(grunfeld["firm"] == grunfeld["firm"].iloc[0])
+                                              & (grunfeld["year"] == 1940)])
+    step = data["year"] - 1935
+    dated = data.copy()
+    if frequency == "monthly":
+        dated["year"] = (pd.Timestamp("2001-11-01") + pd.to_timedelta(0, "D")).to_period("M") + step
+        dated["year"] = dated["year"].astype(str)  # "2001-11", "2001-12", "2002-01", ...
+        start = "2002-04"
+    elif frequency == "quarterly":
+        dated["year"] = [str(pd.Period("1999Q3", freq="Q") + int(s)) for s in step]  # "1999Q3", ...
+        start = "2000Q4"
+    else:
+        dated["year"] = pd.to_datetime((1935 + step).astype(str) + "-07-01")  # a datetime column
+        start = "1940-01-01"
+    data.to_csv(tmp_path / "years.csv", index=False)
+    dated.to_parquet(tmp_path / "dated.parquet", index=False)
+
+    def grid(path: str, first: object, freq: str | None) -> dict:
+        return {
+            "run_name": "dated", "data": {"path": path, "unit": "firm", "time": "year",
+                                          **({"time_frequency": freq} if freq else {})},
+            "outcomes": ["invest"], "focal_regressors": ["value"],
+            "absorb": {"trend": ["firm", {"trend": "firm"}], "two_way": ["firm", "year"]},
+            "clustering": {"firm": {"kind": "cluster", "by": "firm"}},
+            "samples": {"all": {}, "balanced": {"balanced": True}, "late": {"range": {"year": {"min": first}}}},
+            "control_sets": {"named": {"capital": ["capital"]}}, "joint_inference": {"draws": 0},
+        }
+
+    monkeypatch.chdir(tmp_path)
+    plain = fegrid.fit_grid(grid("years.csv", 1940, None), progress=False).ledger
+    by_date = fegrid.fit_grid(grid("dated.parquet", start, frequency), progress=False).ledger
+    assert len(plain) == 6 and (plain["status"] == "ok").all()
+    # the same choices (a date bound is another spec id than a number bound)
+    cols = ["absorb", "sample", "estimate", "std_error", "n_obs", "iterations"]
+    order = ["absorb", "sample"]
+    pd.testing.assert_frame_equal(by_date[cols].sort_values(order, ignore_index=True),
+                                  plain[cols].sort_values(order, ignore_index=True), rtol=1e-9)
+    assert plain.loc[plain["sample"] == "balanced", "n_obs"].iloc[0] == len(data) - 19  # one firm dropped
+    assert plain.loc[plain["sample"] == "late", "n_obs"].iloc[0] == (data["year"] >= 1940).sum()
+
+
+def test_a_time_column_that_is_not_a_date_is_named(grunfeld: pd.DataFrame, tmp_path: Path, monkeypatch) -> None:
+    import fegrid
+
+    grunfeld.assign(year=["spring"] * len(grunfeld)).to_csv(tmp_path / "g.csv", index=False)
+    monkeypatch.chdir(tmp_path)
+    raw = {"run_name": "bad", "data": {"path": "g.csv", "unit": "firm", "time": "year", "time_frequency": "monthly"},
+           "outcomes": ["invest"], "focal_regressors": ["value"], "joint_inference": {"draws": 0}}
+    with pytest.raises(fegrid.FegridError, match=r"time column 'year' is declared monthly.*'spring'"):
+        fegrid.fit_grid(raw, progress=False)

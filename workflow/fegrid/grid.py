@@ -198,6 +198,10 @@ class Grid:
             "resampling": [self.resample] if self.draws and self.resample != self.panel.unit else [],
         }
 
+    def reading(self) -> dict[str, Any]:
+        """How the data file is read into the snapshot: CSV options and the time column's frequency."""
+        return {"csv": dict(self.csv), "time_frequency": self.panel.frequency}
+
     def columns(self) -> list[str]:
         return sorted({c for cols in self.roles().values() for c in cols})
 
@@ -381,7 +385,9 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     # every default comes from the schema, filled in once here (as Snakemake's validate does)
     raw = fill_defaults(raw)
     data = raw["data"]
-    panel = Panel(unit=data["unit"], time=data.get("time"))
+    panel = Panel(unit=data["unit"], time=data.get("time"), frequency=data.get("time_frequency"))
+    if panel.frequency is not None and panel.time is None:
+        raise ConfigError("data.time_frequency is set but data.time names no time column.")
     absorb_raw = _choices(raw, "absorb", {panel.unit: [panel.unit]})  # a default that depends on data.unit
     absorb = {name: parse_absorb(terms, where=f"absorb.{name}") for name, terms in absorb_raw.items()}
     clustering: dict[str, Inference] = {}

@@ -11,7 +11,8 @@ spec id        a specification's canonical content   what is estimated (not the 
                (12 hex)                              their order in the config)
 data file      the data file's bytes (SHA-256)       any byte of the file
 snapshot       the data file's hash, the grid's      the file, a column added to or removed from the
-               columns and the fegrid version         grid, another fegrid version
+               columns, how the file is read (CSV    grid, another CSV option or time frequency,
+               options, time frequency), version     another fegrid version
 settings       the engine's settings as JSON         tolerance, iterations, level, singletons, warning
                                                      thresholds, result fields, fegrid version
 job            settings, snapshot and its            the data, the settings, or any of its
@@ -86,9 +87,11 @@ def spec_id(canonical: str) -> str:
     return hashlib.sha256(canonical.encode()).hexdigest()[:12]
 
 
-def snapshot_key(data_sha256: str, columns: Iterable[str]) -> str:
-    """``<data hash>-<columns hash>``: a new column gives a new snapshot of the same data."""
-    body = json.dumps({"columns": sorted(columns), "fegrid": ENGINE_VERSION})
+def snapshot_key(data_sha256: str, columns: Iterable[str], reading: Mapping[str, Any] | None = None) -> str:
+    """``<data hash>-<columns and reading hash>``: a new column, or another way of reading the file
+    (CSV separator, decimal mark, encoding, the time column's frequency), gives a new snapshot."""
+    body = json.dumps({"columns": sorted(columns), "reading": dict(reading or {}), "fegrid": ENGINE_VERSION},
+                      sort_keys=True)
     return f"{data_sha256[:16]}-{hashlib.sha256(body.encode()).hexdigest()[:8]}"
 
 

@@ -33,6 +33,7 @@ from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
 from .locations import SOURCE_CHECKOUT
+from .periods import period_numbers
 from .samples import apply_sample
 from .store import (
     REPORTS_ROOT,
@@ -273,7 +274,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
         levels = levels_for(_read_grid_table(grid, grid.level_columns()), grid)
     specs = grid.expand(levels)
     grid.baseline_id(specs)
-    key = keys.snapshot_key(data_sha, grid.columns())
+    key = keys.snapshot_key(data_sha, grid.columns(), grid.reading())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
     return Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
 
@@ -329,8 +330,13 @@ def _specs_of(grid: Grid, snapshot: Path, frame: pd.DataFrame) -> tuple[Spec, ..
 
 
 def _read_grid_table(grid: Grid, columns: Sequence[str], content: bytes | None = None) -> pd.DataFrame:
-    """The grid's data file (or its bytes already read), only ``columns``, with the config's CSV options."""
-    return read_table(grid.data_path, columns, content=content, csv=CsvOptions(**grid.csv))
+    """The grid's data file (or its bytes already read), only ``columns``, with the config's CSV options;
+    a dated time column (``data.time_frequency``) numbered by period (see :mod:`fegrid.periods`)."""
+    frame = read_table(grid.data_path, columns, content=content, csv=CsvOptions(**grid.csv))
+    time, frequency = grid.panel.time, grid.panel.frequency
+    if frequency is not None and time in frame.columns:
+        frame[time] = period_numbers(frame[time], frequency, column=time)
+    return frame
 
 
 def load_checked(grid: Grid) -> pd.DataFrame:

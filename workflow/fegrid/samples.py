@@ -26,6 +26,19 @@ class Panel:
 
     unit: str
     time: str | None = None
+    #: the time column's declared frequency (its dates are numbered as periods), or None
+    frequency: str | None = None
+
+    def bound(self, column: str, value: Any) -> float:
+        """A range bound on ``column``: a date or period label on a dated time column becomes its number."""
+        if not isinstance(value, str):
+            return value
+        if column == self.time and self.frequency is not None:
+            from .periods import period_number
+
+            return float(period_number(value, self.frequency))
+        raise ConfigError(f"A sample's range on column '{column}' has the bound '{value}', which is not a number; "
+                          "dates are allowed only on the time column when data.time_frequency is set.")
 
 
 @dataclass(frozen=True)
@@ -73,9 +86,9 @@ def _range(frame: pd.DataFrame, arg: dict, panel: Panel, sample: str) -> np.ndar
             raise DataError(f"Sample '{sample}' sets a range on column '{col}', which is not numeric.")
         values = frame[col].to_numpy(dtype=float)
         if "min" in bounds:
-            keep &= values >= bounds["min"]
+            keep &= values >= panel.bound(col, bounds["min"])
         if "max" in bounds:
-            keep &= values <= bounds["max"]
+            keep &= values <= panel.bound(col, bounds["max"])
     return keep
 
 

@@ -39,8 +39,8 @@ def test_data_replaced_after_planning_is_refused_and_nothing_written(tiny_projec
 
 def _provenance(plan, tmp: Path, config_path: str = "grid.yaml") -> dict:
     outputs = {name: str(path) for name, path in plan.report_outputs(build_pdf=False).items() if path.is_file()}
-    provenance(plan.grid, plan.grid.raw, config_path, outputs, [], plan.paths.file("manifest.json"),
-               plan.paths.file("REPLICATION.md"), len(plan.specs), plan.snapshot_path)
+    provenance(plan.grid, plan.grid.raw, config_path, outputs, [], plan.paths.provenance_files(), len(plan.specs),
+               plan.snapshot_path)
     return json.loads(plan.paths.file("manifest.json").read_text())
 
 
@@ -132,9 +132,55 @@ def test_manifest_and_replication(wage_ledger, tmp_path: Path, wage_panel) -> No
     assert man["stages"]["fit_job"] == {"jobs": 1, "wall_seconds": 1.5, "max_rss_mb": 120.0}
     assert man["outputs"]["ledger_csv"]["sha256"] == hashlib.sha256(out.read_bytes()).hexdigest()
     assert set(man["packages"]) >= {"numpy", "pandas", "snakemake"}
-    text = replication_section(man, config_path="grid.yaml", draws=500, seed=5)
-    for heading in ("### Computational requirements", "#### Software requirements", "#### Controlled randomness",
-                    "#### Memory and runtime requirements", "### List of outputs"):
-        assert heading in text
-    assert "`joint_inference.seed` (value 5)" in text
+    bare = replication_section(man, config_path="grid.yaml", draws=500, seed=5)
+    # without a replication block, each data field says which key to set
+    assert "set `replication.data_citation`" in bare and "set `replication.data_licence`" in bare
+    replication = {"data_source": "linearmodels' wage_panel", "data_citation": "Vella and Verbeek (1998)",
+                   "data_licence": "as shipped by linearmodels (NCSA)", "data_access": "pip install linearmodels",
+                   "data_availability": "All data are publicly available.", "exhibits": {"ledger_csv": "Table A2"}}
+    text = replication_section(man, config_path="grid.yaml", draws=500, seed=5, replication=replication)
+    # every section of the Social Science Data Editors' template README, in its order
+    headings = ["### Overview", "### Data availability and provenance statements", "#### Statement about rights",
+                "#### Summary of availability", "#### Details on each data source", "### Dataset list",
+                "### Computational requirements", "#### Software requirements", "#### Controlled randomness",
+                "#### Memory and runtime requirements", "### Description of programs/code",
+                "### Instructions to replicators", "### List of tables and programs", "### References"]
+    positions = [text.index(h) for h in headings]
+    assert positions == sorted(positions)
+    assert "`joint_inference.seed` (value 5)" in text and "Not given" not in text
+    assert "| Table A2 | ledger_csv | " in text and "Vella and Verbeek (1998)" in text
+    assert "environment-lock.txt" in text and "Dockerfile" in text
     json.dumps(man)
+
+
+def test_environment_lock_and_container_recipe(tiny_project: Path, monkeypatch) -> None:
+    """The lock pins every distribution of this environment (checked against importlib.metadata) and
+    the container recipe uses this Python version, that lock and the run's command."""
+    from importlib import metadata
+
+    monkeypatch.chdir(tiny_project)
+    plan, _ = fit_grid("grid.yaml")
+    man = _provenance(plan, tiny_project)
+    lock = plan.paths.environment_lock.read_text().splitlines()
+    pins = {line.split("==")[0].lower() for line in lock if "==" in line and not line.startswith("#")}
+    for name in ("numpy", "pandas", "snakemake", "pyarrow", "jsonschema"):
+        assert f"{metadata.distribution(name).metadata['Name']}=={metadata.version(name)}" in lock
+    assert "fegrid" not in pins  # installed from this checkout: a comment says how to build its wheel
+    assert any(line.startswith("# fegrid==") for line in lock)
+    recipe = plan.paths.container.read_text()
+    assert f"FROM python:{man['python']}-slim-bookworm" in recipe
+    assert "environment-lock.txt /opt/fegrid/environment-lock.txt" in recipe
+    assert 'CMD ["fegrid", "run", "--config", "grid.yaml"]' in recipe
+    assert f"fegrid-{man['fegrid_version']}-py3-none-any.whl" in recipe
+
+
+def test_exhibits_must_name_outputs_of_the_grid(tiny_project: Path, monkeypatch) -> None:
+    import yaml
+
+    from fegrid.errors import ConfigError
+
+    monkeypatch.chdir(tiny_project)
+    raw = yaml.safe_load((tiny_project / "grid.yaml").read_text())
+    raw["replication"] = {"exhibits": {"ledger_csv": "Table 2", "figure_of_nothing_pdf": "Figure 9"}}
+    with pytest.raises(ConfigError, match="figure_of_nothing_pdf"):
+        make_plan(raw)

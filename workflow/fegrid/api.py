@@ -122,7 +122,7 @@ class GridResult:
         chunks = range(-(-grid.draws // grid.draws_per_job))
         files = []
         for chunk in chunks:
-            out = plan.paths.run / "joint" / f"{key}-{chunk}.parquet"
+            out = plan.paths.joint_draws(key, chunk)
             if not out.is_file():
                 draw_null_chunk(grid, plan.snapshot_path, key, chunk, out)
             files.append(out)

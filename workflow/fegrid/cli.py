@@ -1,8 +1,9 @@
 """The ``fegrid`` command line.
 
-Commands: ``check`` (config and data, no fitting), ``plan`` (grid size, jobs, what is fitted),
-``run`` (Snakemake, with visible progress), ``summary`` (a finished ledger in the terminal) and
-``demo`` (the invented demo, end to end). A user's mistake prints one paragraph and exits with 2.
+Commands: ``init`` (a starter config from a data file), ``check`` (config and data, no fitting),
+``plan`` (grid size, jobs, what is fitted), ``run`` (Snakemake, with visible progress), ``summary``
+(a finished ledger in the terminal), ``demo`` (the invented demo, end to end), ``compare`` and
+``archive`` (referee rounds). A user's mistake prints one paragraph and exits with 2.
 """
 
 from __future__ import annotations
@@ -83,6 +84,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     print(f"already fitted: {st.specs_fitted} specifications; to fit: {st.specs_to_fit} "
           f"(fit jobs to run: {st.jobs - st.jobs_done} of {st.jobs}).")
     print(_job_counts(plan))
+    print("outputs (names for replication.exhibits): " + ", ".join(plan.report_outputs(build_pdf=True)))
     if args.list:
         done = fitted_specs(plan, frame)
         rows = [(s.spec_id, "fitted" if s.spec_id in done else "to fit",
@@ -239,6 +241,17 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return _cmd_run(args)
 
 
+def _cmd_init(args: argparse.Namespace) -> int:
+    from .starter import write_starter
+
+    guess = write_starter(args.data_file, args.out, run_name=args.run_name)
+    time = f"time '{guess.time}'" + (f" ({guess.time_frequency})" if guess.time_frequency else "") if guess.time \
+        else "no time column"
+    print(f"written {args.out}: unit '{guess.unit}', {time} (guessed: lines marked REVIEW); outcome and focal "
+          f"regressor are placeholders. Edit them, then: fegrid check --config {args.out}")
+    return 0
+
+
 def _cmd_compare(args: argparse.Namespace) -> int:
     from .rounds import compare_ledgers, comparison_latex, comparison_text, load_ledger
     from .store import write_text
@@ -279,6 +292,10 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("--config", default=DEFAULT_CONFIG, help="the grid's YAML file (default: %(default)s)")
         return p
 
+    p = sub.add_parser("init", help="write a commented starter config from a data file's columns")
+    p.add_argument("data_file", help="the panel: CSV (.csv, .csv.gz), Parquet, Feather or .dta")
+    p.add_argument("--out", default=DEFAULT_CONFIG, help="the config to write (default: %(default)s)")
+    p.add_argument("--run-name", default=None, help="the run's name (default: from the data file's name)")
     with_config(sub.add_parser("check", help="check the config and the data without fitting"))
     p = with_config(sub.add_parser("plan", help="grid size per dimension; what is fitted and what is left"))
     p.add_argument("--list", action="store_true", help="list every specification with its state")
@@ -312,7 +329,7 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-COMMANDS = {"check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
+COMMANDS = {"init": _cmd_init, "check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
             "demo": _cmd_demo, "compare": _cmd_compare, "archive": _cmd_archive}
 
 

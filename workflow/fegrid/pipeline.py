@@ -28,7 +28,7 @@ from . import keys
 from .data import CsvOptions, check_data, file_sha256, levels_for, read_table, require_file
 from .defaults import fill_defaults
 from .demo import write_demo_data
-from .errors import DataError, FegridError
+from .errors import ConfigError, DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
@@ -178,8 +178,7 @@ class Plan:
 
     def declared_outputs(self, *, build_pdf: bool) -> dict[str, Path]:
         """Every output a finished run holds, provenance included: what a round archives."""
-        return {**self.report_outputs(build_pdf=build_pdf), "manifest": self.paths.file("manifest.json"),
-                "replication": self.paths.file("REPLICATION.md")}
+        return {**self.report_outputs(build_pdf=build_pdf), **self.paths.provenance_files()}
 
 
 #: The pipeline's stages (its Snakemake rules) whose jobs are timed for the manifest, in order.
@@ -276,7 +275,14 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     grid.baseline_id(specs)
     key = keys.snapshot_key(data_sha, grid.columns(), grid.reading())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
-    return Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
+    plan = Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
+    exhibits = (grid.raw.get("replication") or {}).get("exhibits") or {}
+    outputs = plan.report_outputs(build_pdf=True)
+    unknown = sorted(set(exhibits) - set(outputs))
+    if unknown:
+        raise ConfigError(f"replication.exhibits names output(s) {', '.join(repr(u) for u in unknown)} that this grid "
+                          f"does not write; its outputs are: {', '.join(outputs)}.")
+    return plan
 
 
 #: Environment variable naming the resolved plan of the running Snakemake run (set by the main
@@ -664,14 +670,17 @@ RUN_STARTED_ENV = "FEGRID_RUN_STARTED"
 
 
 def provenance(grid: Grid, config: Mapping[str, Any], config_path: str, outputs: Mapping[str, str],
-               benchmarks: Sequence[str], manifest: str | Path, replication: str | Path, n_specs: int,
+               benchmarks: Sequence[str], files: Mapping[str, str | Path], n_specs: int,
                snapshot: str | Path | None = None) -> None:
+    """Write the provenance files (``files``: :meth:`RunPaths.provenance_files`, by name)."""
     from .provenance import build_manifest, write_provenance
 
+    manifest = files["manifest"]
     started = os.environ.get(RUN_STARTED_ENV)
     man = build_manifest(config=config, data_path=grid.data_path, n_specs=n_specs, seeds=grid_seeds(grid),
                          outputs=outputs, benchmarks=benchmarks, workflow_root=SOURCE_CHECKOUT,
                          fitted_data_sha256=snapshot_sha256(snapshot) if snapshot is not None else None,
                          config_path=config_path, run_folder=Path(manifest).parent,
                          run_wall_seconds=time.time() - float(started) if started else None)
-    write_provenance(man, manifest, replication, config_path=config_path, draws=grid.draws, seed=grid.seed)
+    write_provenance(man, files, config_path=config_path, draws=grid.draws, seed=grid.seed,
+                     replication=grid.raw.get("replication", {}))

@@ -19,7 +19,7 @@ from .defaults import DEFAULTS
 from .errors import FegridError
 from .ledger import DIMENSIONS, PAIR, STATUS_OK, read_ledger
 from .report import latex_escape
-from .store import write_json, write_text
+from .store import RunPaths, write_json, write_text
 
 __all__ = ["LedgerComparison", "compare_ledgers", "load_ledger", "archive_round", "ROUNDS_FOLDER"]
 
@@ -223,7 +223,8 @@ def archive_round(run_folder: str | Path, *, label: str = "", today: date | None
     tmp = target.with_name(f".{name}.part")
     if tmp.exists():
         shutil.rmtree(tmp)
-    for rel in [*declared, "manifest.json", "REPLICATION.md"]:
+    provenance = [p.name for p in RunPaths(run.parent, run.name).provenance_files().values()]
+    for rel in [*declared, *provenance]:
         if (run / rel).is_file():
             (tmp / rel).parent.mkdir(parents=True, exist_ok=True)
             shutil.copy2(run / rel, tmp / rel)

@@ -175,6 +175,29 @@ class RunPaths:
     def timings(self) -> Path:
         return self.run / "timings.csv"
 
+    @property
+    def manifest(self) -> Path:
+        return self.run / "manifest.json"
+
+    @property
+    def replication(self) -> Path:
+        return self.run / "REPLICATION.md"
+
+    @property
+    def environment_lock(self) -> Path:
+        """Every Python distribution of the environment that ran the grid, pinned (``name==version``)."""
+        return self.run / "environment-lock.txt"
+
+    @property
+    def container(self) -> Path:
+        """A container recipe pinned to :attr:`environment_lock`."""
+        return self.run / "Dockerfile"
+
+    def provenance_files(self) -> dict[str, Path]:
+        """The files the provenance step writes, by name."""
+        return {"manifest": self.manifest, "replication": self.replication,
+                "environment_lock": self.environment_lock, "container": self.container}
+
     def figure(self, slug: str, ext: str) -> Path:
         return self.run / "figures" / f"curve-{slug}.{ext}"
 

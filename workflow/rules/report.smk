@@ -119,8 +119,7 @@ rule write_provenance:
     input:
         unpack(report_outputs),
     output:
-        manifest=PLAN.paths.file("manifest.json"),
-        replication=PLAN.paths.file("REPLICATION.md"),
+        **PLAN.paths.provenance_files(),
     params:
         benchmarks=benchmark_files(),
         config_path=CONFIG_PATH,

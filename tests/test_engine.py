@@ -276,11 +276,19 @@ def test_nested_effects_count_their_rank_once_against_dummy_regression(wage_pane
     blocks = [_dummies(wage_panel, t.columns) for t in terms]
     nested = [b for b, t in zip(blocks, terms) if wage_panel.groupby(list(t.columns))["educ"].nunique().max() == 1]
     regressors = wage_panel[["union", "married"]].to_numpy(dtype=float)
-    design = np.column_stack([regressors, *blocks])
+    dummies = np.column_stack(blocks)
+    rank_all = np.linalg.matrix_rank(dummies)
+    # a basis of the dummies' column space (QR with column pivoting), so the reference design has
+    # full column rank: a pseudo-inverse of the redundant design decides its rank numerically, and
+    # that decision differs between numpy/statsmodels releases
+    import scipy.linalg
+
+    pivots = scipy.linalg.qr(dummies, mode="economic", pivoting=True)[2]
+    design = np.column_stack([regressors, dummies[:, np.sort(pivots[:rank_all])]])
+    assert np.linalg.matrix_rank(design) == design.shape[1]
     groups = pd.factorize(wage_panel["educ"])[0]
     ref = sm.OLS(wage_panel["lwage"].to_numpy(), design).fit(cov_type="cluster", cov_kwds={"groups": groups})
     n, k = len(wage_panel), 2
-    rank_all = np.linalg.matrix_rank(np.column_stack(blocks))
     rank_nested = np.linalg.matrix_rank(np.column_stack(nested)) if nested else 0
     # statsmodels' clustered factor counts every column of the design, K = its width
     k_ours, k_sm = k + rank_all - rank_nested, design.shape[1]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import shutil
 import subprocess
 import sys
@@ -117,3 +118,23 @@ def test_no_module_imports_a_posix_only_module_at_top_level() -> None:
             names = ([a.name for a in node.names] if isinstance(node, ast.Import)
                      else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
             assert not {n.split(".")[0] for n in names} & posix_only, (module.name, names)
+
+
+def test_the_conda_environment_installs_this_release_not_a_path() -> None:
+    """The rules' conda environment pins the package's own version and names no local path (a
+    relative editable path resolves against the working directory, so it works only in the checkout);
+    its conda packages are the package's own dependencies."""
+    import tomllib
+
+    import yaml
+
+    import fegrid
+    from fegrid.locations import WORKFLOW_DIR
+
+    env = yaml.safe_load((WORKFLOW_DIR / "envs" / "fegrid.yaml").read_text())
+    pip = next(d["pip"] for d in env["dependencies"] if isinstance(d, dict))
+    assert pip == [f"fegrid=={fegrid.__version__}"]
+    conda = {str(d).split()[0].lower() for d in env["dependencies"] if isinstance(d, str)}
+    project = tomllib.loads((Path(__file__).resolve().parents[1] / "pyproject.toml").read_text())["project"]
+    wanted = {re.split(r"[<>=\[ ]", d)[0].lower() for d in project["dependencies"]} - {"snakemake"}
+    assert wanted <= conda, wanted - conda

@@ -371,6 +371,7 @@ def snapshot_data(grid: Grid, out: str | Path, expected_sha256: str | None = Non
         )
     frame = _read_grid_table(grid, grid.columns(), content=content)
     check_data(frame, grid, path=f"the data file '{grid.data_path}'")
+    frame.attrs = {}  # the file's column list is for messages; the snapshot holds data only
     write_parquet(out, frame.reset_index(drop=True),
                   fegrid_metadata={"data_path": str(path), "data_sha256": actual, "rows": len(frame)})
 

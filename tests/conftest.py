@@ -56,8 +56,8 @@ absorb:
   firm: [firm]
   firm_year: [firm, year]
 clustering:
-  robust: {kind: robust}
-  firm: {kind: cluster, by: firm}
+  robust: {kind: hc1}
+  firm: {kind: clustered, by: firm}
 samples:
   all: {}
   postwar: {range: {year: {min: 1946}}}

@@ -19,7 +19,7 @@ def _small(tmp: Path, wage_panel: pd.DataFrame) -> dict:
     return wage_grid(tmp, wage_panel, focal_regressors=["union"],
                      control_sets={"named": {"none": [], "hours": ["hours"]}},
                      absorb={"worker": ["nr"], "worker_year": ["nr", "year"]},
-                     clustering={"worker": {"kind": "cluster", "by": "nr"}, "robust": {"kind": "robust"}},
+                     clustering={"worker": {"kind": "clustered", "by": "nr"}, "robust": {"kind": "hc1"}},
                      samples={"all": {}, "after_1981": {"range": {"year": {"min": 1982}}}},
                      baseline={"absorb": "worker", "controls": "none", "clustering": "worker", "sample": "all"})
 
@@ -39,7 +39,7 @@ def test_a_dataframe_gives_the_ledger_of_the_file(tmp_path: Path, wage_panel: pd
     # linearmodels PanelOLS on this dataset)
     base = result.ledger[result.ledger["is_baseline"]].iloc[0]
     direct = fit_one(wage_panel, "lwage", base["focal"], controls=[], absorb=parse_absorb(["nr"]),
-                     inference=Inference("cluster", (("nr",),)))
+                     inference=Inference("clustered", (("nr",),)))
     assert base["absorb"] == "worker" and base["controls"] == "none"
     assert base["estimate"] == pytest.approx(direct.estimate, rel=1e-12)
     assert base["std_error"] == pytest.approx(direct.std_error, rel=1e-12)

@@ -38,7 +38,7 @@ def test_appendix_compiles_alone_and_inside_a_paper(wage_ledger, wage_panel, tmp
 def test_special_characters_in_names_compile(wage_panel, tmp_path: Path) -> None:
     raw = wage_grid(tmp_path, wage_panel)
     raw["absorb"] = {"R&D_100% #1": ["nr"], "year & worker": ["nr", "year"]}
-    raw["clustering"] = {"by worker_id (100%)": {"kind": "cluster", "by": "nr"}}
+    raw["clustering"] = {"by worker_id (100%)": {"kind": "clustered", "by": "nr"}}
     raw["samples"] = {"all_years & #s": {}}
     raw["control_sets"] = {"named": {"none": [], "exp^2 & hours_{w}": ["expersq", "hours"]}}
     raw["run_name"] = "odd_names"

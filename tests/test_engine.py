@@ -11,7 +11,7 @@ from fegrid.errors import ConfigError, EstimationError
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block, fit_one
 from fegrid.store import FileDemeanStore
 
-IID = Inference("iid")
+IID = Inference("homoskedastic")
 
 
 # ---- textbook worked examples (published values recalled from memory) ---------------------------
@@ -201,8 +201,8 @@ def test_block_equals_one_at_a_time_and_shares_demeaning(jobtraining: pd.DataFra
     one demeaning (lscrap and lsales have different missing rows, so two designs)."""
     df = jobtraining
     settings = BlockSettings(absorb=parse_absorb(["fcode", "year"]), unit="fcode", time="year")
-    infs = [Inference("iid"), Inference("robust"), Inference("cluster", (("fcode",),)),
-            Inference("twoway", (("fcode",), ("year",)))]
+    infs = [Inference("homoskedastic"), Inference("hc1"), Inference("clustered", (("fcode",),)),
+            Inference("two_way_clustered", (("fcode",), ("year",)))]
     specs = []
     for outcome in ("lscrap", "lemploy"):
         for controls in ((), ("grant_1",)):
@@ -222,9 +222,9 @@ def test_block_equals_one_at_a_time_and_shares_demeaning(jobtraining: pd.DataFra
 def test_store_reuses_demeaned_columns(tmp_path, wage_panel: pd.DataFrame) -> None:
     store = FileDemeanStore(tmp_path)
     settings = BlockSettings(absorb=parse_absorb(["nr", "year"]))
-    specs = [SpecRequest("a", "lwage", "union", ("married",), Inference("cluster", (("nr",),)))]
+    specs = [SpecRequest("a", "lwage", "union", ("married",), Inference("clustered", (("nr",),)))]
     first = fit_block(wage_panel, settings, specs, store=store, data_key="wage")
-    more = specs + [SpecRequest("b", "lwage", "union", ("married",), Inference("robust"))]
+    more = specs + [SpecRequest("b", "lwage", "union", ("married",), Inference("hc1"))]
     second = fit_block(wage_panel, settings, more, store=store, data_key="wage")
     assert first.columns_demeaned == 3 and first.columns_reused == 0
     assert second.columns_demeaned == 0 and second.columns_reused == 3
@@ -234,10 +234,10 @@ def test_store_reuses_demeaned_columns(tmp_path, wage_panel: pd.DataFrame) -> No
 
 
 def test_unknown_covariance_kind_lists_the_kinds() -> None:
-    with pytest.raises(EstimationError, match="iid, robust, cluster, twoway"):
+    with pytest.raises(EstimationError, match="homoskedastic, hc1, clustered, two_way_clustered"):
         Inference("hc3")
     with pytest.raises(EstimationError, match="takes 1 cluster"):
-        Inference("cluster", ())
+        Inference("clustered", ())
 
 
 def test_parse_terms() -> None:
@@ -270,7 +270,7 @@ def test_nested_effects_count_their_rank_once_against_dummy_regression(wage_pane
     import statsmodels.api as sm
 
     terms = parse_absorb(list(effects))
-    clusters = Inference("cluster", (("educ",),))
+    clusters = Inference("clustered", (("educ",),))
     ours = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=terms, inference=clusters,
                    keep_singletons=True)  # the dummy regression keeps every row
     blocks = [_dummies(wage_panel, t.columns) for t in terms]
@@ -301,7 +301,7 @@ def test_nested_effects_count_their_rank_once_against_dummy_regression(wage_pane
 def test_a_redundant_nested_term_changes_no_standard_error(wage_panel: pd.DataFrame) -> None:
     """`nr + educ` is the model `nr` (educ is constant within nr): every number must be identical
     (published identity: the column spaces of the two dummy sets are equal)."""
-    clusters = Inference("cluster", (("educ",),))
+    clusters = Inference("clustered", (("educ",),))
     one = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=parse_absorb(["nr"]), inference=clusters)
     two = fit_one(wage_panel, "lwage", "union", controls=["married"], absorb=parse_absorb(["nr", "educ"]),
                   inference=clusters)

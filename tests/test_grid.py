@@ -15,7 +15,7 @@ BASE = {
     "outcomes": ["invest"],
     "focal_regressors": ["value", "capital"],
     "absorb": {"firm": ["firm"], "firm_year": ["firm", "year"], "pooled": []},
-    "clustering": {"robust": {"kind": "robust"}, "firm": {"kind": "cluster", "by": "firm"}},
+    "clustering": {"robust": {"kind": "hc1"}, "firm": {"kind": "clustered", "by": "firm"}},
     "samples": {"all": {}, "late": {"range": {"year": {"min": 1946}}}},
     "control_sets": {"combinations_of": ["capital", "value"]},
 }
@@ -154,3 +154,33 @@ def test_unknown_key_suggests_the_near_one_and_empty_config(tmp_path) -> None:
     empty.write_text("# nothing yet\n")
     with pytest.raises(ConfigError, match="is empty"):
         load_config(empty)
+
+
+def test_renamed_spellings_work_for_one_release_and_keep_spec_ids(tmp_path) -> None:
+    """0.2 spellings (covariance kinds, keep_singletons) give the same grid and spec ids as the new
+    ones, with a deprecation message naming the new spelling; interactions are only 'a x b'."""
+    import warnings
+
+    from fegrid.errors import ConfigError, FegridDeprecationWarning
+
+    def raw(kinds: tuple[str, str, str, str], singletons: dict) -> dict:
+        return {"run_name": "r", "data": {"path": "x.csv", "unit": "u", "time": "t"}, "outcomes": ["y"],
+                "focal_regressors": ["x"], "absorb": {"u": ["u"]}, "estimation": singletons,
+                "clustering": {"a": {"kind": kinds[0]}, "b": {"kind": kinds[1]},
+                               "c": {"kind": kinds[2], "by": "u"}, "d": {"kind": kinds[3], "by": ["u", "t"]}}}
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        old = load_config(raw(("iid", "robust", "cluster", "twoway"), {"keep_singletons": True}))
+    notes = [str(w.message) for w in caught if issubclass(w.category, FegridDeprecationWarning)]
+    assert len(notes) == 5
+    assert any("estimation.singletons" in n and "singletons: keep" in n for n in notes)
+    assert any("'twoway' is renamed 'two_way_clustered'" in n for n in notes)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", FegridDeprecationWarning)
+        new = load_config(raw(("homoskedastic", "hc1", "clustered", "two_way_clustered"), {"singletons": "keep"}))
+    assert [s.spec_id for s in old.expand()] == [s.spec_id for s in new.expand()]
+    assert old.keep_singletons and new.keep_singletons
+    for foreign in ("u*t", "u#t", "u:t"):
+        with pytest.raises(ConfigError, match="only as 'a x b' \\(here 'u x t'\\)"):
+            load_config({**raw(("hc1",) * 2 + ("clustered", "two_way_clustered"), {}), "absorb": {"i": [foreign]}})

@@ -25,7 +25,7 @@ MC_GRID = {
     "run_name": "mc", "data": {"path": "unused.csv", "unit": "unit", "time": "time"},
     "outcomes": ["y"], "focal_regressors": ["x"],
     "absorb": {"unit": ["unit"], "unit_time": ["unit", "time"]},
-    "clustering": {"robust": {"kind": "robust"}, "unit": {"kind": "cluster", "by": "unit"}},
+    "clustering": {"robust": {"kind": "hc1"}, "unit": {"kind": "clustered", "by": "unit"}},
     "control_sets": {"combinations_of": ["c1", "c2"]},
 }
 
@@ -90,8 +90,8 @@ def test_draws_do_not_depend_on_chunking_and_units_stay_separate() -> None:
 def test_a_draw_skips_the_wild_bootstrap_and_keeps_every_number() -> None:
     """Each draw is compared with the same draw refitted by fit_block with the full requests (the
     wild bootstrap included): estimate, SE and df are equal to the last digit (INVENTED panel)."""
-    raw = {**MC_GRID, "clustering": {"unit": {"kind": "cluster", "by": "unit"},
-                                     "unit_wild": {"kind": "cluster", "by": "unit",
+    raw = {**MC_GRID, "clustering": {"unit": {"kind": "clustered", "by": "unit"},
+                                     "unit_wild": {"kind": "clustered", "by": "unit",
                                                    "wild_bootstrap": {"draws": 99, "seed": 3}}}}
     grid = load_config(raw)
     specs = grid.expand()

@@ -36,7 +36,7 @@ def _panel(seed: int, units: int = 60, periods: int = 8) -> pd.DataFrame:
 @pytest.fixture(scope="module")
 def draws() -> pd.DataFrame:
     rows = []
-    cluster = Inference("cluster", (("unit",),))
+    cluster = Inference("clustered", (("unit",),))
     for seed in SEEDS:
         df = _panel(seed)
         within = fit_block(df, BlockSettings(absorb=parse_absorb(["unit"])),

@@ -64,8 +64,8 @@ def test_manifest_describes_the_snapshot_that_was_fitted(tiny_project: Path, mon
 def test_manifest_records_config_file_every_seed_and_quotes_paths(tiny_project: Path, monkeypatch) -> None:
     monkeypatch.chdir(tiny_project)
     raw = (tiny_project / "grid.yaml").read_text().replace(
-        "firm: {kind: cluster, by: firm}",
-        "firm: {kind: cluster, by: firm, wild_bootstrap: {draws: 99, weights: webb, seed: 77}}")
+        "firm: {kind: clustered, by: firm}",
+        "firm: {kind: clustered, by: firm, wild_bootstrap: {draws: 99, weights: webb, seed: 77}}")
     (tiny_project / "my grid.yaml").write_text(raw)
     plan, _ = fit_grid("my grid.yaml")
     man = _provenance(plan, tiny_project, config_path="my grid.yaml")

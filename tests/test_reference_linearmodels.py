@@ -20,6 +20,7 @@ import pytest
 
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import Inference, fit_one
+from fegrid.renames import KIND_RENAMES
 
 REFERENCE = json.loads((Path(__file__).parent / "reference" / "linearmodels_cases.json").read_text())
 CASES = REFERENCE["cases"]
@@ -28,7 +29,7 @@ CASES = REFERENCE["cases"]
 def _fit(case: dict, datasets: dict):
     spec = case["spec"]
     frame = datasets[spec["data"]]
-    inference = Inference(spec["kind"], tuple((b,) for b in spec["by"]))
+    inference = Inference(KIND_RENAMES[spec["kind"]], tuple((b,) for b in spec["by"]))  # 0.2 names in the file
     return fit_one(frame, spec["outcome"], spec["focal"], controls=spec["controls"],
                    absorb=parse_absorb(spec["absorb"]), inference=inference, weights=spec["weights"],
                    unit=spec["unit"], time=spec["time"])

@@ -50,7 +50,8 @@ def test_a_ledger_compared_with_itself_has_nothing_changed(tiny_project: Path) -
 def test_an_added_clustering_choice_gives_only_additions(tiny_project: Path, tmp_path: Path) -> None:
     before = _freeze(_run(tiny_project), tmp_path, "round1")
     text = (tiny_project / "grid.yaml").read_text().replace(
-        "  firm: {kind: cluster, by: firm}", "  firm: {kind: cluster, by: firm}\n  year: {kind: cluster, by: year}")
+        "  firm: {kind: clustered, by: firm}",
+        "  firm: {kind: clustered, by: firm}\n  year: {kind: clustered, by: year}")
     (tiny_project / "grid.yaml").write_text(text)
     after = _run(tiny_project)
     old, om, _ = load_ledger(before)

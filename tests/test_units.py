@@ -22,21 +22,21 @@ PANEL = Panel(unit="firm", time="year")
 
 # ---- covariance kinds -----------------------------------------------------------------------------
 
-@pytest.mark.parametrize("kind", ["iid", "robust", "cluster"])
+@pytest.mark.parametrize("kind", ["homoskedastic", "hc1", "clustered"])
 def test_each_covariance_kind_equals_statsmodels_on_pooled_ols(grunfeld: pd.DataFrame, kind: str) -> None:
     """Source: statsmodels OLS with a constant: nonrobust, HC1, and cluster (G/(G-1)(N-1)/(N-K),
     the same small-sample factor; pooled OLS has no absorbed effect nested in the clusters)."""
     import statsmodels.api as sm
 
-    by = (("firm",),) if kind == "cluster" else ()
+    by = (("firm",),) if kind == "clustered" else ()
     ours = fit_one(grunfeld, "invest", "value", controls=["capital"], absorb=(), inference=Inference(kind, by))
     model = sm.OLS(grunfeld["invest"], sm.add_constant(grunfeld[["value", "capital"]]))
-    options = {"iid": {"cov_type": "nonrobust"}, "robust": {"cov_type": "HC1"},
-               "cluster": {"cov_type": "cluster", "cov_kwds": {"groups": pd.factorize(grunfeld["firm"])[0]}}}
+    options = {"homoskedastic": {"cov_type": "nonrobust"}, "hc1": {"cov_type": "HC1"},
+               "clustered": {"cov_type": "cluster", "cov_kwds": {"groups": pd.factorize(grunfeld["firm"])[0]}}}
     ref = model.fit(**options[kind])
     assert ours.estimate == pytest.approx(ref.params["value"], rel=1e-10)
     assert ours.std_error == pytest.approx(ref.bse["value"], rel=1e-9)
-    expected_df = grunfeld["firm"].nunique() - 1 if kind == "cluster" else len(grunfeld) - 3
+    expected_df = grunfeld["firm"].nunique() - 1 if kind == "clustered" else len(grunfeld) - 3
     assert ours.df_inference == expected_df
 
 
@@ -44,13 +44,13 @@ def test_twoway_is_the_sum_of_its_one_way_parts(grunfeld: pd.DataFrame) -> None:
     """Published identity (Cameron, Gelbach & Miller 2011): V = V_firm + V_year - V_firm x year; with
     one observation per firm-year the intersection is the heteroskedasticity-robust sandwich."""
     kw = {"controls": ["capital"], "absorb": ()}
-    firm = fit_one(grunfeld, "invest", "value", inference=Inference("cluster", (("firm",),)), **kw)
-    year = fit_one(grunfeld, "invest", "value", inference=Inference("cluster", (("year",),)), **kw)
-    both = fit_one(grunfeld, "invest", "value", inference=Inference("twoway", (("firm",), ("year",))), **kw)
+    firm = fit_one(grunfeld, "invest", "value", inference=Inference("clustered", (("firm",),)), **kw)
+    year = fit_one(grunfeld, "invest", "value", inference=Inference("clustered", (("year",),)), **kw)
+    both = fit_one(grunfeld, "invest", "value", inference=Inference("two_way_clustered", (("firm",), ("year",))), **kw)
     n, k = len(grunfeld), 3
     g_f, g_y = grunfeld["firm"].nunique(), grunfeld["year"].nunique()
     raw = lambda se, g: se**2 / (g / (g - 1) * (n - 1) / (n - k))  # noqa: E731 - undo one factor
-    hetero = fit_one(grunfeld, "invest", "value", inference=Inference("robust"), **kw).std_error ** 2 * (n - k) / n
+    hetero = fit_one(grunfeld, "invest", "value", inference=Inference("hc1"), **kw).std_error ** 2 * (n - k) / n
     expected = (g_f / (g_f - 1) * raw(firm.std_error, g_f) + g_y / (g_y - 1) * raw(year.std_error, g_y)
                 - n / (n - 1) * hetero) * (n - 1) / (n - k)
     assert both.std_error ** 2 == pytest.approx(expected, rel=1e-9)
@@ -189,7 +189,7 @@ def test_a_dated_time_column_fits_as_its_integer_periods(grunfeld: pd.DataFrame,
                                           **({"time_frequency": freq} if freq else {})},
             "outcomes": ["invest"], "focal_regressors": ["value"],
             "absorb": {"trend": ["firm", {"trend": "firm"}], "two_way": ["firm", "year"]},
-            "clustering": {"firm": {"kind": "cluster", "by": "firm"}},
+            "clustering": {"firm": {"kind": "clustered", "by": "firm"}},
             "samples": {"all": {}, "balanced": {"balanced": True}, "late": {"range": {"year": {"min": first}}}},
             "control_sets": {"named": {"capital": ["capital"]}}, "joint_inference": {"draws": 0},
         }

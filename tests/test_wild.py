@@ -34,7 +34,7 @@ def test_enumerated_rademacher_equals_brute_force_with_linearmodels(eight_firms:
 
     boot = WildBootstrap(draws=999, weights="rademacher", interval=False)
     ours = fit_one(eight_firms, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm"]),
-                   inference=Inference("cluster", CLUSTER, boot))
+                   inference=Inference("clustered", CLUSTER, boot))
     assert ours.wild_enumerated and ours.wild_draws == 256
 
     panel = eight_firms.set_index(["firm", "year"])
@@ -125,7 +125,7 @@ def test_wild_bootstrap_equals_brute_force_refits_with_dummies(eight_firms: pd.D
     n_groups = frame[cluster].nunique()
     boot = WildBootstrap(draws=999, weights="rademacher")
     ours = fit_one(frame, "invest", "value", controls=controls, absorb=parse_absorb(effects),
-                   inference=Inference("cluster", ((cluster,),), boot), weights=weights,
+                   inference=Inference("clustered", ((cluster,),), boot), weights=weights,
                    keep_singletons=True)
     assert ours.wild_enumerated and ours.wild_draws == 2**n_groups
     signs, _ = wild_weights(boot, n_groups, "unused: every sign vector is enumerated")
@@ -156,7 +156,7 @@ def test_wild_bootstrap_equals_brute_force_refits_with_dummies(eight_firms: pd.D
 
 def test_interval_by_test_inversion_brackets_the_estimate(eight_firms: pd.DataFrame) -> None:
     res = fit_one(eight_firms, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm"]),
-                  inference=Inference("cluster", CLUSTER, WildBootstrap(draws=999, weights="webb", seed=3)))
+                  inference=Inference("clustered", CLUSTER, WildBootstrap(draws=999, weights="webb", seed=3)))
     assert res.wild_ci_low < res.estimate < res.wild_ci_high
     # with few clusters the bootstrap interval is wider than the t(G-1) one (common practice)
     assert res.wild_ci_high - res.wild_ci_low > 0.5 * (res.ci_high - res.ci_low)
@@ -164,10 +164,10 @@ def test_interval_by_test_inversion_brackets_the_estimate(eight_firms: pd.DataFr
 
 def test_reproducible_and_independent_of_blocks(eight_firms: pd.DataFrame) -> None:
     boot = WildBootstrap(draws=199, weights="webb", seed=11)
-    inf = Inference("cluster", CLUSTER, boot)
+    inf = Inference("clustered", CLUSTER, boot)
     settings = BlockSettings(absorb=parse_absorb(["firm"]))
     a = fit_block(eight_firms, settings, [SpecRequest("s1", "invest", "value", ("capital",), inf)]).results[0]
-    b = fit_block(eight_firms, settings, [SpecRequest("s0", "invest", "capital", (), Inference("robust")),
+    b = fit_block(eight_firms, settings, [SpecRequest("s0", "invest", "capital", (), Inference("hc1")),
                                           SpecRequest("s1", "invest", "value", ("capital",), inf)]).results[1]
     assert a.wild_p_value == b.wild_p_value and a.wild_ci_low == b.wild_ci_low
     w1, _ = wild_weights(boot, 8, "s1")
@@ -177,7 +177,7 @@ def test_reproducible_and_independent_of_blocks(eight_firms: pd.DataFrame) -> No
 
 def test_fragile_inference_warnings(eight_firms: pd.DataFrame) -> None:
     df = eight_firms.assign(big=(eight_firms["firm"] == "General Motors").astype(int))
-    res = fit_one(df, "invest", "big", absorb=(), inference=Inference("cluster", CLUSTER))
+    res = fit_one(df, "invest", "big", absorb=(), inference=Inference("clustered", CLUSTER))
     assert "few clusters: 8 firm < 40" in res.inference_warning
     assert "few treated clusters: 1 firm" in res.inference_warning
     assert res.treated_clusters == 1

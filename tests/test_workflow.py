@@ -87,7 +87,7 @@ def test_a_run_writes_the_ledger_the_engine_computes(fitted_once) -> None:
     base = ledger[ledger["is_baseline"]].iloc[0]
     data = pd.read_csv(folder / "grunfeld.csv")
     direct = fit_one(data, "invest", "value", controls=["capital"], absorb=parse_absorb(["firm", "year"]),
-                     inference=Inference("cluster", (("firm",),)))
+                     inference=Inference("clustered", (("firm",),)))
     assert base["estimate"] == pytest.approx(direct.estimate, rel=1e-12)
     assert base["std_error"] == pytest.approx(direct.std_error, rel=1e-12)
 
@@ -113,8 +113,9 @@ def test_an_added_clustering_fits_only_the_new_specifications(fitted: Path, fegr
     ledger = pd.read_csv(ledger_path)
     logs_before = set(_work_logs(fitted))
     config = (fitted / "grid.yaml").read_text()
-    config = config.replace("  firm: {kind: cluster, by: firm}",
-                            "  firm: {kind: cluster, by: firm}\n  firm_year: {kind: twoway, by: [firm, year]}")
+    config = config.replace("  firm: {kind: clustered, by: firm}",
+                            "  firm: {kind: clustered, by: firm}\n"
+                            "  firm_year: {kind: two_way_clustered, by: [firm, year]}")
     (fitted / "grid.yaml").write_text(config)
     plan = _fegrid(fitted, fegrid_env, "plan", "--config", "grid.yaml")
     assert plan.returncode == 0 and "to fit: 16" in plan.stdout, plan.stdout
@@ -300,7 +301,8 @@ def test_a_late_failure_puts_the_previous_results_back_as_a_set(tiny_project: Pa
     (fake / "pdflatex").chmod(0o755)
     env["PATH"] = f"{fake}{os.pathsep}{env['PATH']}"
     text = (tiny_project / "grid.yaml").read_text().replace(
-        "  firm: {kind: cluster, by: firm}", "  firm: {kind: cluster, by: firm}\n  year: {kind: cluster, by: year}")
+        "  firm: {kind: clustered, by: firm}",
+        "  firm: {kind: clustered, by: firm}\n  year: {kind: clustered, by: year}")
     (tiny_project / "grid.yaml").write_text(text)
     failed = _fegrid(tiny_project, env, "run", "--config", "grid.yaml", "--quiet")
     assert failed.returncode != 0

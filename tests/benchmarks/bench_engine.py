@@ -35,8 +35,8 @@ PERIODS = 20
 CONTROLS = [f"c{i}" for i in range(1, 9)]
 CONTROL_SETS = {"none": [], "two": CONTROLS[:2], "four": CONTROLS[:4], "eight": CONTROLS}
 ABSORB = {"none": [], "unit": ["unit"], "unit_time": ["unit", "time"]}
-CLUSTERS = {"unit": Inference("cluster", (("unit",),)), "region": Inference("cluster", (("region",),)),
-            "twoway": Inference("twoway", (("unit",), ("time",)))}
+CLUSTERS = {"unit": Inference("clustered", (("unit",),)), "region": Inference("clustered", (("region",),)),
+            "twoway": Inference("two_way_clustered", (("unit",), ("time",)))}
 SAMPLES = {"all": 0, "late": int(0.2 * PERIODS)}
 
 

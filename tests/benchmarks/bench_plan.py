@@ -60,9 +60,9 @@ def config(data: Path) -> dict:
         "outcomes": ["y1", "y2"], "focal_regressors": ["x1", "x2"],
         "absorb": {"none": [], "unit": ["unit"], "unit_time": ["unit", "time"],
                    "unit_region_time": ["unit", "region x time"], "trend_time": [{"trend": "unit"}, "time"]},
-        "clustering": {"iid": {"kind": "iid"}, "robust": {"kind": "robust"},
-                       "unit": {"kind": "cluster", "by": "unit"}, "region": {"kind": "cluster", "by": "region"},
-                       "unit_time": {"kind": "twoway", "by": ["unit", "time"]}},
+        "clustering": {"iid": {"kind": "homoskedastic"}, "robust": {"kind": "hc1"},
+                       "unit": {"kind": "clustered", "by": "unit"}, "region": {"kind": "clustered", "by": "region"},
+                       "unit_time": {"kind": "two_way_clustered", "by": ["unit", "time"]}},
         "samples": samples, "control_sets": {"combinations_of": CONTROLS},
         "joint_inference": {"draws": 0}, "jobs": {"specs_per_job": 128},
     }

@@ -44,7 +44,9 @@ __all__ = [
     "DemeanOutcome",
 ]
 
-_INTERACTION = re.compile(r"\s+x\s+|\s*\*\s*|\s*#\s*|\s*:\s*")
+_INTERACTION = re.compile(r"\s+x\s+")
+#: other languages' interaction operators: fegrid writes interactions one way only, 'a x b'
+_FOREIGN_OPERATOR = re.compile(r"\w\s*(\*|#|:)\s*\w")
 
 
 @dataclass(frozen=True)
@@ -142,6 +144,11 @@ def parse_term(raw: object, *, where: str = "absorb") -> Term:
         parts = tuple(p.strip() for p in _INTERACTION.split(raw.strip()) if p.strip())
         if not parts:
             raise ConfigError(f"{where}: an absorbed term is an empty string.")
+        if (foreign := _FOREIGN_OPERATOR.search(raw)) is not None:
+            suggestion = " x ".join(p.strip() for p in re.split(r"\s*[*#:]\s*", raw.strip()))
+            raise ConfigError(f"{where}: '{raw}' uses '{foreign.group(1)}'; fegrid writes an interaction only as "
+                              f"'a x b' (here '{suggestion}'). A column whose name holds '*', '#' or ':' cannot "
+                              "be absorbed; rename it.")
         return EffectTerm(parts)
     if isinstance(raw, Mapping) and len(raw) == 1:
         kind, value = next(iter(raw.items()))

@@ -11,7 +11,7 @@ as a ``fegrid run`` of the same config and data.
 ...     "data": {"path": "unused.csv", "unit": "orchard", "time": "season"},
 ...     "outcomes": ["log_yield"], "focal_regressors": ["irrigation"],
 ...     "absorb": {"orchard": ["orchard"], "orchard_season": ["orchard", "season"]},
-...     "clustering": {"valley": {"kind": "cluster", "by": "valley"}},
+...     "clustering": {"valley": {"kind": "clustered", "by": "valley"}},
 ...     "joint_inference": {"draws": 0},
 ... }
 >>> result = fegrid.fit_grid(config, data=make_orchards(), progress=False)

@@ -14,6 +14,7 @@ import os
 import signal
 import subprocess
 import sys
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -21,7 +22,7 @@ from tabulate import tabulate
 
 from . import __version__
 from .defaults import DEFAULTS
-from .errors import FegridError
+from .errors import FegridDeprecationWarning, FegridError
 from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
@@ -333,8 +334,26 @@ COMMANDS = {"init": _cmd_init, "check": _cmd_check, "plan": _cmd_plan, "run": _c
             "demo": _cmd_demo, "compare": _cmd_compare, "archive": _cmd_archive}
 
 
+def _show_deprecations() -> None:
+    """A renamed config spelling is one line on stderr (once), not a Python warning with its source line."""
+    shown: set[str] = set()
+    original = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ANN001 - warnings' hook
+        if issubclass(category, FegridDeprecationWarning):
+            if str(message) not in shown:
+                shown.add(str(message))
+                print(f"fegrid: deprecated: {message}", file=sys.stderr)
+            return
+        original(message, category, filename, lineno, file, line)
+
+    warnings.showwarning = show
+    warnings.simplefilter("always", FegridDeprecationWarning)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
+    _show_deprecations()
     if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
         args.snakemake_args = args.snakemake_args[1:]
     try:

@@ -8,20 +8,23 @@ non-collinear controls), ``A`` the degrees of freedom taken by the absorbed effe
 regressors (scaled by the square root of the weights when weighted), ``e`` the residuals and
 ``B = (X'X)^{-1}``.
 
-``iid``
+``homoskedastic``
     ``V = s^2 B`` with ``s^2 = e'e / (N - k - A)``; t distribution with ``N - k - A`` df.
-``robust`` (HC1)
+``hc1`` (heteroskedasticity-robust; MacKinnon & White 1985)
     ``V = N / (N - k - A) * B (sum_i e_i^2 x_i x_i') B``; t with ``N - k - A`` df.
-``cluster`` (one-way)
+``clustered`` (one-way)
     ``V = G/(G-1) * (N-1)/(N-K) * B (sum_g u_g u_g') B`` with ``u_g = sum_{i in g} x_i e_i`` and
     ``K = k + A - A_nested``, where ``A_nested`` is the df of absorbed terms nested within the
     cluster variable, which do not count (Cameron & Miller 2015); t with ``G - 1`` df (common
     practice; Cameron & Miller 2015).
-``twoway``
+``two_way_clustered``
     ``V = V_1 + V_2 - V_12`` (Cameron, Gelbach & Miller 2011), each term the one-way formula with
     its own ``G``; ``V_12`` clusters on the intersection. Terms count as nested when nested in
     both variables. If ``V`` is not positive semi-definite its negative eigenvalues are set to zero
     (CGM 2011, section 2.3) and the result records it; t with ``min(G_1, G_2) - 1`` df.
+
+Each kind also has a ``canonical_name`` (its name in fegrid 0.2: iid, robust, cluster, twoway),
+which spec ids hash, so that renaming a kind never changes an id.
 """
 
 from __future__ import annotations
@@ -87,6 +90,8 @@ class _Kind:
     """A covariance kind: callable on the fitted pieces of one specification."""
 
     name = ""
+    #: the name in spec ids' canonical content (fegrid 0.2's config name; kept so that ids never change)
+    canonical_name = ""
     dimensions = 0
 
     def __call__(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
@@ -97,7 +102,8 @@ class _Kind:
 class Iid(_Kind):
     """Homoskedastic errors."""
 
-    name = "iid"
+    name = "homoskedastic"
+    canonical_name = "iid"
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         dof = _dof(len(fit.e), n_params + absorbed_df)
@@ -107,7 +113,8 @@ class Iid(_Kind):
 class Robust(_Kind):
     """Heteroskedasticity-robust errors with the HC1 factor ``N / (N - k - A)``."""
 
-    name = "robust"
+    name = "hc1"
+    canonical_name = "robust"
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
@@ -119,7 +126,8 @@ class Robust(_Kind):
 class OneWay(_Kind):
     """Errors correlated within the groups of one cluster variable."""
 
-    name = "cluster"
+    name = "clustered"
+    canonical_name = "cluster"
     dimensions = 1
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
@@ -137,7 +145,8 @@ class TwoWay(_Kind):
     ``clusters`` holds the codes of the two variables and of their intersection.
     """
 
-    name = "twoway"
+    name = "two_way_clustered"
+    canonical_name = "twoway"
     dimensions = 2
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]

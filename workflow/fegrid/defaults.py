@@ -53,7 +53,7 @@ def fill_defaults(raw: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _engine_defaults() -> dict[str, Any]:
-    probe = fill_defaults({"clustering": {"c": {"kind": "cluster", "by": "u", "wild_bootstrap": {}}}})
+    probe = fill_defaults({"clustering": {"c": {"kind": "clustered", "by": "u", "wild_bootstrap": {}}}})
     out: dict[str, Any] = {"confidence_level": probe["confidence_level"]}
     for section in ("estimation", "inference_warnings", "joint_inference", "jobs"):
         out.update({f"{section}.{k}": v for k, v in probe[section].items()})

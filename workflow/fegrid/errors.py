@@ -17,6 +17,7 @@ __all__ = [
     "SingletonWarning",
     "ConvergenceWarning",
     "FewClustersWarning",
+    "FegridDeprecationWarning",
 ]
 
 
@@ -50,3 +51,7 @@ class ConvergenceWarning(FegridWarning):
 
 class FewClustersWarning(FegridWarning):
     """Cluster-robust inference rests on few clusters."""
+
+
+class FegridDeprecationWarning(FutureWarning):
+    """A config spelling that still works but will be removed (see :mod:`fegrid.renames`)."""

@@ -57,7 +57,7 @@ class Inference:
     Each dimension is a tuple of columns; several columns cluster on their interaction.
     """
 
-    kind: str = "robust"
+    kind: str = "hc1"
     by: tuple[tuple[str, ...], ...] = ()
     bootstrap: WildBootstrap | None = None
 
@@ -67,11 +67,13 @@ class Inference:
             raise EstimationError(
                 f"covariance kind '{self.kind}' takes {need} cluster variable(s), got {len(self.by)}."
             )
-        if self.bootstrap is not None and self.kind != "cluster":
-            raise EstimationError("the wild cluster bootstrap needs kind 'cluster' (one cluster variable).")
+        if self.bootstrap is not None and self.kind != "clustered":
+            raise EstimationError("the wild cluster bootstrap needs kind 'clustered' (one cluster variable).")
 
     def canonical(self) -> dict[str, object]:
-        body: dict[str, object] = {"kind": self.kind, "by": sorted(list(d) for d in self.by)}
+        # the kind's canonical name, not its config name: renaming a kind changes no spec id
+        body: dict[str, object] = {"kind": covariance_kind(self.kind).canonical_name,
+                                   "by": sorted(list(d) for d in self.by)}
         if self.bootstrap is not None:
             body["wild_bootstrap"] = asdict(self.bootstrap)
         return body
@@ -99,7 +101,7 @@ class BlockSettings:
     weights: str | None = None
     unit: str | None = None
     time: str | None = None
-    keep_singletons: bool = DEFAULTS["estimation.keep_singletons"]
+    keep_singletons: bool = DEFAULTS["estimation.singletons"] == "keep"
     tolerance: float = DEFAULTS["estimation.tolerance"]
     max_iterations: int = DEFAULTS["estimation.max_iterations"]
     level: float = DEFAULTS["confidence_level"]
@@ -645,7 +647,7 @@ def fit_one(
     weights: str | None = None,
     unit: str | None = None,
     time: str | None = None,
-    keep_singletons: bool = DEFAULTS["estimation.keep_singletons"],
+    keep_singletons: bool = DEFAULTS["estimation.singletons"] == "keep",
     tolerance: float = DEFAULTS["estimation.tolerance"],
     level: float = DEFAULTS["confidence_level"],
 ) -> SpecResult:
@@ -657,7 +659,7 @@ def fit_one(
     >>> from fegrid.absorb import parse_absorb
     >>> df = pd.DataFrame({"u": [1, 1, 2, 2, 3, 3], "x": [0., 1, 0, 2, 1, 0],
     ...                    "y": [1., 3, 0, 4, 5, 3]})
-    >>> r = fit_one(df, "y", "x", absorb=parse_absorb(["u"]), inference=Inference("iid"))
+    >>> r = fit_one(df, "y", "x", absorb=parse_absorb(["u"]), inference=Inference("homoskedastic"))
     >>> round(r.estimate, 6), r.status
     (2.0, 'ok')
     """

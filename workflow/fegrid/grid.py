@@ -28,6 +28,7 @@ from .defaults import DEFAULTS, fill_defaults, schema
 from .errors import ConfigError, EstimationError
 from .estimate import RESULT_COLUMNS, BlockSettings, Inference, SpecRequest
 from .ledger import DIMENSIONS
+from .renames import modernise
 from .samples import Panel, SampleDef, parse_sample
 from .wild import WildBootstrap
 
@@ -380,7 +381,7 @@ def _choices(raw: Mapping[str, Any], key: str, default: Any = None) -> Any:
 
 def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     """Check a config (a path or an already-read mapping) and return its :class:`Grid`."""
-    raw = read_yaml(source) if isinstance(source, (str, Path)) else dict(source)
+    raw = modernise(read_yaml(source) if isinstance(source, (str, Path)) else dict(source))
     _schema_error(raw)
     # every default comes from the schema, filled in once here (as Snakemake's validate does)
     raw = fill_defaults(raw)
@@ -469,7 +470,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         level=float(raw["confidence_level"]),
         tolerance=float(est["tolerance"]),
         max_iterations=int(est["max_iterations"]),
-        keep_singletons=bool(est["keep_singletons"]),
+        keep_singletons=est["singletons"] == "keep",
         specs_per_job=int(raw["jobs"]["specs_per_job"]),
         draws=int(joint["draws"]),
         seed=int(joint["seed"]),

@@ -264,7 +264,8 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         "Observations alone in a fixed-effect group (singletons) are "
         + ("kept. " if grid.keep_singletons else "dropped, repeatedly until none remain (Correia 2015). ")
         + "Rows with missing values in a specification's own variables are dropped for that specification only. "
-        "Standard errors: \\emph{iid} uses $s^2(X'X)^{-1}$ with $s^2=e'e/(N-K)$; \\emph{robust} is HC1, scaled "
+        "Standard errors: \\emph{homoskedastic} uses $s^2(X'X)^{-1}$ with $s^2=e'e/(N-K)$; \\emph{hc1} "
+        "(heteroskedasticity-robust, MacKinnon \\& White 1985) is scaled "
         "by $N/(N-K)$; clustered standard errors are scaled by $G/(G-1)\\cdot(N-1)/(N-K)$, where fixed effects "
         "nested in the cluster variable do not count in $K$ (Cameron \\& Miller 2015); two-way clustering is "
         "$V_1+V_2-V_{12}$ (Cameron, Gelbach \\& Miller 2011), with negative eigenvalues set to zero when needed. "

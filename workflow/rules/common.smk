@@ -6,12 +6,17 @@ from pathlib import Path
 from snakemake.exceptions import WorkflowError
 from snakemake.utils import validate
 
-from fegrid import keys, pipeline
+from fegrid import keys, pipeline, renames
 from fegrid.errors import FegridError
 from fegrid.locations import SCHEMA_PATH, pdflatex
 from fegrid.lock import RunLock
 from fegrid.store import RunPaths
 
+
+# spellings renamed in 0.3 (a deprecation message each), so the schema check below sees the new ones
+_MODERN = renames.modernise(config)
+config.clear()
+config.update(_MODERN)
 
 try:
     if workflow.is_main_process:

@@ -23,7 +23,7 @@ old spelling                      new spelling                        why
 >>> with warnings.catch_warnings(record=True) as caught:
 ...     warnings.simplefilter("always")
 ...     new = modernise({"clustering": {"c": {"kind": "cluster", "by": "u"}}})
->>> new["clustering"]["c"]["kind"], str(caught[0].message)[:52]
+>>> new["clustering"]["c"]["kind"], str(caught[0].message)[:51]
 ('clustered', "clustering.c.kind: 'cluster' is renamed 'clustered'")
 """
 

@@ -14,6 +14,7 @@ import fegrid
 from fegrid.figures import draw_curve, pair_slug, save_curve
 from fegrid.grid import load_config
 from fegrid.report import figure_names, render_appendix
+from fegrid.tables import grid_tables, latex_table
 
 NEEDS_TEX = pytest.mark.skipif(
     shutil.which("pdflatex") is None and os.environ.get("CI") != "true",
@@ -58,7 +59,8 @@ def build_appendix(folder: Path, ledger: pd.DataFrame, raw: dict) -> Path:
         assert rel.endswith(f"curve-{pair_slug(outcome, focal)}.pdf")
     joint = pd.DataFrame([{"outcome": "lwage", "focal": "union", "statistic": "median_estimate", "observed": 0.07,
                            "p_value": 0.0, "draws": 10, "specs": 5, "dominant_sign": "+"}])
+    tables = [latex_table(t) for t in grid_tables(grid, ledger).values()]  # the config's, or the default one
     return render_appendix(grid, ledger, joint, figures, folder / "appendix.tex", draws=10, seed=1,
-                           resample="nr")
+                           resample="nr", tables=tables)
 
 

@@ -27,8 +27,11 @@ def test_appendix_compiles_alone_and_inside_a_paper(wage_ledger, wage_panel, tmp
     base = wage_ledger[wage_ledger["is_baseline"]].iloc[0]
     assert f"{base['estimate']:.4f}" in text  # the baseline as printed in the ledger, to 4 decimals
     assert "Every specification" in text
+    # the results table (the default one: the baseline, then each other absorbed-effects choice)
+    assert "Table 1: Estimates of" in text and "Observations" in text and f"({base['std_error']:.4f})" in text
     paper = tmp_path / "paper.tex"
-    paper.write_text("\\documentclass{article}\\usepackage{booktabs,longtable,graphicx}\\begin{document}\n"
+    paper.write_text("\\documentclass{article}\\usepackage{booktabs,longtable,graphicx,siunitx,threeparttable}"
+                     "\\begin{document}\n"
                      "Main text.\\newcommand{\\fegriddir}{./}\\input{appendix.tex}\n\\end{document}\n")
     compiled = compile_latex(paper, tmp_path / "paper.pdf")
     assert "Main text." in subprocess.run(["pdftotext", str(compiled), "-"], capture_output=True, text=True).stdout

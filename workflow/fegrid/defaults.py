@@ -53,9 +53,11 @@ def fill_defaults(raw: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _engine_defaults() -> dict[str, Any]:
-    probe = fill_defaults({"clustering": {"c": {"kind": "clustered", "by": "u", "wild_bootstrap": {}}}})
+    probe = fill_defaults({"clustering": {"c": {"kind": "clustered", "by": "u", "wild_bootstrap": {}}},
+                           "tables": {"t": {}}})
     out: dict[str, Any] = {"confidence_level": probe["confidence_level"]}
-    for section in ("estimation", "inference_warnings", "joint_inference", "jobs"):
+    out.update({f"tables.{k}": v for k, v in probe["tables"]["t"].items()})
+    for section in ("estimation", "inference_warnings", "joint_inference", "jobs", "significance"):
         out.update({f"{section}.{k}": v for k, v in probe[section].items()})
     out.update({f"wild_bootstrap.{k}": v for k, v in probe["clustering"]["c"]["wild_bootstrap"].items()})
     return out

@@ -141,6 +141,8 @@ class SpecResult:
     absorbed_df: int = 0
     absorb_levels: str = ""
     within_r2: float = float("nan")
+    outcome_mean: float = float("nan")
+    outcome_sd: float = float("nan")
     iterations: int = 0
     converged: bool = True
     controls_dropped: str = ""
@@ -539,7 +541,10 @@ def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> Spec
     """What every row of a design reports, whatever its status."""
     cols = (spec.outcome, spec.focal, *spec.controls)
     focal = design.focal_diagnostics(spec.focal)
+    y = design.frame[spec.outcome].to_numpy(dtype=float)
     return SpecResult(
+        outcome_mean=float(y.mean()) if len(y) else float("nan"),
+        outcome_sd=float(y.std(ddof=1)) if len(y) > 1 else float("nan"),
         spec_id=spec.spec_id, status=STATUS_FAILED, n_obs=len(design.frame), n_singletons=design.n_singletons,
         absorbed_df=design.absorber.absorbed_df, absorb_levels=_fmt_counts(design.absorber.levels),
         iterations=max(design.iterations[c] for c in cols), converged=all(design.converged[c] for c in cols),

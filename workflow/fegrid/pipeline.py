@@ -155,6 +155,8 @@ class Plan:
         }
         if build_pdf:
             out["appendix_pdf"] = paths.file("appendix.pdf")
+        out.update({f"table_{name}_{ending}": path for name, files in self.table_paths().items()
+                    for ending, path in files.items()})
         for (outcome, focal), png, pdf in zip(self.pairs, self.figure_paths("png"), self.figure_paths("pdf")):
             out[f"figure_{outcome}_{focal}_png"] = png
             out[f"figure_{outcome}_{focal}_pdf"] = pdf
@@ -175,6 +177,13 @@ class Plan:
         """The benchmark file of every job of this run, stage by stage."""
         names = self.job_names(build_pdf=build_pdf)
         return [self.paths.benchmark(st, n) for st in STAGES for n in names[st]]
+
+    def table_paths(self) -> dict[str, dict[str, Path]]:
+        """Every results table of the config in every format: ``{name: {ending: path}}``."""
+        from .tables import TABLE_FORMATS
+
+        return {name: {ending: self.paths.table(name, ending) for ending in TABLE_FORMATS}
+                for name in sorted(self.grid.raw.get("tables") or {})}
 
     def declared_outputs(self, *, build_pdf: bool) -> dict[str, Path]:
         """Every output a finished run holds, provenance included: what a round archives."""
@@ -276,6 +285,12 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     key = keys.snapshot_key(data_sha, grid.columns(), grid.reading())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
     plan = Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
+    if grid.raw.get("tables"):  # every column of every table names one specification (no fitting needed)
+        from .tables import table_specs
+
+        frame = spec_table(grid, specs)
+        for name, body in grid.raw["tables"].items():
+            table_specs(frame, body, name=name)
     exhibits = (grid.raw.get("replication") or {}).get("exhibits") or {}
     outputs = plan.report_outputs(build_pdf=True)
     unknown = sorted(set(exhibits) - set(outputs))
@@ -639,13 +654,19 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     return table
 
 
-def appendix(grid: Grid, ledger: str | Path, joint_csv: str | Path, out: str | Path) -> None:
+def appendix(grid: Grid, ledger: str | Path, joint_csv: str | Path, out: str | Path,
+             tables: Mapping[str, Mapping[str, str | Path]] | None = None) -> None:
+    """appendix.tex, and the results tables (``tables``: ``{name: {ending: path}}``) it holds."""
     from .report import figure_names, render_appendix
+    from .tables import grid_tables, latex_table, write_tables
 
     led = read_ledger(ledger)
     joint = pd.read_csv(joint_csv) if Path(joint_csv).stat().st_size > 1 else None
+    built = grid_tables(grid, led)
+    if tables is not None:
+        write_tables(built, {name: {e: Path(p) for e, p in files.items()} for name, files in tables.items()})
     render_appendix(grid, led, joint, figure_names(led), out, draws=grid.draws, seed=grid.seed,
-                    resample=grid.resample)
+                    resample=grid.resample, tables=[latex_table(t) for t in built.values()])
 
 
 def compile_appendix(tex: str | Path, pdf: str | Path) -> None:

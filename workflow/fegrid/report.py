@@ -4,7 +4,7 @@ The appendix (``appendix.tex``) compiles on its own with pdflatex and can also b
 a paper: it detects whether a document has already begun and only then skips its own preamble.
 Figures are looked up under ``\\fegriddir`` (empty by default); a paper that inputs the appendix
 from elsewhere sets it first, e.g. ``\\newcommand{\\fegriddir}{reports/demo/}``. A paper needs the
-packages booktabs, longtable and graphicx.
+packages booktabs, longtable, graphicx, siunitx and threeparttable.
 """
 
 from __future__ import annotations
@@ -25,9 +25,10 @@ from .ledger import DIMENSIONS, PAIR, STATUS_OK
 from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
 from .summary import choice_medians, curve_summary, influence
+from .tables import Significance
 
 __all__ = ["latex_escape", "write_summaries", "summary_markdown", "summary_latex", "render_appendix",
-           "compile_latex", "significance_marks",
+           "compile_latex",
            "figure_names"]
 
 _LATEX_SPECIAL = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_",
@@ -41,14 +42,6 @@ def latex_escape(text: object) -> str:
     'R\\\\&D\\\\_share 10\\\\%'
     """
     return "".join(_LATEX_SPECIAL.get(ch, ch) for ch in str(text))
-
-
-def significance_marks(p: float, level: float) -> str:
-    """``*`` at 1 - level, ``**`` at a fifth of it, ``***`` at a fiftieth (0.05/0.01/0.001 at 95%)."""
-    alpha = 1.0 - level
-    if not np.isfinite(p):
-        return ""
-    return "***" if p < alpha / 50 else "**" if p < alpha / 5 else "*" if p < alpha else ""
 
 
 def _num(x: float, digits: int = 4) -> str:
@@ -201,7 +194,7 @@ def _influence_table(infl: pd.DataFrame, top: int = 5) -> str:
                       r"\bottomrule", r"\end{longtable}}", ""])
 
 
-def _spec_table(ledger: pd.DataFrame, level: float) -> str:
+def _spec_table(ledger: pd.DataFrame, level: float, significance: Significance) -> str:
     dims = [d for d in DIMENSIONS if d not in PAIR and ledger[d].nunique() > 1]
     wild = bool((ledger["wild_draws"] > 0).any())
     head = " & ".join(["id", *dims, "estimate", "s.e.", "$p$", *(["WCR $p$"] if wild else []), "$N$"])
@@ -215,7 +208,8 @@ def _spec_table(ledger: pd.DataFrame, level: float) -> str:
         for r in part.itertuples(index=False):
             cells = [r"\texttt{" + r.spec_id[:8] + "}"] + [latex_escape(getattr(r, d)) for d in dims]
             if r.status == STATUS_OK:
-                marks = significance_marks(r.p_value, level) + (r"$^\dagger$" if r.inference_warning else "")
+                marks = (latex_escape(significance.marks(r.p_value))
+                         + (r"$^\dagger$" if r.inference_warning else ""))
                 bold = r"\bfseries " if r.is_baseline else ""
                 cells += [f"{bold}{_num(r.estimate)}{marks}", _num(r.std_error), _p(r.p_value),
                           *([_p(r.wild_p_value)] if wild else []), str(r.n_obs)]
@@ -231,14 +225,15 @@ def _spec_table(ledger: pd.DataFrame, level: float) -> str:
 
 
 _PREAMBLE = r"""% fegrid robustness appendix. Compiles on its own (pdflatex appendix.tex) or \input into a paper
-% that loads booktabs, longtable and graphicx. Set \fegriddir to this folder when inputting from elsewhere.
+% that loads booktabs, longtable, graphicx, siunitx and threeparttable. Set \fegriddir to this folder
+% when inputting from elsewhere.
 \makeatletter
 \ifx\@onlypreamble\@notprerr
   \def\fegrid@begin{}\def\fegrid@end{}%
 \else
   \documentclass[11pt]{article}
   \usepackage[margin=2.2cm]{geometry}
-  \usepackage{booktabs,longtable,graphicx}
+  \usepackage{booktabs,longtable,graphicx,siunitx,threeparttable}
   \def\fegrid@begin{\begin{document}}\def\fegrid@end{\end{document}}%
 \fi
 \makeatother
@@ -249,12 +244,12 @@ _PREAMBLE = r"""% fegrid robustness appendix. Compiles on its own (pdflatex appe
 
 def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None, figures: Sequence[str],
                     out: str | Path, *, draws: int = 0, seed: int | None = None,
-                    resample: str | None = None) -> Path:
+                    resample: str | None = None, tables: Sequence[str] = ()) -> Path:
     """Write ``appendix.tex``: notes, summary, joint tests, figures, choices, every specification."""
     level = grid.level
+    significance = Significance.from_config(grid.raw)
     summ = curve_summary(ledger, level)
     moves = choice_medians(ledger)
-    alpha = 1.0 - level
     counts = ledger["status"].value_counts()
     notes = (
         "Each row of the grid is one regression of the outcome on the focal regressor, the controls and the "
@@ -271,8 +266,8 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         "$V_1+V_2-V_{12}$ (Cameron, Gelbach \\& Miller 2011), with negative eigenvalues set to zero when needed. "
         "$K$ counts the regressors and the rank of the absorbed effects. Tests and intervals use the $t$ "
         "distribution with $N-K$ degrees of freedom, or $G-1$ when clustered ($\\min(G_1,G_2)-1$ for two-way). "
-        f"Confidence intervals are at {level:.0%}; significance marks: * $p<{alpha:g}$, ** $p<{alpha / 5:g}$, "
-        f"*** $p<{alpha / 50:g}$. ".replace("%", r"\%")
+        f"Confidence intervals are at {level:.0%}; ".replace("%", r"\%")
+        + f"significance marks: {latex_escape(significance.note()).replace('p <', '$p<$')}. "
         + f"The grid holds {len(ledger)} specifications: {int(counts.get('ok', 0))} fitted, "
         f"{int(counts.get('not_identified', 0))} not identified (the focal regressor is absorbed by the fixed "
         f"effects or collinear with the controls) and {int(counts.get('failed', 0))} failed. "
@@ -314,6 +309,7 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         _PREAMBLE,
         rf"\section*{{Robustness appendix: {latex_escape(grid.run_name)}}}",
         r"\paragraph{Notes.} " + notes,
+        "", *tables,
         "", r"\begin{table}[ht]\centering\footnotesize",
         r"\caption{The specification curve in numbers: counts, the baseline's estimate and percentile in the curve, "
         r"the median, interquartile range and range of the fitted estimates, the share with the baseline's sign and "
@@ -330,7 +326,7 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         r"\subsection*{Every specification}",
         r"Grouped by outcome and focal regressor; the baseline's estimate is in bold; ids are the first "
         r"8 characters of the ledger's \texttt{spec\_id}.",
-        "", _spec_table(ledger, level),
+        "", _spec_table(ledger, level, significance),
         r"\csname fegrid@end\endcsname", "",
     ]
     return write_text(out, "\n".join(doc))

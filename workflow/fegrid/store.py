@@ -198,6 +198,10 @@ class RunPaths:
         return {"manifest": self.manifest, "replication": self.replication,
                 "environment_lock": self.environment_lock, "container": self.container}
 
+    def table(self, name: str, ending: str) -> Path:
+        """A results table (``tables.<name>`` in the config) in one format: tex, md or html."""
+        return self.run / "tables" / f"{name}.{ending}"
+
     def figure(self, slug: str, ext: str) -> Path:
         return self.run / "figures" / f"curve-{slug}.{ext}"
 

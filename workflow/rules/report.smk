@@ -89,6 +89,9 @@ rule render_appendix:
         figures=[str(p) for p in PLAN.figure_paths("pdf")],
     output:
         tex=PLAN.paths.file("appendix.tex"),
+        # the results tables (tables.<name> in the config), each as .tex, .md and .html
+        **{f"table_{name}_{ending}": str(path) for name, files in PLAN.table_paths().items()
+           for ending, path in files.items()},
     log:
         log_of("render_appendix"),
     benchmark:

@@ -78,6 +78,15 @@ def test_perturbed_data_reports_the_changed_specifications(tiny_project: Path, t
     assert main(["compare", str(before), str(after), "--out", str(tmp_path / "letter")]) == 0
     assert "changed" in capsys.readouterr().out
     assert (tmp_path / "letter" / "comparison.tex").read_text().startswith(r"\begin{tabular}")
+    assert (tmp_path / "letter" / "comparison.pdf").stat().st_size > 0
+    # the round-comparison figure: every matched specification is one point, off the diagonal here
+    from fegrid.figures import draw_comparison
+
+    fig = draw_comparison(old, new, level=0.95)
+    points = sum(len(c.get_offsets()) for ax in fig.axes for c in ax.collections)
+    assert points == int((old["status"] == "ok").sum())
+    legend = " ".join(t.get_text() for ax in fig.axes if ax.get_legend() for t in ax.get_legend().get_texts())
+    assert "moved" in legend and "unchanged" not in legend
 
 
 def test_archive_freezes_a_read_only_round(tiny_project: Path) -> None:

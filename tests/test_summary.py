@@ -63,3 +63,27 @@ def test_choice_effects_are_measured_on_matched_specifications(wage_ledger: pd.D
     pairs = ok[ok["absorb"] == "pooled"].merge(ok[ok["absorb"] == ref], on=others, suffixes=("", "_ref"))
     assert absorb.loc["pooled", "matched_pairs"] == len(pairs)
     assert absorb.loc["pooled", "matched_shift"] == pytest.approx((pairs["estimate"] - pairs["estimate_ref"]).median())
+
+
+def test_summary_markdown_prints_blanks_and_one_row_per_family(wage_panel: pd.DataFrame, tmp_path: Path) -> None:
+    """On linearmodels' wage_panel: `black` never varies within a worker, so its curve has no fitted
+    baseline (blank, not "nan"); a leave-one-occupation-out family is one row of the choices table,
+    its specifications the sum of its levels' (counted by pandas)."""
+    import re
+
+    raw = wage_grid(tmp_path, wage_panel, focal_regressors=["union", "black"],
+                    absorb={"worker": ["nr"], "pooled": []},
+                    samples={"all": {}, "without_occupation": {"drop_each": "occupation"}},
+                    control_sets={"named": {"none": []}})
+    ledger = fit_in_process(raw, tmp_path)
+    paths = write_summaries(ledger, 0.95, tmp_path / "out")
+    text = paths["summary_md"].read_text()
+    assert not re.search(r"\|\s*nan\s*\|", text)
+    family = [line for line in text.splitlines() if "without_occupation" in line and "| union" in line
+              and "| sample" in line]
+    assert len(family) == 1 and "without_occupation (each of 9)" in family[0]
+    fitted = ledger[(ledger["focal"] == "union") & ledger["sample"].str.startswith("without_occupation:")
+                    & (ledger["status"] == "ok")]
+    assert f"| {len(fitted)} " in family[0].replace("  ", " ").replace("  ", " ") or str(len(fitted)) in family[0]
+    # choices.csv keeps every level
+    assert pd.read_csv(paths["choices_csv"])["choice"].str.startswith("without_occupation:").sum() >= 9

@@ -97,7 +97,7 @@ class GridResult:
         if len(pairs) != 1:
             listed = ", ".join(f"{o} ~ {f}" for o, f in pairs) or "none"
             raise FegridError(f"figure() draws one outcome x focal curve; name outcome= and focal= (pairs: {listed}).")
-        return draw_curve(part, level=self.level, title=f"{pairs[0][0]} ~ {pairs[0][1]}")
+        return draw_curve(part, level=self.level, labels=self._plan.grid.raw.get("labels"))
 
     def table(self, fmt: str = "markdown") -> str:
         """The per-curve summary as text: ``markdown`` (GitHub tables) or ``latex`` (booktabs)."""

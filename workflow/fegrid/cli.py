@@ -268,7 +268,12 @@ def _cmd_compare(args: argparse.Namespace) -> int:
         write_text(out / "comparison.md", "# Ledger comparison\n\n" + comparison_text(cmp, fmt="github"))
         write_text(out / "comparison.tex", comparison_latex(cmp))
         cmp.changed.to_csv(out / "changed.csv", index=False)
-        print(f"written: {out / 'comparison.md'}, {out / 'comparison.tex'}, {out / 'changed.csv'}")
+        from .figures import draw_comparison, save_curve
+
+        save_curve(draw_comparison(old, new, level=args.level, tolerance=args.tolerance),
+                   out / "comparison.png", out / "comparison.pdf")
+        print(f"written: {out / 'comparison.md'}, {out / 'comparison.tex'}, {out / 'changed.csv'}, "
+              f"{out / 'comparison.png'} and .pdf (how each specification moved)")
     return 0
 
 

@@ -604,7 +604,7 @@ def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf:
     part = led[[pair_slug(o, f) == slug for o, f in zip(led["outcome"], led["focal"])]]
     if part.empty:
         raise FegridError(f"No specification of the ledger belongs to the pair '{slug}'.")
-    save_curve(draw_curve(part, level=grid.level), png, pdf)
+    save_curve(draw_curve(part, level=grid.level, labels=grid.raw.get("labels")), png, pdf)
 
 
 def summarise(grid: Grid, ledger: str | Path, out_dir: str | Path) -> None:

@@ -102,6 +102,37 @@ def summary_latex(ledger: pd.DataFrame, level: float) -> str:
     return _summary_table(curve_summary(ledger, level), level)
 
 
+def _blank(frame: pd.DataFrame) -> pd.DataFrame:
+    """Missing values as None, which the tables print as blanks (never "nan")."""
+    return frame.astype(object).where(frame.notna(), None)
+
+
+def collapse_families(moves: pd.DataFrame) -> pd.DataFrame:
+    """One row per generated sample family (``drop_each``) in a choices table: the family's
+    specifications and matched pairs added up, the median of its levels' medians and shifts
+    (each level's own row is in ``choices.csv``, and which level matters most in the influence table)."""
+    if moves.empty:
+        return moves
+    generated = (moves["dimension"] == "sample") & moves["choice"].astype(str).str.contains(":", regex=False)
+    if not generated.any():
+        return moves
+    rows = []
+    for _, part in moves[generated].groupby(["outcome", "focal", "dimension"], sort=False):
+        for fam, members in part.groupby(part["choice"].astype(str).str.split(":", n=1).str[0], sort=True):
+            row = members.iloc[0].copy()
+            row["choice"] = f"{fam} (each of {len(members)})"
+            row["specs"] = int(members["specs"].sum())
+            row["median"] = float(np.median(members["median"]))
+            row["matched_pairs"] = int(members["matched_pairs"].sum())
+            row["matched_shift"] = float(np.nanmedian(members["matched_shift"])) \
+                if members["matched_shift"].notna().any() else np.nan
+            rows.append(row)
+    out = pd.concat([moves[~generated], pd.DataFrame(rows)], ignore_index=True)
+    order = {d: i for i, d in enumerate(DIMENSIONS)}
+    return out.sort_values(["outcome", "focal", "dimension", "choice"], key=lambda s: s.map(order) if s.name ==
+                           "dimension" else s, kind="stable", ignore_index=True)
+
+
 def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, infl: pd.DataFrame) -> str:
     lines = ["# Specification curve summary", ""]
     cols = {"outcome": "outcome", "focal": "focal", "specs": "specs", "fitted": "fitted",
@@ -109,15 +140,17 @@ def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, inf
             "baseline_percentile": "baseline percentile", "median": "median", "q25": "q25", "q75": "q75",
             "min": "min", "max": "max", "share_baseline_sign": "share with baseline's sign",
             "share_significant_dominant": f"share significant at {1 - level:.2g} (dominant sign)"}
-    lines.append(tabulate(summ[list(cols)].rename(columns=cols), headers="keys", tablefmt="github",
-                          showindex=False, floatfmt=".4g"))
+    lines.append(tabulate(_blank(summ[list(cols)].rename(columns=cols)), headers="keys", tablefmt="github",
+                          showindex=False, floatfmt=".4g", missingval=""))
     lines += ["", "## What each choice does to the estimate", "", MATCHED_NOTE, ""]
     if len(moves):
-        lines.append(tabulate(moves, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
+        lines.append(tabulate(_blank(collapse_families(moves)), headers="keys", tablefmt="github", showindex=False,
+                              floatfmt=".4g", missingval=""))
     if len(infl):
         lines += ["", "## Leave-one-out influence: the dropped levels that move the estimate most", ""]
         top = infl[infl["rank"] <= 3]
-        lines.append(tabulate(top, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g"))
+        lines.append(tabulate(_blank(top), headers="keys", tablefmt="github", showindex=False, floatfmt=".4g",
+                              missingval=""))
     return "\n".join(lines) + "\n"
 
 
@@ -242,6 +275,13 @@ _PREAMBLE = r"""% fegrid robustness appendix. Compiles on its own (pdflatex appe
 """
 
 
+#: The appendix's page: US letter with 2.2 cm margins; a curve figure gets a float page of its own,
+#: at most this share of the text height (the rest holds its caption).
+TEXT_WIDTH_IN = 8.5 - 2 * 2.2 / 2.54
+TEXT_HEIGHT_IN = 11.0 - 2 * 2.2 / 2.54
+FIGURE_HEIGHT_SHARE = 0.9
+
+
 def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None, figures: Sequence[str],
                     out: str | Path, *, draws: int = 0, seed: int | None = None,
                     resample: str | None = None, tables: Sequence[str] = ()) -> Path:
@@ -300,7 +340,8 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
     for (outcome, focal), path in zip(sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()}), figures):
         figure_blocks.append("\n".join([
             r"\begin{figure}[p]\centering",
-            rf"\includegraphics[width=\linewidth,height=0.85\textheight,keepaspectratio]{{\fegriddir {path}}}",
+            rf"\includegraphics[width=\linewidth,height={FIGURE_HEIGHT_SHARE}\textheight,keepaspectratio]"
+            rf"{{\fegriddir {path}}}",
             rf"\caption{{Specification curve: {latex_escape(outcome)} on {latex_escape(focal)}. Top: estimates "
             rf"sorted, with {level:.0%} confidence intervals, coloured when significant; the baseline is marked. "
             r"Bottom: the choices each specification uses.}".replace("%", r"\%"),
@@ -321,7 +362,7 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         *figure_blocks, "", r"\clearpage",
         r"\subsection*{What each choice does to the estimate}",
         MATCHED_NOTE_TEX, "",
-        r"{\footnotesize", _choices_table(moves), "}",
+        r"{\footnotesize", _choices_table(collapse_families(moves)), "}",
         _influence_table(influence(ledger)),
         r"\subsection*{Every specification}",
         r"Grouped by outcome and focal regressor; the baseline's estimate is in bold; ids are the first "

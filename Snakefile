@@ -9,4 +9,12 @@ if not config:
     configfile: "config/config.yaml"
 
 
-include: "workflow/Snakefile"
+# a module, not an include: an included file's default target (rule all) would not carry over
+module fegrid_workflow:
+    snakefile:
+        "workflow/Snakefile"
+    config:
+        config
+
+
+use rule * from fegrid_workflow

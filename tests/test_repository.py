@@ -99,6 +99,13 @@ def test_every_rule_is_a_known_stage(tiny_project: Path, fegrid_env, which: str)
     assert proc.returncode == 0, proc.stderr[-2000:]
     rules = {line.strip() for line in proc.stdout.splitlines() if line.strip()}
     assert rules == set(RULES) | {"all"}
+    # the default target is the whole run (an included file's would not carry over to the root's)
+    dry = subprocess.run([sys.executable, "-m", "snakemake", "--snakefile", str(snakefile), "--configfile",
+                          "grid.yaml", "-n", "-c", "1"], cwd=tiny_project, capture_output=True, text=True,
+                         env=fegrid_env)
+    assert dry.returncode == 0, dry.stderr[-2000:]
+    jobs = dry.stdout + dry.stderr
+    assert "write_provenance" in jobs and "\nall " in jobs, jobs[-2000:]
 
 
 def test_ledger_columns_documented_in_readme() -> None:

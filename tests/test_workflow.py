@@ -307,6 +307,8 @@ def test_a_late_failure_puts_the_previous_results_back_as_a_set(tiny_project: Pa
     failed = _fegrid(tiny_project, env, "run", "--config", "grid.yaml", "--quiet")
     assert failed.returncode != 0
     assert "were put back" in failed.stderr, failed.stderr[-3000:]
+    # Snakemake's per-job log is silenced, so fegrid shows the failed job's own log
+    assert "compile_appendix.log failed" in failed.stderr and "did not compile" in failed.stderr
     now = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
            and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
     assert set(now) == set(published)

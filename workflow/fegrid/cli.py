@@ -14,6 +14,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 import warnings
 from collections.abc import Sequence
 from pathlib import Path
@@ -27,6 +28,7 @@ from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
 from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
+from .progress import RunMonitor, Stage, estimate_costs
 from .store import PublishedOutputs, RunPaths
 from .summary import choice_medians, curve_summary
 
@@ -85,6 +87,9 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     print(f"already fitted: {st.specs_fitted} specifications; to fit: {st.specs_to_fit} "
           f"(fit jobs to run: {st.jobs - st.jobs_done} of {st.jobs}).")
     print(_job_counts(plan))
+    costs = estimate_costs(plan, frame, cores=os.cpu_count() or 1)
+    print(costs.text())
+    _warn_size(plan, costs)
     print("outputs (names for replication.exhibits): " + ", ".join(plan.report_outputs(build_pdf=True)))
     if args.list:
         done = fitted_specs(plan, frame)
@@ -94,7 +99,37 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     return 0
 
 
-def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ()) -> list[str]:
+def _warn_size(plan, costs) -> None:
+    limit = int(plan.grid.raw["jobs"]["warn_above"])
+    if len(plan.specs) > limit:
+        print(f"warning: {len(plan.specs):,} specifications, more than jobs.warn_above ({limit:,}); "
+              f"{costs.text()}. Check that the grid is the one you mean to declare.", file=sys.stderr)
+
+
+def _stages(plan) -> list[Stage]:
+    """What the progress lines of ``fegrid run`` watch, in the order the stages finish."""
+    paths = plan.paths
+    draws = [min(plan.grid.draws_per_job, plan.grid.draws - i * plan.grid.draws_per_job)
+             for i in range(len(plan.joint_paths()))]
+    figures = plan.figure_paths("pdf")
+    tables = [files["md"] for files in plan.table_paths().values()]
+    appendix = [paths.file("appendix.tex")] + ([paths.file("appendix.pdf")] if pdflatex() else [])
+    return [
+        Stage("fits", plan.fit_paths(), "specifications", list(plan.job_sizes.values()), fresh_only=True),
+        Stage("ledger", [paths.ledger_csv], "specifications", [plan.n_specs],
+              done_note=f"written: {paths.ledger_csv} (summary and figures next, then the bootstrap draws)"),
+        Stage("summary", [paths.file("summary.md")], "files", [1], done_note=f"{paths.file('summary.md')}"),
+        Stage("figures", figures, "figures", [1] * len(figures), done_note=f"in {paths.run / 'figures'}"),
+        Stage("tables", tables, "tables", [1] * len(tables), done_note=f"in {paths.run / 'tables'}"),
+        Stage("bootstrap draws", plan.joint_paths(), "draws", draws, fresh_only=True),
+        Stage("joint tests", [paths.file("joint_tests.csv")], "files", [1],
+              done_note=str(paths.file("joint_tests.md"))),
+        Stage("appendix", appendix, "files", [1] * len(appendix), done_note=str(appendix[-1])),
+        Stage("provenance", [paths.manifest], "files", [1], done_note=f"{paths.manifest}, {paths.replication}"),
+    ]
+
+
+def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = (), *, quiet: bool = False) -> list[str]:
     """The Snakemake call behind ``fegrid run``.
 
     ``--rerun-incomplete`` and ``--nolock`` let a run killed at any point resume with the same
@@ -106,6 +141,8 @@ def snakemake_command(config: str | Path, cores: int, extra: Sequence[str] = ())
         "--snakefile", str(SNAKEFILE),
         "--directory", os.getcwd(),
         "--configfile", str(Path(config).resolve()),
+        # fegrid's progress lines replace Snakemake's log of every job; errors and failed logs still show
+        *(["--quiet", "all"] if quiet else []),
         "--cores", str(cores),
         "--rerun-incomplete", "--nolock", "--show-failed-logs",
         *extra,
@@ -117,7 +154,10 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if args.profile:
         extra = ["--workflow-profile", str(_profile(args.profile)), *extra]
     plan = make_plan(args.config, prepare=True)
-    st = plan_status(plan, load_checked(plan.grid))
+    frame = load_checked(plan.grid)
+    st = plan_status(plan, frame)
+    if len(plan.specs) > int(plan.grid.raw["jobs"]["warn_above"]):
+        _warn_size(plan, estimate_costs(plan, frame, cores=args.cores))
     print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
           f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
           f"{_plural(st.jobs, 'job')} to run.",
@@ -126,7 +166,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
     with RunLock(plan.paths.lock) as lock:
         outputs = PublishedOutputs(plan.paths)
         outputs.keep_previous()
-        code = _run_snakemake(snakemake_command(args.config, args.cores, extra), lock)
+        started = time.time()
+        with RunMonitor(_stages(plan) if not args.verbose else []):
+            code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock)
+        if code != 0 and not args.verbose:
+            _explain_failure(plan.paths, started)
         if code != 0:
             restored = outputs.restore_previous()
             if restored:
@@ -135,7 +179,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
                     "one consistent set" if restored else
                     "there were no earlier results; what this run wrote before failing is kept")
             reason = ("interrupted" if code in (-signal.SIGINT, -signal.SIGTERM, 130, 143)
-                      else f"the Snakemake run failed (exit code {code}); see the log shown above")
+                      else f"the Snakemake run failed (exit code {code}); see the log above (--verbose shows "
+                           "Snakemake's log of every job)")
             print(f"fegrid: {reason}. {what.capitalize()}. Run the same command again to resume.", file=sys.stderr)
             return code if code > 0 else 128 - code
         outputs.drop_previous()
@@ -145,6 +190,24 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if not args.quiet:
         _print_summary(plan.paths.ledger_csv, plan.grid.level)
     return 0
+
+
+def _explain_failure(paths: RunPaths, started: float) -> None:
+    """With Snakemake's log silenced, show why the run failed: the end of every job log written
+    during the run that reports an error, else the end of Snakemake's own log."""
+    shown = 0
+    logs = sorted((p for p in paths.run.joinpath("logs").rglob("*.log") if p.stat().st_mtime >= started - 1),
+                  key=lambda p: p.stat().st_mtime) if paths.run.joinpath("logs").is_dir() else []
+    for log in logs:
+        text = log.read_text(errors="replace")
+        if any(mark in text for mark in ("fegrid: ", "Traceback", "Error", "error:")):
+            tail = "\n".join(text.rstrip().splitlines()[-20:])
+            print(f"fegrid: the job logged in {log} failed:\n{tail}", file=sys.stderr)
+            shown += 1
+    own = sorted(Path(".snakemake", "log").glob("*.snakemake.log"), key=lambda p: p.stat().st_mtime)
+    if not shown and own and own[-1].stat().st_mtime >= started - 1:
+        tail = "\n".join(own[-1].read_text(errors="replace").rstrip().splitlines()[-25:])
+        print(f"fegrid: Snakemake's log ({own[-1]}) ends with:\n{tail}", file=sys.stderr)
 
 
 def _profile(name: str) -> Path:
@@ -315,6 +378,8 @@ def build_parser() -> argparse.ArgumentParser:
         p.add_argument("-c", "--cores", type=int, default=max(1, (os.cpu_count() or 1)),
                        help="jobs run in parallel (default: all cores)")
         p.add_argument("--quiet", action="store_true", help="no summary at the end")
+        p.add_argument("--verbose", action="store_true",
+                       help="Snakemake's own log of every job instead of fegrid's progress lines")
         p.add_argument("--profile", default=None,
                        help="a Snakemake profile: 'slurm' (shipped with fegrid) or a folder of your own")
         p.add_argument("snakemake_args", nargs=argparse.REMAINDER,

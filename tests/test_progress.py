@@ -1,0 +1,71 @@
+"""fegrid run's progress lines, read from the run folder (files written by hand here, with a
+controlled clock), and the cost estimate of `fegrid plan` on statsmodels' Grunfeld data."""
+
+from __future__ import annotations
+
+import io
+import os
+from pathlib import Path
+
+from fegrid.progress import RunMonitor, Stage, duration
+
+
+def _touch(path: Path, when: float) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text("x")
+    os.utime(path, (when, when))
+
+
+def test_each_stage_reports_counts_time_left_and_the_ledger_at_once(tmp_path: Path) -> None:
+    now = [1000.0]
+    fits = [tmp_path / f"fits/{i}.parquet" for i in range(4)]
+    _touch(fits[0], 500.0)  # fitted by an earlier run: not this run's work
+    ledger = tmp_path / "ledger.csv"
+    _touch(ledger, 500.0)   # the previous run's ledger, to be rewritten
+    draws = [tmp_path / f"joint/{i}.parquet" for i in range(5)]
+    out = io.StringIO()
+    monitor = RunMonitor([Stage("fits", fits, "specifications", [10, 20, 30, 40], fresh_only=True),
+                          Stage("ledger", [ledger], "specifications", [100], done_note="written: ledger.csv"),
+                          Stage("bootstrap draws", draws, "draws", [50] * 5, fresh_only=True)],
+                         out=out, clock=lambda: now[0])
+    monitor.update()
+    assert out.getvalue() == ""  # nothing written yet; the old ledger does not count
+    now[0] = 1010.0
+    _touch(fits[1], 1009.0)
+    monitor.update()
+    assert "fits: 20 of 90 specifications, about 20 s left" in out.getvalue()  # 10 s per job, 2 jobs left
+    now[0] = 1030.0
+    _touch(fits[2], 1020.0)
+    _touch(fits[3], 1029.0)
+    _touch(ledger, 1030.0)
+    monitor.update()
+    lines = out.getvalue().splitlines()
+    assert lines[-2] == "fegrid: fits: done (90 specifications)"
+    assert lines[-1] == "fegrid: ledger: done (100 specifications); written: ledger.csv"
+    now[0] = 1050.0
+    _touch(draws[0], 1049.0)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 50 of 250 draws, about 3 min 20 s left"
+    # a log gets a new line per stage at most every LOG_EVERY seconds
+    now[0] = 1051.0
+    _touch(draws[1], 1051.0)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1].startswith("fegrid: bootstrap draws: 50 of")
+
+
+def test_durations_read_plainly() -> None:
+    assert [duration(s) for s in (4, 200, 7400)] == ["4 s", "3 min 20 s", "2 h 03 min"]
+
+
+def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path, monkeypatch, capsys) -> None:
+    from fegrid.cli import main
+
+    monkeypatch.chdir(tiny_project)
+    assert main(["plan", "--config", "grid.yaml"]) == 0
+    out = capsys.readouterr()
+    assert "estimated cost: fits ~" in out.out and "bootstrap draws ~" in out.out and "warning" not in out.err
+    text = (tiny_project / "grid.yaml").read_text().replace("jobs: {specs_per_job: 4}",
+                                                          "jobs: {specs_per_job: 4, warn_above: 10}")
+    (tiny_project / "grid.yaml").write_text(text)
+    assert main(["plan", "--config", "grid.yaml"]) == 0
+    assert "warning: 32 specifications, more than jobs.warn_above (10)" in capsys.readouterr().err

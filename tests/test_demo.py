@@ -35,10 +35,23 @@ def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
     assert "fertilizer" in ledger["controls"].to_string()
     joint = pd.read_csv(run / "joint_tests.csv")
     assert (joint["draws"] == 500).all()
-    for name in ("manifest.json", "REPLICATION.md", "summary.tex", "appendix.tex",
+    for name in ("manifest.json", "REPLICATION.md", "summary.tex", "appendix.tex", "environment-lock.txt",
+                 "Dockerfile", "tables/main.tex", "tables/main.md", "tables/main.html",
                  "figures/curve-log_yield--irrigation.pdf"):
         assert (run / name).is_file(), name
+    # REPLICATION.md: every section of the data editors' template, each filled from the config and the run
+    replication = (run / "REPLICATION.md").read_text()
+    for heading in ("### Overview", "### Data availability and provenance statements", "### Dataset list",
+                    "### Computational requirements", "#### Controlled randomness", "### Description of programs/code",
+                    "### Instructions to replicators", "### List of tables and programs", "### References"):
+        assert heading in replication, heading
+    assert "Not given" not in replication and "| Table 1 | table_main_tex |" in replication
+    assert "| Figure 1 | figure_log_yield_irrigation_pdf |" in replication
+    # the main table: the baseline in column (1), as in the ledger
+    main_md = (run / "tables/main.md").read_text()
+    assert f"{base['estimate']:.4f}***" in main_md.replace("\\*", "*") and "(1)" in main_md
     if shutil.which("pdflatex"):
         text = subprocess.run(["pdftotext", "-layout", str(run / "appendix.pdf"), "-"], capture_output=True,
                               text=True).stdout
         assert f"{base['estimate']:.4f}" in text
+        assert "Irrigation and orchard yields (invented data)" in text  # the main table, inside the appendix

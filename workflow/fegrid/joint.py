@@ -81,6 +81,10 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
     rows: list[dict[str, Any]] = []
     frame = frame.copy(deep=False)
     frame.attrs = {}  # pandas deep-copies attrs at every operation on every draw's copies
+    for col in frame.columns:  # text keys as categories: every draw takes, filters and groups them cheaply
+        if not pd.api.types.is_numeric_dtype(frame[col]) and not isinstance(frame[col].dtype, pd.CategoricalDtype):
+            frame[col] = pd.Categorical(frame[col].astype(object),
+                                        categories=sorted(frame[col].dropna().astype(object).unique(), key=str))
     for d in draws:
         boot = resample_panel(frame, column, grid.panel.unit, np.random.default_rng([seed, d]))
         samples: dict[str, pd.DataFrame | None] = {}

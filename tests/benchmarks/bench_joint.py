@@ -1,0 +1,75 @@
+"""Benchmark: the joint tests' bootstrap draws on the demo grid (INVENTED data), CPU seconds.
+
+Compares, on the same draws: the path of fegrid 0.2 (each draw a stacked copy of the panel, every
+specification refitted as the fit jobs do, wild bootstrap included) and the current path
+(``joint.draw_curves``: no wild bootstrap in draws, text keys as categories). Both give the same
+estimates, SEs and df (checked here, to the last bit). Prints CPU seconds per draw and for the
+demo's 500 draws against the target of issue 12 (500 draws in <= 35 CPU s), from one run.
+
+    python tests/benchmarks/bench_joint.py [--draws 10]
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from fegrid.estimate import fit_block
+from fegrid.joint import draw_curves, resample_panel
+from fegrid.locations import DEMO_CONFIG
+from fegrid.pipeline import make_plan, snapshot_data
+
+
+def old_path(grid, frame, specs, draws, seed, column) -> pd.DataFrame:
+    from fegrid.samples import apply_sample
+
+    by_block: dict[str, list] = {}
+    for s in specs:
+        by_block.setdefault(s.block_key, []).append(s)
+    rows = []
+    for d in draws:
+        boot = resample_panel(frame, column, grid.panel.unit, np.random.default_rng([seed, d]))
+        for key in sorted(by_block):
+            block = by_block[key]
+            part = apply_sample(boot, block[0].sample, grid.panel)
+            fit = fit_block(part, grid.block_settings(block[0]), [s.request() for s in block])
+            rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
+                         "df_inference": r.df_inference} for r in fit.results)
+    return pd.DataFrame(rows)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--draws", type=int, default=10)
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        import os
+
+        os.chdir(tmp)
+        plan = make_plan(DEMO_CONFIG, prepare=True)
+        snapshot_data(plan.grid, Path(tmp) / "snap.parquet")
+        frame = pd.read_parquet(Path(tmp) / "snap.parquet")
+        grid, specs, draws = plan.grid, plan.specs, range(args.draws)
+        started = time.process_time()
+        new = draw_curves(grid, frame, specs, draws, seed=grid.seed, column=grid.resample)
+        new_cpu = time.process_time() - started
+        started = time.process_time()
+        old = old_path(grid, frame, specs, draws, grid.seed, grid.resample)
+        old_cpu = time.process_time() - started
+    key = ["draw", "spec_id"]
+    pd.testing.assert_frame_equal(new.sort_values(key, ignore_index=True)[old.columns],
+                                  old.sort_values(key, ignore_index=True), rtol=0, atol=0)
+    per_new, per_old = new_cpu / args.draws, old_cpu / args.draws
+    print(f"demo grid: {len(specs)} specifications, {args.draws} draws, one run (identical results)")
+    print(f"CPU s per draw: 0.2 path {per_old:.3f}, now {per_new:.3f}, ratio {per_old / per_new:.2f}x")
+    print(f"500 draws: 0.2 path {500 * per_old:.0f} CPU s, now {500 * per_new:.0f} CPU s (target <= 35 CPU s: "
+          f"{'met' if 500 * per_new <= 35 else 'not met'})")
+
+
+if __name__ == "__main__":
+    main()

@@ -203,7 +203,7 @@ def test_monte_carlo_size_with_ten_clusters() -> None:
         e = rng.normal(size=10)[cluster] + rng.normal(size=len(cluster)) * (1 + 0.5 * np.abs(x))
         df = pd.DataFrame({"cluster": cluster, "x": x, "y": e})
         res = fit_one(df, "y", "x", absorb=(), inference=Inference(
-            "cluster", (("cluster",),), WildBootstrap(draws=199, weights="webb", seed=seed, interval=False)))
+            "clustered", (("cluster",),), WildBootstrap(draws=199, weights="webb", seed=seed, interval=False)))
         rejections["conventional"] += res.p_value < 0.05
         rejections["wild"] += res.wild_p_value < 0.05
     conventional = rejections["conventional"] / len(seeds)

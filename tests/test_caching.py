@@ -92,3 +92,27 @@ def test_a_one_row_correction_in_the_demo_refits_only_samples_holding_it(tmp_pat
     monkeypatch.chdir(cold)
     fit_grid("grid.yaml")
     assert (cold / "reports/demo/ledger.csv").read_bytes() == (tmp_path / "reports/demo/ledger.csv").read_bytes()
+
+
+def test_an_unchanged_config_and_data_read_the_saved_plan(tiny_project: Path, monkeypatch) -> None:
+    """The second plan of the same config and data is read back, not expanded again; a changed
+    config (or data file) plans anew. Data: statsmodels' Grunfeld (conftest)."""
+    from fegrid.grid import Grid
+    from fegrid.pipeline import make_plan, save_plan
+
+    monkeypatch.chdir(tiny_project)
+    first = make_plan("grid.yaml")
+    save_plan(first)
+
+    def no_expansion(self, levels=None):
+        raise AssertionError("the grid was expanded again")
+
+    with monkeypatch.context() as mp:
+        mp.setattr(Grid, "expand", no_expansion)
+        again = make_plan("grid.yaml")
+    assert [s.spec_id for s in again.specs] == [s.spec_id for s in first.specs]
+    assert [j.key for j in again.jobs] == [j.key for j in first.jobs] and again.paths == first.paths
+    text = (tiny_project / "grid.yaml").read_text().replace("seed: 7", "seed: 8")
+    (tiny_project / "grid.yaml").write_text(text)
+    changed = make_plan("grid.yaml")
+    assert changed.grid.seed == 8 and changed.joint_key != first.joint_key

@@ -269,7 +269,8 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     """Read the config, hash the data file and expand the grid into jobs (no fitting).
 
     With ``prepare``, a config whose ``data.demo`` is true gets the invented demo data written to
-    ``data.path`` when that file is missing.
+    ``data.path`` when that file is missing. A plan saved for the same config, data file and
+    version (:func:`save_plan`) is read back instead of expanding the grid again.
     """
     grid = load_config(config)
     path = Path(grid.data_path)
@@ -277,6 +278,13 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
         write_demo_data(path)
     require_file(path)
     data_sha = file_sha256(path)
+    paths = RunPaths(Path(root), grid.run_name)
+    saved = paths.plan_file(keys.plan_key(grid.raw, data_sha))
+    if saved.is_file():
+        try:
+            return replace(load_plan(saved), paths=paths)
+        except (OSError, EOFError, pickle.UnpicklingError, AttributeError, TypeError):
+            pass  # unreadable (interrupted write, another fegrid): plan again
     levels: dict[str, list] = {}
     if grid.level_columns():
         levels = levels_for(_read_grid_table(grid, grid.level_columns()), grid)
@@ -284,7 +292,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     grid.baseline_id(specs)
     key = keys.snapshot_key(data_sha, grid.columns(), grid.reading())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
-    plan = Plan(grid, data_sha, key, tuple(specs), tuple(jobs), RunPaths(Path(root), grid.run_name))
+    plan = Plan(grid, data_sha, key, tuple(specs), tuple(jobs), paths)
     if grid.raw.get("tables"):  # every column of every table names one specification (no fitting needed)
         from .tables import table_specs
 

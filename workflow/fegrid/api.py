@@ -38,8 +38,8 @@ import pandas as pd
 from . import __version__, pipeline
 from .errors import FegridError
 from .grid import read_yaml
-from .pipeline import Plan, draw_null_chunk, grid_seeds, joint_key
-from .store import write_parquet
+from .pipeline import Plan, draw_null_chunk, grid_seeds
+from .store import atomic_write
 from .summary import choice_medians, curve_summary, influence
 
 if TYPE_CHECKING:
@@ -118,15 +118,11 @@ class GridResult:
         grid = plan.grid
         if grid.draws <= 0:
             raise FegridError("The config asks for no bootstrap draws (joint_inference.draws is 0).")
-        key = joint_key(grid, plan.snapshot_path.stem, plan.specs)
-        chunks = range(-(-grid.draws // grid.draws_per_job))
-        files = []
-        for chunk in chunks:
-            out = plan.paths.joint_draws(key, chunk)
+        files = plan.joint_paths()
+        for chunk, out in enumerate(files):
             if not out.is_file():
-                draw_null_chunk(grid, plan.snapshot_path, key, chunk, out)
-            files.append(out)
-            _say(progress, f"bootstrap draws: chunk {chunk + 1} of {len(chunks)}")
+                draw_null_chunk(grid, plan.snapshot_path, plan.joint_key, chunk, out)
+            _say(progress, f"bootstrap draws: chunk {chunk + 1} of {len(files)}")
         draws = pd.concat([pd.read_parquet(f) for f in files], ignore_index=True)
         return joint_tests(self.ledger, draws, grid.level)
 
@@ -145,8 +141,7 @@ def _data_file(data: pd.DataFrame | str | Path, folder: Path) -> str:
     content = buffer.getvalue()
     path = folder / "input" / f"{hashlib.sha256(content).hexdigest()[:16]}.parquet"
     if not path.is_file():
-        path.parent.mkdir(parents=True, exist_ok=True)
-        write_parquet(path, pd.read_parquet(io.BytesIO(content)))
+        atomic_write(path, lambda fh: fh.write(content))
     return str(path)
 
 

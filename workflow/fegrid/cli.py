@@ -28,7 +28,7 @@ from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
 from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
-from .progress import RunMonitor, Stage, estimate_costs
+from .progress import Costs, RunMonitor, Stage, estimate_costs
 from .store import PublishedOutputs, RunPaths
 from .summary import choice_medians, curve_summary
 
@@ -89,7 +89,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     print(_job_counts(plan))
     costs = estimate_costs(plan, frame, cores=os.cpu_count() or 1)
     print(costs.text())
-    _warn_size(plan, costs)
+    _warn_size(plan, frame, costs.cores, costs)
     print("outputs (names for replication.exhibits): " + ", ".join(plan.report_outputs(build_pdf=True)))
     if args.list:
         done = fitted_specs(plan, frame)
@@ -99,9 +99,11 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     return 0
 
 
-def _warn_size(plan, costs) -> None:
+def _warn_size(plan, frame, cores: int, costs: Costs | None = None) -> None:
+    """Warn, with the estimated cost, when the grid is larger than ``jobs.warn_above``."""
     limit = int(plan.grid.raw["jobs"]["warn_above"])
     if len(plan.specs) > limit:
+        costs = costs or estimate_costs(plan, frame, cores=cores)
         print(f"warning: {len(plan.specs):,} specifications, more than jobs.warn_above ({limit:,}); "
               f"{costs.text()}. Check that the grid is the one you mean to declare.", file=sys.stderr)
 
@@ -156,8 +158,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     plan = make_plan(args.config, prepare=True)
     frame = load_checked(plan.grid)
     st = plan_status(plan, frame)
-    if len(plan.specs) > int(plan.grid.raw["jobs"]["warn_above"]):
-        _warn_size(plan, estimate_costs(plan, frame, cores=args.cores))
+    _warn_size(plan, frame, args.cores)
     print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
           f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
           f"{_plural(st.jobs, 'job')} to run.",
@@ -309,9 +310,9 @@ def _cmd_init(args: argparse.Namespace) -> int:
     from .starter import write_starter
 
     guess = write_starter(args.data_file, args.out, run_name=args.run_name)
-    time = f"time '{guess.time}'" + (f" ({guess.time_frequency})" if guess.time_frequency else "") if guess.time \
+    when = f"time '{guess.time}'" + (f" ({guess.time_frequency})" if guess.time_frequency else "") if guess.time \
         else "no time column"
-    print(f"written {args.out}: unit '{guess.unit}', {time} (guessed: lines marked REVIEW); outcome and focal "
+    print(f"written {args.out}: unit '{guess.unit}', {when} (guessed: lines marked REVIEW); outcome and focal "
           f"regressor are placeholders. Edit them, then: fegrid check --config {args.out}")
     return 0
 

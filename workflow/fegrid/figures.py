@@ -29,10 +29,10 @@ import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 from .defaults import DEFAULTS  # noqa: E402
-from .ledger import DIMENSIONS, STATUS_OK  # noqa: E402
+from .ledger import DIMENSIONS, STATUS_OK, sample_family  # noqa: E402
 from .store import pair_slug  # noqa: E402,F401 - re-exported for callers of this module
 
-__all__ = ["draw_curve", "draw_comparison", "save_curve", "pair_slug", "print_scale", "family", "PALETTE",
+__all__ = ["draw_curve", "draw_comparison", "save_curve", "pair_slug", "print_scale", "PALETTE",
            "WIDTH_IN", "MIN_FONT_PT"]
 
 #: Okabe-Ito colours: positive significant, negative significant, not significant, baseline.
@@ -44,11 +44,6 @@ _LABEL_CHARS = 34
 WIDTH_IN = 6.75
 #: The smallest font size in the figure, in points.
 MIN_FONT_PT = 7.5
-
-
-def family(choice: str) -> str:
-    """The family of a generated sample (``leave_one_valley_out:V01`` -> ``leave_one_valley_out``)."""
-    return choice.split(":", 1)[0]
 
 
 def print_scale(fig: Figure, width_in: float, height_in: float) -> float:
@@ -75,8 +70,8 @@ def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_leve
     alpha = 1.0 - level
     ok = ledger[ledger["status"] == STATUS_OK].sort_values(["estimate", "spec_id"]).reset_index(drop=True)
     n = len(ok)
-    ok = ok.assign(sample=ok["sample"].astype(str).map(family)) if n else ok
-    families = {family(str(s)) for s in ledger["sample"] if ":" in str(s)}
+    ok = ok.assign(sample=ok["sample"].astype(str).map(sample_family)) if n else ok
+    families = {sample_family(str(s)) for s in ledger["sample"] if ":" in str(s)}
     dims = [d for d in dimensions if d not in ("outcome", "focal") and ok[d].nunique() > 1] if n else []
     rows: list[tuple[str, str]] = [(d, c) for d in dims for c in sorted(ok[d].unique(), key=str)]
     bottom_in = max(0.6, _ROW_INCHES * (len(rows) + 1.3 * len(dims)) + 0.5)

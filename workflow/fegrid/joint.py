@@ -35,7 +35,7 @@ from .grid import Grid, Spec
 from .ledger import PAIR, STATUS_OK
 from .samples import apply_sample
 
-__all__ = ["resample_panel", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS"]
+__all__ = ["resample_panel", "without_wild", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS"]
 
 STATISTICS = ("median_estimate", "share_significant", "stouffer_z")
 
@@ -64,7 +64,7 @@ def resample_panel(frame: pd.DataFrame, column: str, unit: str, rng: np.random.G
     return out
 
 
-def _without_wild(request: SpecRequest) -> SpecRequest:
+def without_wild(request: SpecRequest) -> SpecRequest:
     """A draw needs the estimate, its SE and df only: a wild cluster bootstrap adds p-values and
     intervals that the joint tests never read (and cost a third of every draw's time)."""
     if request.inference.bootstrap is None:
@@ -101,7 +101,7 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                 rows.extend({"draw": d, "spec_id": s.spec_id, "estimate": np.nan, "std_error": np.nan,
                              "df_inference": np.nan} for s in block)
                 continue
-            fit = fit_block(part, grid.block_settings(block[0]), [_without_wild(s.request()) for s in block])
+            fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block])
             rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
                          "df_inference": r.df_inference} for r in fit.results)
     return pd.DataFrame(rows, columns=["draw", "spec_id", "estimate", "std_error", "df_inference"])

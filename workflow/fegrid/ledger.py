@@ -25,6 +25,7 @@ __all__ = [
     "LEDGER_COLUMNS",
     "LEDGER_DTYPES",
     "read_ledger",
+    "sample_family",
 ]
 
 #: The grid's dimensions, in the order the ledger shows them.
@@ -32,6 +33,15 @@ DIMENSIONS: tuple[str, ...] = ("outcome", "focal", "absorb", "clustering", "samp
 
 #: A specification curve is drawn, summarised and tested for each outcome x focal regressor pair.
 PAIR: list[str] = ["outcome", "focal"]
+
+def sample_family(sample: str) -> str:
+    """The family of a generated sample: ``drop_each`` names its samples ``<name>:<level>``.
+
+    >>> sample_family("leave_one_valley_out:V01"), sample_family("all")
+    ('leave_one_valley_out', 'all')
+    """
+    return sample.split(":", 1)[0]
+
 
 #: Every status a ledger row can have.
 STATUSES: tuple[str, ...] = (STATUS_OK, STATUS_NOT_IDENTIFIED, STATUS_FAILED)

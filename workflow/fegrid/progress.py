@@ -49,7 +49,6 @@ class Stage:
     units: Sequence[int]
     done_note: str = ""
     fresh_only: bool = False
-    started: float | None = None
     done: int = -1
     last_line: float = 0.0
     finished: bool = False
@@ -88,8 +87,6 @@ class RunMonitor:
             written = [i for i in stage.todo if self._is_written(stage.files[i])]
             if len(written) == stage.done or not written:
                 continue
-            if stage.started is None:
-                stage.started = now
             stage.done = len(written)
             units_done = sum(stage.units[i] for i in written)
             units_total = sum(stage.units[i] for i in stage.todo)
@@ -155,9 +152,8 @@ class Costs:
 def estimate_costs(plan, frame, *, cores: int) -> Costs:
     """Fit the plan's largest block once as the fit jobs do and once as a bootstrap draw does (no
     wild bootstrap), and scale by the grid's specifications and draws."""
-    from dataclasses import replace
-
     from .estimate import fit_block
+    from .joint import without_wild
     from .pipeline import ContentKeys
 
     by_block: dict[str, list] = {}
@@ -167,8 +163,7 @@ def estimate_costs(plan, frame, *, cores: int) -> Costs:
     sample = ContentKeys(plan.grid, frame).sample(block[0])
     settings = plan.grid.block_settings(block[0])
     requests = [s.request() for s in block]
-    plain = [replace(r, inference=replace(r.inference, bootstrap=None)) if r.inference.bootstrap else r
-             for r in requests]
+    plain = [without_wild(r) for r in requests]
     started = time.perf_counter()
     fit_block(sample, settings, requests)
     fit_seconds = time.perf_counter() - started

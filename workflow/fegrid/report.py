@@ -21,7 +21,7 @@ import pandas as pd
 from tabulate import tabulate
 
 from .grid import Grid
-from .ledger import DIMENSIONS, PAIR, STATUS_OK
+from .ledger import DIMENSIONS, PAIR, STATUS_OK, sample_family
 from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
 from .summary import choice_medians, curve_summary, influence
@@ -118,7 +118,7 @@ def collapse_families(moves: pd.DataFrame) -> pd.DataFrame:
         return moves
     rows = []
     for _, part in moves[generated].groupby(["outcome", "focal", "dimension"], sort=False):
-        for fam, members in part.groupby(part["choice"].astype(str).str.split(":", n=1).str[0], sort=True):
+        for fam, members in part.groupby(part["choice"].astype(str).map(sample_family), sort=True):
             row = members.iloc[0].copy()
             row["choice"] = f"{fam} (each of {len(members)})"
             row["specs"] = int(members["specs"].sum())

@@ -164,8 +164,8 @@ def _count(x: float) -> str:
 
 
 def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, absorb_terms: Mapping[str, Sequence[str]],
-                inference_text: Mapping[str, str], labels: Mapping[str, str], significance: Significance,
-                level: float) -> ResultsTable:
+                inference_text: Mapping[str, str], labels: Mapping[str, str],
+                significance: Significance) -> ResultsTable:
     """The table model of ``tables.<name>`` (see the module docstring)."""
     def label(x: str) -> str:
         return str(labels.get(x, x))
@@ -342,5 +342,5 @@ def grid_tables(grid: Any, ledger: pd.DataFrame) -> dict[str, ResultsTable]:
     significance = Significance.from_config(raw)
     labels = dict(raw.get("labels") or {})
     return {name: build_table(name, body, ledger, absorb_terms=terms, inference_text=ses, labels=labels,
-                              significance=significance, level=grid.level)
+                              significance=significance)
             for name, body in sorted((raw.get("tables") or {}).items())}

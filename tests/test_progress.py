@@ -51,6 +51,11 @@ def test_each_stage_reports_counts_time_left_and_the_ledger_at_once(tmp_path: Pa
     _touch(draws[1], 1051.0)
     monitor.update()
     assert out.getvalue().splitlines()[-1].startswith("fegrid: bootstrap draws: 50 of")
+    # the pace is the stage's own (2 s a chunk here), not diluted by the fits before it
+    now[0] = 1062.0
+    _touch(draws[2], 1053.0)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 150 of 250 draws, about 4 s left"
 
 
 def test_durations_read_plainly() -> None:

@@ -96,7 +96,11 @@ class RunMonitor:
                 unit = stage.unit[:-1] if units_total == 1 and stage.unit.endswith("s") else stage.unit
                 self._print(stage.name, f"{stage.name}: done ({units_total} {unit}){note}", final=True)
                 continue
-            pace = (now - self.start) / stage.done
+            # the pace of this stage alone: between its first and its latest file once two exist (the
+            # stages before it do not count), from the run's start while only one does
+            times = sorted(stage.files[i].stat().st_mtime for i in written)
+            pace = (times[-1] - times[0]) / (len(times) - 1) if len(times) > 1 and times[-1] > times[0] \
+                else (now - self.start) / stage.done
             left = pace * (len(stage.todo) - stage.done)
             if self.tty or now - stage.last_line >= LOG_EVERY:
                 self._print(stage.name, f"{stage.name}: {units_done} of {units_total} {stage.unit}, about "

@@ -74,3 +74,27 @@ def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path
     (tiny_project / "grid.yaml").write_text(text)
     assert main(["plan", "--config", "grid.yaml"]) == 0
     assert "warning: 32 specifications, more than jobs.warn_above (10)" in capsys.readouterr().err
+
+
+def test_a_report_stage_with_few_files_gives_no_time_left(tmp_path: Path) -> None:
+    """The appendix's .tex, then its .pdf: one file written says nothing about the time left."""
+    now = [100.0]
+    tex, pdf = tmp_path / "appendix.tex", tmp_path / "appendix.pdf"
+    out = io.StringIO()
+    monitor = RunMonitor([Stage("appendix", [tex, pdf], "files", [1, 1])], out=out, clock=lambda: now[0])
+    now[0] = 300.0
+    _touch(tex, 299.0)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1] == "fegrid: appendix: 1 of 2 files"
+
+
+def test_the_terminal_summary_prints_blanks_not_nan(tiny_project: Path, monkeypatch, capsys) -> None:
+    """statsmodels' Grunfeld: `capital` has no baseline in the tiny grid, so its baseline is blank."""
+    import fegrid
+    from fegrid.cli import main
+
+    monkeypatch.chdir(tiny_project)
+    fegrid.fit_grid("grid.yaml", cache="reports", progress=False)
+    assert main(["summary", "--config", "grid.yaml"]) == 0
+    out = capsys.readouterr().out
+    assert "capital" in out and "nan" not in out

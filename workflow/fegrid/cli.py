@@ -56,6 +56,8 @@ def _plural(n: int, word: str) -> str:
 
 
 def _fmt(x: object, digits: int = 4) -> str:
+    if isinstance(x, float) and x != x:  # missing (a curve with no fitted baseline): a blank, never "nan"
+        return ""
     if isinstance(x, float):
         return f"{x:.{digits}g}" if abs(x) < 1e-3 or abs(x) >= 1e4 else f"{x:.{digits}f}"
     return str(x)

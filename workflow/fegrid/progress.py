@@ -99,12 +99,14 @@ class RunMonitor:
             # the pace of this stage alone: between its first and its latest file once two exist (the
             # stages before it do not count), from the run's start while only one does
             times = sorted(stage.files[i].stat().st_mtime for i in written)
-            pace = (times[-1] - times[0]) / (len(times) - 1) if len(times) > 1 and times[-1] > times[0] \
-                else (now - self.start) / stage.done
-            left = pace * (len(stage.todo) - stage.done)
+            if len(times) > 1 and times[-1] > times[0]:
+                pace: float | None = (times[-1] - times[0]) / (len(times) - 1)
+            else:  # content-named jobs (fits, draws) start with the run; a few report files say nothing
+                pace = (now - self.start) / stage.done if stage.fresh_only else None
+            left = "" if pace is None else f", about {duration(pace * (len(stage.todo) - stage.done))} left"
             if self.tty or now - stage.last_line >= LOG_EVERY:
-                self._print(stage.name, f"{stage.name}: {units_done} of {units_total} {stage.unit}, about "
-                                        f"{duration(left)} left", final=False)
+                self._print(stage.name, f"{stage.name}: {units_done} of {units_total} {stage.unit}{left}",
+                            final=False)
                 stage.last_line = now
 
     def _print(self, name: str, text: str, *, final: bool) -> None:

@@ -35,6 +35,10 @@ CONFIG_CASES = {
                                r"control column\(s\) 'rain'"),
     "unknown cluster column": (("by: firm}", "by: industry}"), r"cluster column\(s\) 'industry'"),
     "unknown outcome column": (("outcomes: [invest]", "outcomes: [investment]"), r"outcome column\(s\) 'investment'"),
+    # the misspelt column is named, not the exhibit or table it also breaks
+    "unknown outcome column with exhibits": (
+        ("outcomes: [invest]", "outcomes: [investment]\nreplication: {exhibits: {figure_invest_value_pdf: Figure 1}}"),
+        r"outcome column\(s\) 'investment'"),
     "empty sample": (("min: 1946", "min: 2046"), r"Sample 'postwar' keeps no rows"),
     "exclusion names no choice": (("jobs:", "exclude: [{absorb: firm_month}]\njobs:"),
                                   r"exclude\[0\] names absorb choice\(s\) \['firm_month'\]"),

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import io
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -16,7 +16,8 @@ from .errors import DataError
 from .grid import Grid
 from .samples import apply_sample
 
-__all__ = ["READERS", "CsvOptions", "file_sha256", "read_table", "check_data", "levels_for", "require_file"]
+__all__ = ["READERS", "CsvOptions", "file_sha256", "file_columns", "read_table", "check_columns", "check_data",
+           "levels_for", "require_file"]
 
 
 @dataclass(frozen=True)
@@ -133,6 +134,20 @@ def _separator_hint(path: Path, header: list[str]) -> None:
                 )
 
 
+def file_columns(path: str | Path, *, csv: CsvOptions | None = None) -> list[str]:
+    """The names of a data file's columns, from its header alone (nothing else is read)."""
+    path = Path(path)
+    fmt = _format_of(path)
+    require_file(path)
+    try:
+        header = fmt.header(path, csv or CsvOptions())
+    except Exception as exc:  # any parser's failure is the user's file, not our bug
+        raise DataError(f"The data file '{path}' cannot be read as {fmt.name}: {exc}") from None
+    if fmt.name == "CSV":
+        _separator_hint(path, header)
+    return header
+
+
 def read_table(path: str | Path, columns: Iterable[str] | None = None, *, content: bytes | None = None,
                csv: CsvOptions | None = None) -> pd.DataFrame:
     """Read a CSV (or .csv.gz), Parquet, Feather or .dta file; with ``columns``, only those of them
@@ -185,6 +200,20 @@ def levels_for(frame: pd.DataFrame, grid: Grid) -> dict[str, list]:
     return out
 
 
+def check_columns(file_columns: Sequence[object], grid: Grid, *, path: str = "the data",
+                  present: set[object] | None = None) -> None:
+    """Raise a :class:`DataError` naming the role and column when a column the grid uses is not in
+    the file (``file_columns``: its header; ``present``: the columns read, by default all of them)."""
+    present = set(file_columns) if present is None else present
+    for role, cols in grid.roles().items():
+        missing = [c for c in cols if c not in present]
+        if missing:
+            raise DataError(
+                f"The {role} column(s) {', '.join(repr(m) for m in missing)} named in the config "
+                f"are not in {path}. Its columns are: {', '.join(map(str, file_columns))}."
+            )
+
+
 def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> None:
     """Raise a :class:`DataError` naming the column at fault when the data cannot serve the grid.
 
@@ -195,14 +224,8 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
     roles = grid.roles()
     if len(frame) == 0:
         raise DataError(f"{path[0].upper() + path[1:]} has a header but no rows of data.")
-    for role, cols in roles.items():
-        missing = [c for c in cols if c not in frame.columns]
-        if missing:
-            raise DataError(
-                f"The {role} column(s) {', '.join(repr(m) for m in missing)} named in the config "
-                f"are not in {path}. Its columns are: "
-                f"{', '.join(map(str, frame.attrs.get('file_columns', frame.columns)))}."
-            )
+    check_columns(frame.attrs.get("file_columns", list(frame.columns)), grid, path=path,
+                  present=set(frame.columns))
     numeric_roles = ("outcome", "focal regressor", "control", "weights", "time")
     for role in numeric_roles:
         for col in roles[role]:

@@ -25,7 +25,16 @@ from typing import Any
 import pandas as pd
 
 from . import keys
-from .data import CsvOptions, check_data, file_sha256, levels_for, read_table, require_file
+from .data import (
+    CsvOptions,
+    check_columns,
+    check_data,
+    file_columns,
+    file_sha256,
+    levels_for,
+    read_table,
+    require_file,
+)
 from .defaults import fill_defaults
 from .demo import write_demo_data
 from .errors import ConfigError, DataError, FegridError
@@ -293,6 +302,8 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     key = keys.snapshot_key(data_sha, grid.columns(), grid.reading())
     jobs = plan_jobs(specs, specs_per_job=grid.specs_per_job, salt=_salt(key, grid))
     plan = Plan(grid, data_sha, key, tuple(specs), tuple(jobs), paths)
+    # a misspelt column is named as such, before the tables and exhibits that it would also break
+    check_columns(file_columns(path, csv=CsvOptions(**grid.csv)), grid, path=f"the data file '{grid.data_path}'")
     if grid.raw.get("tables"):  # every column of every table names one specification (no fitting needed)
         from .tables import table_specs
 

@@ -57,6 +57,7 @@ class FitPieces:
     bread: np.ndarray
     within_r2: float
     scores: Callable[[], np.ndarray]
+    coefficients: np.ndarray | None = None  # every kept coefficient, focal first
 
 
 @dataclass(frozen=True)
@@ -87,7 +88,12 @@ def _dof(n: int, k_total: int) -> int:
 
 
 class _Kind:
-    """A covariance kind: callable on the fitted pieces of one specification."""
+    """A covariance kind: callable on the fitted pieces of one specification.
+
+    Calling a kind gives the focal coefficient's variance (one pass over ``h e``); :meth:`matrix`
+    gives the whole covariance matrix of the kept coefficients from the scores, with the same
+    small-sample factors, so that its first diagonal element equals the focal variance.
+    """
 
     name = ""
     #: the name in spec ids' canonical content (fegrid 0.2's config name; kept so that ids never change)
@@ -97,6 +103,34 @@ class _Kind:
     def __call__(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
                  clusters: Sequence[np.ndarray]) -> CovarianceOutcome:
         raise NotImplementedError
+
+    def t_df(self, n: int, k_total: int, clusters: Sequence[np.ndarray]) -> float:
+        """The df of the t (and F) distributions: ``N - K`` or, clustered, the fewest clusters less one."""
+        if not self.dimensions:
+            return float(_dof(n, k_total))
+        return float(min(int(c.max()) + 1 for c in clusters[: self.dimensions]) - 1)
+
+    def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
+             clusters: Sequence[np.ndarray]) -> np.ndarray:
+        """The scaled middle ``M`` of the sandwich ``B M B`` for scores ``X * e`` (n, k), with the
+        kind's small-sample factors (the homoskedastic kind has none: see :meth:`matrix`)."""
+        raise NotImplementedError
+
+    def matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
+               clusters: Sequence[np.ndarray], psd: bool = True) -> np.ndarray:
+        """The covariance matrix of every kept coefficient (focal first)."""
+        b = fit.bread
+        if isinstance(self, Iid):
+            return fit.rss / _dof(len(fit.e), n_params + absorbed_df) * b
+        m = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
+                      clusters=clusters)
+        v = b @ m @ b
+        v = (v + v.T) / 2
+        if psd and isinstance(self, TwoWay):
+            eigval, eigvec = np.linalg.eigh(v)
+            if eigval.min() < 0:
+                v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
+        return v
 
 
 class Iid(_Kind):
@@ -122,6 +156,10 @@ class Robust(_Kind):
         he = fit.h * fit.e
         return CovarianceOutcome(n / dof * float(he @ he), dof, ())
 
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = scores.shape[0]
+        return n / _dof(n, n_params + absorbed_df) * (scores.T @ scores)
+
 
 class OneWay(_Kind):
     """Errors correlated within the groups of one cluster variable."""
@@ -138,6 +176,14 @@ class OneWay(_Kind):
             raise EstimationError("the cluster variable has a single group in this sample")
         return CovarianceOutcome(g / (g - 1) * (n - 1) / dof * float(sums @ sums), g - 1, (g,))
 
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = scores.shape[0]
+        dof = _dof(n, n_params + absorbed_df - nested_df)
+        u, g = _cluster_sums(scores, clusters[0])
+        if g < 2:
+            raise EstimationError("the cluster variable has a single group in this sample")
+        return g / (g - 1) * (n - 1) / dof * (u.T @ u)
+
 
 class TwoWay(_Kind):
     """Errors correlated within the groups of either of two cluster variables.
@@ -150,18 +196,9 @@ class TwoWay(_Kind):
     dimensions = 2
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        n = len(fit.e)
-        dof = _dof(n, n_params + absorbed_df - nested_df)
-        scores = fit.scores()
-        a, b, both = clusters
-        meat = np.zeros((scores.shape[1], scores.shape[1]))
-        counts = []
-        for codes, sign in ((a, 1.0), (b, 1.0), (both, -1.0)):
-            u, g = _cluster_sums(scores, codes)
-            if g < 2:
-                raise EstimationError("a cluster variable has a single group in this sample")
-            meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)
-            counts.append(g)
+        counts = [int(c.max()) + 1 if len(c) else 0 for c in clusters]
+        meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
+                         clusters=clusters)
         v = fit.bread @ meat @ fit.bread
         v = (v + v.T) / 2
         eigval, eigvec = np.linalg.eigh(v)
@@ -170,6 +207,17 @@ class TwoWay(_Kind):
             v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
         return CovarianceOutcome(float(v[0, 0]), min(counts[0], counts[1]) - 1, (counts[0], counts[1]),
                                  adjusted)
+
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        n = scores.shape[0]
+        dof = _dof(n, n_params + absorbed_df - nested_df)
+        meat = np.zeros((scores.shape[1], scores.shape[1]))
+        for codes, sign in zip(clusters, (1.0, 1.0, -1.0)):
+            u, g = _cluster_sums(scores, codes)
+            if g < 2:
+                raise EstimationError("a cluster variable has a single group in this sample")
+            meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)
+        return meat
 
 
 #: Registry of covariance kinds: the config's name -> estimator.

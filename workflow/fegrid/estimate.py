@@ -17,7 +17,7 @@ weights. :func:`fit_block` evaluates all of them with as little repeated work as
 from __future__ import annotations
 
 import json
-from collections.abc import Collection, Sequence
+from collections.abc import Callable, Collection, Sequence
 from dataclasses import asdict, dataclass, field, fields, replace
 from typing import NamedTuple, Protocol
 
@@ -30,6 +30,8 @@ from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .defaults import DEFAULTS
 from .errors import EstimationError
+from .estimators import POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
+from .poisson import irls, separated_rows
 from .wild import WildBootstrap, wild_cluster_test
 
 __all__ = [
@@ -37,6 +39,7 @@ __all__ = [
     "SpecRequest",
     "BlockSettings",
     "SpecResult",
+    "Coefficients",
     "BlockFit",
     "DemeanStore",
     "fit_block",
@@ -91,6 +94,7 @@ class SpecRequest:
     focal: str
     controls: tuple[str, ...] = ()
     inference: Inference = field(default_factory=Inference)
+    estimator: Estimator = field(default_factory=Estimator)
 
 
 @dataclass(frozen=True)
@@ -108,12 +112,14 @@ class BlockSettings:
     warn_min_clusters: int = DEFAULTS["inference_warnings.min_clusters"]
     warn_max_cluster_share: float = DEFAULTS["inference_warnings.max_cluster_share"]
     warn_min_treated_clusters: int = DEFAULTS["inference_warnings.min_treated_clusters"]
+    warn_min_first_stage_f: float = DEFAULTS["inference_warnings.min_first_stage_f"]
 
     def demean_key(self) -> str:
         """Everything that decides the demeaned columns (level and warning thresholds do not),
         and the engine's version, so that columns demeaned by another version are never reused."""
         body = asdict(self)
-        for key in ("level", "warn_min_clusters", "warn_max_cluster_share", "warn_min_treated_clusters"):
+        for key in ("level", "warn_min_clusters", "warn_max_cluster_share", "warn_min_treated_clusters",
+                    "warn_min_first_stage_f"):
             body.pop(key)
         body["absorb"] = [t.canonical() for t in self.absorb]
         body["fegrid"] = __version__
@@ -160,6 +166,15 @@ class SpecResult:
     wild_draws: int = 0
     wild_weights: str = ""
     wild_enumerated: bool = False
+    first_stage: str = ""
+    effective_f: float = float("nan")
+    kp_f: float = float("nan")
+    partial_r2: float = float("nan")
+    ar_p_value: float = float("nan")
+    ar_ci_low: float = float("nan")
+    ar_ci_high: float = float("nan")
+    ar_set: str = ""
+    n_separated: int = 0
 
     def record(self) -> dict[str, object]:
         return asdict(self)
@@ -176,11 +191,21 @@ class DemeanStore(Protocol):
     def put(self, key: str, values: np.ndarray, iterations: int, converged: bool) -> None: ...
 
 
+class Coefficients(NamedTuple):
+    """Every kept coefficient of one specification (focal first) with its covariance matrix."""
+
+    terms: tuple[str, ...]
+    estimates: np.ndarray
+    covariance: np.ndarray
+    df: float
+
+
 @dataclass
 class BlockFit:
     """Results of one block with counts of the work done."""
 
     results: list[SpecResult]
+    coefficients: dict[str, Coefficients] = field(default_factory=dict)
     designs: int = 0
     columns_demeaned: int = 0
     columns_reused: int = 0
@@ -197,6 +222,18 @@ class _Regressors(NamedTuple):
     bread: np.ndarray  # (X'X)^{-1} of those columns
     dropped: list[str]  # controls dropped, with the reason
     problem: str  # why the focal coefficient is not identified ("" when it is)
+
+
+class _IvRegressors(NamedTuple):
+    """The regressors and instruments of one 2SLS specification in a design."""
+
+    columns: list[int]  # regressors: focal, other endogenous, exogenous controls (empty when not identified)
+    instruments: list[int]  # excluded instruments, then the exogenous controls
+    n_endogenous: int
+    n_excluded: int
+    bread: np.ndarray  # (X'P X)^{-1}
+    dropped: list[str]
+    problem: str
 
 
 class _FocalDiagnostics(NamedTuple):
@@ -353,6 +390,74 @@ class _Design:
                 self._regressors[key] = _Regressors(idx, np.linalg.inv(rs.T @ rs), dropped, "")
         return self._regressors[key]
 
+    def iv_regressors(self, focal: str, controls: tuple[str, ...], estimator: Estimator) -> _IvRegressors:
+        """Regressors and instruments of a 2SLS specification, with the identification checks:
+        instruments absorbed by the effects or collinear with the controls are dropped (and named),
+        and too few usable instruments, or a rank-deficient first stage, leave it not identified."""
+        key = ("iv", focal, controls, estimator.instruments, estimator.endogenous)
+        if key in self._regressors:
+            return self._regressors[key]  # type: ignore[return-value]
+        base = self.regressors(focal, tuple(c for c in controls if c not in estimator.endogenous))
+        dropped = list(base.dropped)
+        problem = base.problem
+        kept, _ = self.controls(tuple(c for c in controls if c not in estimator.endogenous))
+        exog = [self.pos[c] for c in kept]
+        endog = [self.pos[focal]]
+        for e in estimator.endogenous:
+            if self._absorbed(self.pos[e]):
+                problem = problem or f"the endogenous regressor '{e}' is absorbed by the fixed effects"
+            endog.append(self.pos[e])
+        excluded: list[int] = []
+        for z in estimator.instruments:
+            j = self.pos[z]
+            if z in kept:
+                dropped.append(f"{z} (instrument, also a control)")
+            elif self._absorbed(j):
+                dropped.append(f"{z} (instrument, absorbed)")
+            elif self._residual_norm(j, exog + excluded) <= 1e-7 * self.norm[j]:
+                dropped.append(f"{z} (instrument, collinear)")
+            else:
+                excluded.append(j)
+        if not problem and len(excluded) < len(endog):
+            problem = (f"under-identified: {len(excluded)} usable instrument(s) for {len(endog)} endogenous "
+                       "regressor(s) once the fixed effects and controls are absorbed")
+        ix, iw = endog + exog, excluded + exog
+        bread = np.empty((0, 0))
+        if not problem:
+            rw, rx = self.R[:, iw], self.R[:, ix]
+            swx = rw.T @ rx
+            a = swx.T @ np.linalg.solve(rw.T @ rw, swx)
+            eig = np.linalg.eigvalsh((a + a.T) / 2)
+            if eig.min() <= 1e-10 * max(eig.max(), 1e-300):
+                problem = ("the instruments do not move the endogenous regressor(s) once the fixed effects "
+                           "and controls are absorbed (rank-deficient first stage)")
+            else:
+                bread = np.linalg.inv(a)
+        out = _IvRegressors([] if problem else ix, iw, len(endog), len(excluded), bread, dropped, problem)
+        self._regressors[key] = out  # type: ignore[assignment]
+        return out
+
+    def fit_iv(self, outcome: str, reg: _IvRegressors) -> FitPieces:
+        """Two-stage least squares on the demeaned columns: ``b = (X'PX)^{-1} X'Py`` with ``P`` the
+        projection on the instruments; residuals use ``X`` itself, scores the fitted ``PX``."""
+        yi = self.pos[outcome]
+        rw = self.R[:, reg.instruments]
+        swy = rw.T @ self.R[:, yi]
+        pi = np.linalg.solve(rw.T @ rw, rw.T @ self.R[:, reg.columns])  # X on the instruments
+        beta = reg.bread @ (pi.T @ swy)
+        weights = np.zeros((len(self.columns), 2))
+        weights[yi, 0] = 1.0
+        weights[reg.columns, 0] -= beta
+        weights[reg.instruments, 1] = pi @ reg.bread[:, 0]
+        eh = self.Z @ weights
+        e = eh[:, 0]
+        rss = float(e @ e)
+        tss = float(self.norm[yi] ** 2)
+        fitted = self.Z[:, reg.instruments] @ pi
+        return FitPieces(estimate=float(beta[0]), e=e, h=eh[:, 1], rss=rss, bread=reg.bread,
+                         within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
+                         scores=lambda: fitted * e[:, None], coefficients=beta)
+
     def partial_out(self, columns: np.ndarray) -> np.ndarray:
         """Residuals of weight-scaled columns on the absorbed effects, in the weight-scaled space."""
         if self.settings.weights is None:
@@ -386,7 +491,7 @@ class _Design:
             self._fits[key] = FitPieces(
                 estimate=float(beta[0]), e=eh[:, 0], h=eh[:, 1], rss=rss, bread=bread,
                 within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
-                scores=lambda idx=idx, e=eh[:, 0]: self._scores(idx, e))
+                scores=lambda idx=idx, e=eh[:, 0]: self._scores(idx, e), coefficients=beta)
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> _FocalDiagnostics:
@@ -424,7 +529,8 @@ def _design_columns(settings: BlockSettings) -> list[str]:
 
 def _needed(spec: SpecRequest, settings: BlockSettings) -> list[str]:
     """Columns whose missing values drop a row from the specification."""
-    cols = [spec.outcome, spec.focal, *spec.controls, *spec.inference.columns(), *_design_columns(settings)]
+    cols = [spec.outcome, spec.focal, *spec.controls, *spec.estimator.columns(), *spec.inference.columns(),
+            *_design_columns(settings)]
     return list(dict.fromkeys(cols))
 
 
@@ -444,6 +550,7 @@ def fit_block(
     store: DemeanStore | None = None,
     data_key: str = "",
     evaluate: Collection[str] | None = None,
+    coefficients: bool = True,
 ) -> BlockFit:
     """Fit every specification of a block (or those named in ``evaluate``).
 
@@ -469,6 +576,9 @@ def fit_block(
     evaluate
         Ids of the specifications to evaluate (default: all). The others only shape the designs;
         designs holding none of them are skipped.
+    coefficients
+        Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`); the
+        bootstrap draws of the joint tests need the focal estimate only.
 
     Returns
     -------
@@ -509,7 +619,8 @@ def fit_block(
                                      {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
         design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
         fit.designs += 1
-        cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls)})
+        cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls,
+                                                      *specs[i].estimator.columns())})
         done, reused = design.demean(cols, store)
         fit.columns_demeaned += done
         fit.columns_reused += reused
@@ -520,9 +631,16 @@ def fit_block(
         # all covariance choices of one regression in a row: its residuals are computed once and
         # only one regression's n-vectors are held at a time
         for i in sorted((i for i in members if specs[i].spec_id in wanted),
-                        key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls)):
-            bad = sorted(broken.intersection((specs[i].outcome, specs[i].focal, *specs[i].controls)))
-            results[i] = _evaluate(design, specs[i]) if not bad else SpecResult(
+                        key=lambda i: (specs[i].outcome, specs[i].focal, specs[i].controls,
+                                       repr(specs[i].estimator))):
+            bad = sorted(broken.intersection((specs[i].outcome, specs[i].focal, *specs[i].controls,
+                                              *specs[i].estimator.columns())))
+            if not bad:
+                results[i], kept = _evaluate(design, specs[i], coefficients)
+                if kept is not None:
+                    fit.coefficients[specs[i].spec_id] = kept
+                continue
+            results[i] = SpecResult(
                 specs[i].spec_id, STATUS_FAILED, f"the column(s) {', '.join(bad)} hold infinite values, or values "
                 "too large to square without overflow (beyond about 1e154), in this sample", n_obs=len(design.frame),
                 n_singletons=design.n_singletons)
@@ -552,32 +670,71 @@ def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> Spec
         focal_variance_share=focal.variance_share, units_with_variation=focal.units_with_variation)
 
 
-def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
-    s = design.settings
-    regressors = design.regressors(spec.focal, spec.controls)
+def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    """One specification of a design: its result, and every kept coefficient when ``keep``."""
+    method = spec.estimator.method
+    if method == POISSON:
+        return _evaluate_poisson(design, spec, keep)
+    two_stage = method == TWO_STAGE
+    regressors = (design.iv_regressors(spec.focal, spec.controls, spec.estimator) if two_stage
+                  else design.regressors(spec.focal, spec.controls))
     base = _base_result(design, spec, regressors.dropped)
     if regressors.problem:
-        return replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem)
-    pieces = design.fit(spec.outcome, spec.focal, spec.controls)
-    beta, r2 = pieces.estimate, pieces.within_r2
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem), None
+    if two_stage:
+        assert isinstance(regressors, _IvRegressors)
+        pieces = design.fit_iv(spec.outcome, regressors)
+    else:
+        pieces = design.fit(spec.outcome, spec.focal, spec.controls)
     codes = [design.cluster_codes(dim) for dim in spec.inference.by]
+    all_codes = _covariance_codes(spec, codes, design.cluster_codes)
+    result, kept = _inference(base, spec, pieces, design.absorber, design.nested_df(spec.inference.by), codes,
+                              all_codes, design.frame, design.settings, [design.columns[j] for j in regressors.columns], keep)
+    if result.status != STATUS_OK:
+        return result, kept
+    if two_stage:
+        assert isinstance(regressors, _IvRegressors)
+        result = _with_first_stage(design, spec, regressors, codes, result)
+    if spec.inference.bootstrap is not None and result.std_error > 0:
+        if two_stage:
+            result = replace(result, message="; ".join(filter(None, [
+                result.message, "the wild cluster bootstrap is computed for least squares only"])))
+        else:
+            result = _with_wild(design, spec, pieces, regressors.columns, codes[0], result.n_clusters, result)
+    return result, kept
+
+
+def _covariance_codes(spec: SpecRequest, codes: list[np.ndarray],
+                      cluster_of: Callable[[tuple[str, ...]], np.ndarray]) -> list[np.ndarray]:
     if len(codes) == 2:  # two-way clustering also sums over the intersection of the two
-        codes.append(design.cluster_codes(spec.inference.by[0] + spec.inference.by[1]))
+        return [*codes, cluster_of(spec.inference.by[0] + spec.inference.by[1])]
+    return codes
+
+
+def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber: Absorber, nested_df: int,
+               codes: list[np.ndarray], all_codes: list[np.ndarray], frame: pd.DataFrame, s: BlockSettings,
+               terms: list[str], keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    """The focal coefficient's inference (and every coefficient's, when ``keep``) under the
+    specification's covariance kind; shared by every estimator. ``codes`` are the cluster
+    variables' codes, ``all_codes`` those with the intersection of two-way clustering."""
+    beta, r2 = pieces.estimate, pieces.within_r2
+    kind = covariance_kind(spec.inference.kind)
+    args = dict(n_params=pieces.bread.shape[0], absorbed_df=absorber.absorbed_df, nested_df=nested_df,
+                clusters=all_codes)
     try:
-        cov = covariance_kind(spec.inference.kind)(
-            pieces, n_params=pieces.bread.shape[0], absorbed_df=design.absorber.absorbed_df,
-            nested_df=design.nested_df(spec.inference.by), clusters=codes)
+        cov = kind(pieces, **args)
     except EstimationError as exc:
-        return replace(base, message=str(exc), estimate=beta, within_r2=r2)
+        return replace(base, message=str(exc), estimate=beta, within_r2=r2), None
     se = float(np.sqrt(cov.variance))
     if not (np.isfinite(beta) and np.isfinite(se)):
         return replace(base, message="the estimate or its standard error is not finite (numerical overflow: "
-                       "check the scale of the variables)")
+                       "check the scale of the variables)"), None
     t = beta / se if se > 0 else float("nan")
     p = float(2 * stdtr(cov.df, -abs(t))) if se > 0 else float("nan")
     crit = float(stdtrit(cov.df, 0.5 + s.level / 2))
-    notes = [] if base.converged else [
-        f"alternating projections did not reach the tolerance in {s.max_iterations} iterations"]
+    notes = [base.message] if base.message else []
+    if not base.converged:
+        notes.append(f"alternating projections did not reach the tolerance in {s.max_iterations} iterations")
     if cov.psd_adjusted:
         notes.append("two-way covariance was not positive semi-definite: negative eigenvalues set to zero")
     clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
@@ -586,10 +743,132 @@ def _evaluate(design: _Design, spec: SpecRequest) -> SpecResult:
         ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
         within_r2=r2, psd_adjusted=cov.psd_adjusted)
-    result = _cluster_checks(design, spec, codes[: len(spec.inference.by)], result)
-    if spec.inference.bootstrap is not None and se > 0:
-        result = _with_wild(design, spec, pieces, regressors.columns, codes[0], cov.n_clusters[0], result)
-    return result
+    result = _cluster_checks(spec, frame, s, codes, result)
+    kept = None
+    if keep and pieces.coefficients is not None:
+        kept = Coefficients(tuple(terms), np.asarray(pieces.coefficients, dtype=float),
+                            kind.matrix(pieces, **args), float(cov.df))
+    return result, kept
+
+
+def _stacked_covariance(spec: SpecRequest, absorbed_df: int, nested_df: int,
+                        all_codes: list[np.ndarray]) -> CovarianceOf:
+    """The specification's covariance kind for several regressions on the same regressors (see
+    :data:`fegrid.estimators.CovarianceOf`); a two-way matrix is left as it is (no eigenvalue
+    clipping), so that it stays a quadratic function of the residuals."""
+    kind = covariance_kind(spec.inference.kind)
+
+    def covariance(w: np.ndarray, resid: np.ndarray) -> tuple[np.ndarray, float]:
+        n, m = w.shape
+        p = resid.shape[1]
+        bread = np.linalg.inv(w.T @ w)
+        df = kind.t_df(n, m + absorbed_df - (nested_df if kind.dimensions else 0), all_codes)
+        if kind.dimensions == 0 and kind.name == "homoskedastic":
+            return np.kron(resid.T @ resid / (n - m - absorbed_df), bread), df
+        scores = np.column_stack([w * resid[:, [j]] for j in range(p)])
+        meat = kind.meat(scores, n_params=m, absorbed_df=absorbed_df, nested_df=nested_df, clusters=all_codes)
+        big = np.kron(np.eye(p), bread)
+        return big @ meat @ big, df
+
+    return covariance
+
+
+def _with_first_stage(design: _Design, spec: SpecRequest, reg: _IvRegressors, codes: list[np.ndarray],
+                      result: SpecResult) -> SpecResult:
+    """``result`` with the first-stage diagnostics and the Anderson-Rubin set of a 2SLS fit."""
+    s = design.settings
+    covariance = _stacked_covariance(spec, design.absorber.absorbed_df, design.nested_df(spec.inference.by),
+                                     _covariance_codes(spec, codes, design.cluster_codes))
+    w = design.Z[:, reg.instruments]
+    endog = design.Z[:, reg.columns[: reg.n_endogenous]]
+    try:
+        fs = first_stage(w, reg.n_excluded, endog, covariance)
+    except (np.linalg.LinAlgError, EstimationError) as exc:
+        note = f"first-stage diagnostics failed: {exc}"
+        return replace(result, message="; ".join(filter(None, [result.message, note])))
+    names = [design.columns[j] for j in reg.instruments[: reg.n_excluded]]
+    text = "; ".join(f"{n}={c:.6g}" for n, c in zip(names, fs.coefficients[:, 0]))
+    strength = fs.effective_f if reg.n_endogenous == 1 else fs.kp_f
+    label = "effective F" if reg.n_endogenous == 1 else "Kleibergen-Paap F"
+    warning = result.inference_warning
+    if np.isfinite(strength) and strength < s.warn_min_first_stage_f:
+        warning = "; ".join(filter(None, [warning, f"weak first stage: {label} {strength:.3g} < "
+                                                    f"{s.warn_min_first_stage_f:g}"]))
+    out = replace(result, first_stage=text, effective_f=fs.effective_f, kp_f=fs.kp_f,
+                  partial_r2=float(fs.partial_r2[0]), inference_warning=warning)
+    if reg.n_endogenous == 1:
+        ar = anderson_rubin(w, reg.n_excluded, design.Z[:, design.pos[spec.outcome]], endog[:, 0], covariance,
+                            s.level)
+        out = replace(out, ar_p_value=ar.p_value, ar_ci_low=ar.low, ar_ci_high=ar.high, ar_set=ar.description)
+    return out
+
+
+def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    """Poisson PML of one specification on the design's rows, less the separated observations."""
+    s = design.settings
+    regressors = design.regressors(spec.focal, spec.controls)
+    base = _base_result(design, spec, regressors.dropped)
+    if regressors.problem:
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem), None
+    frame = design.frame
+    y = frame[spec.outcome].to_numpy(dtype=float)
+    negative = int(np.count_nonzero(y < 0))
+    if negative:
+        return replace(base, message=f"Poisson PML needs a non-negative outcome: '{spec.outcome}' has {negative} "
+                       "negative value(s) in this sample"), None
+    names = [spec.focal] + [design.columns[j] for j in regressors.columns[1:]]
+    rows = separated_rows(frame, y, names, s.absorb, time=s.time, keep_singletons=s.keep_singletons,
+                          tolerance=s.tolerance, max_iterations=s.max_iterations)
+    n_sep = int(np.count_nonzero(~rows))
+    sub = frame.iloc[np.flatnonzero(rows)]
+    base = replace(base, n_separated=n_sep, n_obs=len(sub))
+    if len(sub) == 0 or not (y[rows] > 0).any():
+        return replace(base, message="every observation is separated (its outcome is zero throughout its "
+                       "effect groups or where the regressors push it): Poisson PML has no estimate"), None
+    codes_of = LevelCodes(sub)
+    x = sub[names].to_numpy(dtype=float)
+    w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
+    # regressors that the separated observations leave constant within the effects are dropped
+    check = Absorber(sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,
+                     max_iterations=s.max_iterations, codes_of=codes_of).demean(x).values
+    raw = np.linalg.norm(x - x.mean(axis=0), axis=0)
+    flat = np.linalg.norm(check, axis=0) <= design.ident_tol * np.maximum(raw, 1e-300)
+    if flat[0]:
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=(
+            f"the focal regressor '{spec.focal}' does not vary within the absorbed effects once the "
+            f"{n_sep} separated observation(s) are removed")), None
+    dropped = [f"{c} (separated)" for c, f in zip(names, flat) if f]
+    names = [c for c, f in zip(names, flat) if not f]
+    x = x[:, ~flat]
+    fit = irls(sub, y[rows], x, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,
+               max_iterations=s.max_iterations, codes_of=codes_of)
+    w_user = np.ones(len(sub)) if w is None else w
+    yk = y[rows]
+    sw = np.sqrt(w_user * fit.mu)
+    xs = np.asfortranarray(fit.demeaned * sw[:, None])
+    e = (yk - fit.mu) * np.sqrt(w_user) / np.sqrt(fit.mu)
+    try:
+        bread = np.linalg.inv(xs.T @ xs)
+    except np.linalg.LinAlgError:
+        return replace(base, message="the Poisson PML information matrix is singular"), None
+    pieces = FitPieces(estimate=float(fit.coefficients[0]), e=e, h=xs @ bread[:, 0], rss=float(e @ e), bread=bread,
+                       within_r2=float("nan"), scores=lambda: xs * e[:, None], coefficients=fit.coefficients)
+    def cluster_of(dim: tuple[str, ...]) -> np.ndarray:
+        return np.unique(design.cluster_codes(dim)[rows], return_inverse=True)[1].ravel()
+
+    codes = [cluster_of(dim) for dim in spec.inference.by]
+    nested = fit.absorber.nested_df(codes) if codes else 0
+    notes = [] if fit.converged else [f"Poisson PML did not converge in {fit.iterations} steps"]
+    base = replace(base, absorbed_df=fit.absorber.absorbed_df, absorb_levels=_fmt_counts(fit.absorber.levels),
+                   iterations=fit.iterations, converged=fit.converged, message="; ".join(notes),
+                   controls_dropped="; ".join(filter(None, [base.controls_dropped, *dropped])),
+                   outcome_mean=float(yk.mean()), outcome_sd=float(yk.std(ddof=1)) if len(yk) > 1 else float("nan"))
+    result, kept = _inference(base, spec, pieces, fit.absorber, nested, codes,
+                              _covariance_codes(spec, codes, cluster_of), sub, s, names, keep)
+    if spec.inference.bootstrap is not None and result.status == STATUS_OK:
+        result = replace(result, message="; ".join(filter(None, [
+            result.message, "the wild cluster bootstrap is computed for least squares only"])))
+    return result, kept
 
 
 def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[int], codes: np.ndarray,
@@ -608,7 +887,7 @@ def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[
                    wild_draws=wild.draws, wild_weights=boot.weights, wild_enumerated=wild.enumerated)
 
 
-def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarray],
+def _cluster_checks(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, codes: Sequence[np.ndarray],
                     result: SpecResult) -> SpecResult:
     """Warnings when clustered inference is fragile (MacKinnon & Webb 2017).
 
@@ -617,10 +896,9 @@ def _cluster_checks(design: _Design, spec: SpecRequest, codes: Sequence[np.ndarr
     """
     if not codes:
         return result
-    s = design.settings
     notes = []
     shares, treated = [], []
-    x = design.frame[spec.focal].to_numpy(dtype=float)
+    x = frame[spec.focal].to_numpy(dtype=float)
     binary = bool(np.isin(x, (0.0, 1.0)).all())
     for dim, c in zip(spec.inference.by, codes):
         name = " x ".join(dim)
@@ -655,6 +933,7 @@ def fit_one(
     keep_singletons: bool = DEFAULTS["estimation.singletons"] == "keep",
     tolerance: float = DEFAULTS["estimation.tolerance"],
     level: float = DEFAULTS["confidence_level"],
+    estimator: Estimator | None = None,
 ) -> SpecResult:
     """Fit one specification; a convenience wrapper around :func:`fit_block`.
 
@@ -670,5 +949,5 @@ def fit_one(
     """
     settings = BlockSettings(absorb=absorb, weights=weights, unit=unit, time=time,
                              keep_singletons=keep_singletons, tolerance=tolerance, level=level)
-    spec = SpecRequest("one", outcome, focal, tuple(controls), inference or Inference())
+    spec = SpecRequest("one", outcome, focal, tuple(controls), inference or Inference(), estimator or Estimator())
     return fit_block(frame, settings, [spec]).results[0]

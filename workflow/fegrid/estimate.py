@@ -688,8 +688,9 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
         pieces = design.fit(spec.outcome, spec.focal, spec.controls)
     codes = [design.cluster_codes(dim) for dim in spec.inference.by]
     all_codes = _covariance_codes(spec, codes, design.cluster_codes)
+    terms = [design.columns[j] for j in regressors.columns]
     result, kept = _inference(base, spec, pieces, design.absorber, design.nested_df(spec.inference.by), codes,
-                              all_codes, design.frame, design.settings, [design.columns[j] for j in regressors.columns], keep)
+                              all_codes, design.frame, design.settings, terms, keep)
     if result.status != STATUS_OK:
         return result, kept
     if two_stage:

@@ -84,19 +84,18 @@ class GridResult:
         """Which single choice, removed from the grid, moves the curve's median most."""
         return influence(self.ledger)
 
-    def figure(self, outcome: str | None = None, focal: str | None = None) -> Figure:
-        """The specification-curve figure of one outcome x focal pair (the only one when not named)."""
+    def figure(self, outcome: str | None = None, focal: str | None = None, curve: str | None = None) -> Figure:
+        """The specification-curve figure of one curve (outcome x focal x curve; the only one when not named)."""
         from .figures import draw_curve
 
         part = self.ledger
-        if outcome is not None:
-            part = part[part["outcome"] == outcome]
-        if focal is not None:
-            part = part[part["focal"] == focal]
-        pairs = sorted({(o, f) for o, f in zip(part["outcome"], part["focal"])})
+        for column, value in (("outcome", outcome), ("focal", focal), ("curve", curve)):
+            if value is not None:
+                part = part[part[column] == value]
+        pairs = sorted({(o, f, c) for o, f, c in zip(part["outcome"], part["focal"], part["curve"])})
         if len(pairs) != 1:
-            listed = ", ".join(f"{o} ~ {f}" for o, f in pairs) or "none"
-            raise FegridError(f"figure() draws one outcome x focal curve; name outcome= and focal= (pairs: {listed}).")
+            listed = ", ".join(f"{o} ~ {f} [{c}]" for o, f, c in pairs) or "none"
+            raise FegridError(f"figure() draws one curve; name outcome=, focal= and curve= (curves: {listed}).")
         return draw_curve(part, level=self.level, labels=self._plan.grid.raw.get("labels"))
 
     def table(self, fmt: str = "markdown") -> str:

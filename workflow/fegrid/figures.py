@@ -170,6 +170,13 @@ def save_curve(fig: Figure, png: str | Path, pdf: str | Path) -> None:
     plt.close(fig)
 
 
+def _only_in(a: pd.DataFrame, b: pd.DataFrame, curve: tuple[str, str, str]) -> int:
+    """Specifications of ``curve`` (outcome, focal, curve) in ledger ``a`` and not in ``b``."""
+    mine = (a["outcome"].astype(str) == curve[0]) & (a["focal"].astype(str) == curve[1]) & (
+        a["curve"].astype(str) == curve[2])
+    return int((mine & ~a["spec_id"].isin(b["spec_id"])).sum())
+
+
 def draw_comparison(old: pd.DataFrame, new: pd.DataFrame, *, level: float = DEFAULTS["confidence_level"],
                     tolerance: float = 1e-8, labels: Mapping[str, str] | None = None) -> Figure:
     """How each specification moved between two ledgers (referee rounds): one panel per outcome x
@@ -180,14 +187,16 @@ def draw_comparison(old: pd.DataFrame, new: pd.DataFrame, *, level: float = DEFA
     alpha = 1.0 - level
     both = old.merge(new, on="spec_id", suffixes=("_old", "_new"))
     both = both[(both["status_old"] == STATUS_OK) & (both["status_new"] == STATUS_OK)]
-    pairs = sorted({(str(o), str(f)) for led in (old, new) for o, f in zip(led["outcome"], led["focal"])})
+    pairs = sorted({(str(o), str(f), str(c)) for led in (old, new)
+                    for o, f, c in zip(led["outcome"], led["focal"], led["curve"])})
     cols = min(len(pairs), 2) or 1
     rows = -(-len(pairs) // cols) if pairs else 1
     fig, axes = plt.subplots(rows, cols, figsize=(WIDTH_IN, 3.2 * rows + 0.4), squeeze=False)
     for ax in axes.ravel()[len(pairs):]:
         ax.set_visible(False)
-    for ax, (outcome, focal) in zip(axes.ravel(), pairs):
-        part = both[(both["outcome_new"].astype(str) == outcome) & (both["focal_new"].astype(str) == focal)]
+    for ax, (outcome, focal, curve) in zip(axes.ravel(), pairs):
+        part = both[(both["outcome_new"].astype(str) == outcome) & (both["focal_new"].astype(str) == focal)
+                    & (both["curve_new"].astype(str) == curve)]
         a, b = part["estimate_old"].to_numpy(dtype=float), part["estimate_new"].to_numpy(dtype=float)
         moved = np.abs(b - a) > tolerance * np.maximum(np.abs(a), 1e-300)
         flipped = (part["p_value_old"].to_numpy(dtype=float) < alpha) != (part["p_value_new"].to_numpy(dtype=float)
@@ -201,11 +210,9 @@ def draw_comparison(old: pd.DataFrame, new: pd.DataFrame, *, level: float = DEFA
             lo, hi = float(np.nanmin([a.min(), b.min()])), float(np.nanmax([a.max(), b.max()]))
             pad = 0.05 * (hi - lo or 1.0)
             ax.plot([lo - pad, hi + pad], [lo - pad, hi + pad], color="#444444", linewidth=0.8, linestyle=(0, (4, 3)))
-        only_old = int(((old["outcome"].astype(str) == outcome) & (old["focal"].astype(str) == focal)
-                        & ~old["spec_id"].isin(new["spec_id"])).sum())
-        only_new = int(((new["outcome"].astype(str) == outcome) & (new["focal"].astype(str) == focal)
-                        & ~new["spec_id"].isin(old["spec_id"])).sum())
-        ax.set_title(f"{display.get(outcome, outcome)} on {display.get(focal, focal)}\n"
+        only_old, only_new = (_only_in(a, b, (outcome, focal, curve)) for a, b in ((old, new), (new, old)))
+        shown_curve = "" if curve == "least_squares" else f" [{curve}]"
+        ax.set_title(f"{display.get(outcome, outcome)} on {display.get(focal, focal)}{shown_curve}\n"
                      f"{len(a)} in both; {only_new} added, {only_old} removed", fontsize=8, loc="left")
         ax.set_xlabel("estimate, old ledger", fontsize=8)
         ax.set_ylabel("estimate, new ledger", fontsize=8)

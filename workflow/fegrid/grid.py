@@ -27,6 +27,7 @@ from .absorb import Term, parse_absorb, term_label
 from .defaults import DEFAULTS, fill_defaults, schema
 from .errors import ConfigError, EstimationError
 from .estimate import RESULT_COLUMNS, BlockSettings, Inference, SpecRequest
+from .estimators import Estimator, parse_estimator
 from .ledger import DIMENSIONS
 from .renames import modernise
 from .samples import Panel, SampleDef, parse_sample
@@ -118,6 +119,12 @@ class Spec:
     controls: tuple[str, ...]
     weights: str | None
     canonical: str
+    estimator: Estimator = Estimator()
+
+    @property
+    def curve(self) -> str:
+        """The specification curve this estimate belongs to (see :class:`fegrid.estimators.Estimator`)."""
+        return self.estimator.curve_name
 
     def name(self, dimension: str) -> str:
         return dict(self.names)[dimension]
@@ -134,7 +141,7 @@ class Spec:
         return json.dumps([self.sample.canonical(), self.weights], sort_keys=True)
 
     def request(self) -> SpecRequest:
-        return SpecRequest(self.spec_id, self.outcome, self.focal, self.controls, self.inference)
+        return SpecRequest(self.spec_id, self.outcome, self.focal, self.controls, self.inference, self.estimator)
 
 
 @dataclass(frozen=True)
@@ -159,6 +166,7 @@ class Grid:
     samples: dict[str, Mapping[str, Any]]
     controls: dict[str, tuple[str, ...]]
     weights: dict[str, str | None]
+    estimators: dict[str, Estimator]
     exclude: tuple[dict[str, Any], ...]
     baseline: dict[str, str]
     level: float
@@ -196,6 +204,8 @@ class Grid:
             "cluster": sorted({c for inf in self.clustering.values() for c in inf.columns()}),
             "sample filter": sorted(set(sample_cols)),
             "weights": sorted({w for w in self.weights.values() if w}),
+            "instrument": sorted({c for e in self.estimators.values() for c in e.instruments}),
+            "endogenous regressor": sorted({c for e in self.estimators.values() for c in e.endogenous}),
             "resampling": [self.resample] if self.draws and self.resample != self.panel.unit else [],
         }
 
@@ -241,9 +251,9 @@ class Grid:
         panel = {"unit": self.panel.unit, "time": self.panel.time}
         specs: dict[str, Spec] = {}
         dims = (self.outcomes, self.focals, self.absorb, self.clustering, samples, self.controls,
-                self.weights)
+                self.weights, self.estimators)
         for combo in itertools.product(*dims):
-            outcome, focal, absorb, clus, sample, controls, weights = combo
+            outcome, focal, absorb, clus, sample, controls, weights, est_name = combo
             names = dict(zip(DIMENSIONS, combo))
             declared = dict(names, sample=samples[sample][0])
             if any(_matches(rule, names, declared) for rule in self.exclude):
@@ -251,6 +261,10 @@ class Grid:
             # a regression of a variable on itself, or controlling for the focal regressor or the
             # outcome, makes no sense: such combinations are left out of the grid (see self_controlled)
             if focal == outcome or {focal, outcome} & set(self.controls[controls]):
+                continue
+            estimator = self.estimators[est_name]
+            # nor does instrumenting a regressor by itself or by the outcome (see self_instrumented)
+            if {focal, outcome} & set(estimator.columns()):
                 continue
             ctrl = tuple(sorted(self.controls[controls]))
             inference = self.clustering[clus]
@@ -264,6 +278,8 @@ class Grid:
                 "weights": self.weights[weights],
                 "panel": panel,
             }
+            if estimator.canonical() is not None:  # least squares adds nothing: ids predate the dimension
+                body["estimator"] = estimator.canonical()
             canonical = json.dumps(body, sort_keys=True)
             spec_id = keys.spec_id(canonical)
             if spec_id in specs:
@@ -284,13 +300,25 @@ class Grid:
                 controls=ctrl,
                 weights=self.weights[weights],
                 canonical=canonical,
+                estimator=estimator,
             )
         if not specs:
-            left_out = self.self_controlled()
+            left_out = self.self_controlled() + self.self_instrumented()
             why = ("; and these combinations are left out because a control set holds the focal regressor "
                    "or the outcome: " + "; ".join(left_out)) if left_out else ""
             raise ConfigError(f"The exclusion rules remove every specification of the grid{why}.")
         return [specs[k] for k in sorted(specs)]
+
+    def self_instrumented(self) -> list[str]:
+        """Outcome x focal x estimator combinations left out of the grid because the estimator
+        instruments (or declares endogenous) the focal regressor or the outcome."""
+        out = []
+        for outcome, focal, name in itertools.product(self.outcomes, self.focals, self.estimators):
+            held = sorted({focal, outcome} & set(self.estimators[name].columns()))
+            if held:
+                out.append(f"estimator '{name}' names {' and '.join(repr(h) for h in held)} as instrument or "
+                           f"endogenous regressor (outcome {outcome}, focal {focal})")
+        return out
 
     def self_controlled(self) -> list[str]:
         """Outcome x focal x control-set combinations left out of the grid because the control set
@@ -334,6 +362,7 @@ class Grid:
             warn_min_clusters=int(self.warnings["min_clusters"]),
             warn_max_cluster_share=float(self.warnings["max_cluster_share"]),
             warn_min_treated_clusters=int(self.warnings["min_treated_clusters"]),
+            warn_min_first_stage_f=float(self.warnings["min_first_stage_f"]),
         )
 
     def settings_key(self) -> str:
@@ -424,6 +453,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     if not controls:
         raise ConfigError("control_sets declares no control set; use named: {none: []} for none.")
     weights = dict(_choices(raw, "weights"))
+    estimators = {name: parse_estimator(name, body) for name, body in _choices(raw, "estimators").items()}
     grid_names = {
         "outcome": list(raw["outcomes"]),
         "focal": list(raw["focal_regressors"]),
@@ -432,6 +462,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         "sample": list(samples),
         "controls": list(controls),
         "weights": list(weights),
+        "estimator": list(estimators),
     }
     for dim in ("outcome", "focal"):
         if len(set(grid_names[dim])) != len(grid_names[dim]):
@@ -465,6 +496,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         samples=samples,
         controls=controls,
         weights=weights,
+        estimators=estimators,
         exclude=exclude,
         baseline=baseline,
         level=float(raw["confidence_level"]),
@@ -538,5 +570,6 @@ def plan_jobs(specs: Sequence[Spec], *, specs_per_job: int, salt: str) -> list[J
 def spec_table(grid: Grid, specs: Sequence[Spec]) -> pd.DataFrame:
     """One row per specification: id, the choice name per dimension, and the baseline flag."""
     base = grid.baseline_id(specs)
-    rows = [{"spec_id": s.spec_id, **dict(s.names), "is_baseline": s.spec_id == base} for s in specs]
-    return pd.DataFrame(rows, columns=["spec_id", *DIMENSIONS, "is_baseline"])
+    rows = [{"spec_id": s.spec_id, **dict(s.names), "curve": s.curve, "is_baseline": s.spec_id == base}
+            for s in specs]
+    return pd.DataFrame(rows, columns=["spec_id", *DIMENSIONS, "curve", "is_baseline"])

@@ -139,7 +139,7 @@ def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.D
     alpha = 1.0 - level
     out = []
     fitted = ledger[ledger["status"] == STATUS_OK]
-    for (outcome, focal), part in fitted.groupby(PAIR, sort=True):
+    for (outcome, focal, curve), part in fitted.groupby(PAIR, sort=True):
         obs_est = part["estimate"].to_numpy(dtype=float)
         dominant = _dominant(obs_est)
         observed = curve_statistics(obs_est, part["p_value"].to_numpy(dtype=float), dominant, alpha)
@@ -161,10 +161,10 @@ def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.D
             else:
                 extreme = sim >= observed[stat]
             out.append({
-                "outcome": outcome, "focal": focal, "statistic": stat, "observed": observed[stat],
+                "outcome": outcome, "focal": focal, "curve": curve, "statistic": stat, "observed": observed[stat],
                 "p_value": float(extreme.mean()) if len(sim) else float("nan"),
                 "draws": int(len(sim)), "specs": int(len(part)),
                 "dominant_sign": "+" if dominant > 0 else "-",
             })
-    return pd.DataFrame(out, columns=["outcome", "focal", "statistic", "observed", "p_value", "draws", "specs",
+    return pd.DataFrame(out, columns=["outcome", "focal", "curve", "statistic", "observed", "p_value", "draws", "specs",
                                       "dominant_sign"])

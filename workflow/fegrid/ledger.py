@@ -18,6 +18,7 @@ from .estimate import RESULT_COLUMNS, STATUS_FAILED, STATUS_NOT_IDENTIFIED, STAT
 __all__ = [
     "DIMENSIONS",
     "PAIR",
+    "DEFAULT_CURVE",
     "STATUS_OK",
     "STATUS_NOT_IDENTIFIED",
     "STATUS_FAILED",
@@ -29,10 +30,16 @@ __all__ = [
 ]
 
 #: The grid's dimensions, in the order the ledger shows them.
-DIMENSIONS: tuple[str, ...] = ("outcome", "focal", "absorb", "clustering", "sample", "controls", "weights")
+DIMENSIONS: tuple[str, ...] = ("outcome", "focal", "absorb", "clustering", "sample", "controls", "weights",
+                               "estimator")
 
-#: A specification curve is drawn, summarised and tested for each outcome x focal regressor pair.
-PAIR: list[str] = ["outcome", "focal"]
+#: A specification curve is drawn, summarised and tested for each outcome x focal regressor x curve:
+#: estimates of different methods (a least-squares slope, a 2SLS coefficient, a Poisson
+#: semi-elasticity) are not comparable, so each method has its own curve unless choices share a name.
+PAIR: list[str] = ["outcome", "focal", "curve"]
+
+#: The curve of least-squares estimates: its files keep the names they had before the estimator dimension.
+DEFAULT_CURVE = "least_squares"
 
 def sample_family(sample: str) -> str:
     """The family of a generated sample: ``drop_each`` names its samples ``<name>:<level>``.
@@ -46,7 +53,7 @@ def sample_family(sample: str) -> str:
 #: Every status a ledger row can have.
 STATUSES: tuple[str, ...] = (STATUS_OK, STATUS_NOT_IDENTIFIED, STATUS_FAILED)
 
-_FRONT = ["spec_id", *DIMENSIONS, "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
+_FRONT = ["spec_id", *DIMENSIONS, "curve", "estimate", "std_error", "t_stat", "p_value", "ci_low", "ci_high",
           "df_inference", "n_obs", "n_clusters", "n_singletons", "within_r2", "status", "message",
           "is_baseline"]
 
@@ -58,7 +65,7 @@ _HINTS = typing.get_type_hints(SpecResult)
 
 #: The type of every ledger column (``string`` columns hold "" rather than a missing value).
 LEDGER_DTYPES: dict[str, str] = {
-    **{c: "string" for c in ("spec_id", *DIMENSIONS)},
+    **{c: "string" for c in ("spec_id", *DIMENSIONS, "curve")},
     "is_baseline": "bool",
     **{f.name: _KIND[_HINTS[f.name].__name__] for f in fields(SpecResult)},
 }
@@ -82,6 +89,10 @@ def read_ledger(path: str | Path) -> pd.DataFrame:
                if c not in frame.columns]
     if missing:
         raise FegridError(f"'{path}' is not a fegrid ledger: it lacks the column(s) {', '.join(missing)}.")
+    if "estimator" not in frame.columns:  # a ledger written before the estimator dimension: least squares
+        frame["estimator"] = DEFAULT_CURVE
+    if "curve" not in frame.columns:
+        frame["curve"] = DEFAULT_CURVE
     for col in frame.columns:
         kind = LEDGER_DTYPES.get(col)
         if kind is None:

@@ -40,7 +40,7 @@ from .demo import write_demo_data
 from .errors import ConfigError, DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
-from .ledger import DIMENSIONS, LEDGER_COLUMNS, read_ledger
+from .ledger import DEFAULT_CURVE, DIMENSIONS, LEDGER_COLUMNS, read_ledger
 from .locations import SOURCE_CHECKOUT
 from .periods import period_numbers
 from .samples import apply_sample
@@ -91,7 +91,7 @@ class _PlanFacts:
     without loading every specification (see :meth:`Plan.for_rules`)."""
 
     n_specs: int
-    pairs: tuple[tuple[str, str], ...]
+    pairs: tuple[tuple[str, str, str], ...]
     joint_key: str
     job_sizes: dict[str, int]
 
@@ -122,11 +122,11 @@ class Plan:
         return self.facts.job_sizes if self.facts else {j.key: len(j.specs) for j in self.jobs}
 
     @property
-    def pairs(self) -> list[tuple[str, str]]:
-        """Outcome x focal pairs of the grid, sorted."""
+    def pairs(self) -> list[tuple[str, str, str]]:
+        """The grid's curves (outcome, focal regressor, curve), sorted."""
         if self.facts:
             return list(self.facts.pairs)
-        return sorted({(s.outcome, s.focal) for s in self.specs})
+        return sorted({(s.outcome, s.focal, s.curve) for s in self.specs})
 
     @property
     def joint_key(self) -> str:
@@ -138,7 +138,7 @@ class Plan:
         return replace(self, specs=(), jobs=tuple(Job(j.key, ()) for j in self.jobs), facts=facts)
 
     def figure_paths(self, ext: str) -> list[Path]:
-        return [self.paths.figure(pair_slug(o, f), ext) for o, f in self.pairs]
+        return [self.paths.figure(pair_slug(*pair), ext) for pair in self.pairs]
 
     def joint_paths(self) -> list[Path]:
         chunks = math.ceil(self.grid.draws / self.grid.draws_per_job) if self.grid.draws else 0
@@ -166,16 +166,17 @@ class Plan:
             out["appendix_pdf"] = paths.file("appendix.pdf")
         out.update({f"table_{name}_{ending}": path for name, files in self.table_paths().items()
                     for ending, path in files.items()})
-        for (outcome, focal), png, pdf in zip(self.pairs, self.figure_paths("png"), self.figure_paths("pdf")):
-            out[f"figure_{outcome}_{focal}_png"] = png
-            out[f"figure_{outcome}_{focal}_pdf"] = pdf
+        for (outcome, focal, curve), png, pdf in zip(self.pairs, self.figure_paths("png"), self.figure_paths("pdf")):
+            name = f"figure_{outcome}_{focal}" + ("" if curve == DEFAULT_CURVE else f"_{curve}")
+            out[f"{name}_png"] = png
+            out[f"{name}_pdf"] = pdf
         return out
 
     def job_names(self, *, build_pdf: bool) -> dict[str, list[str]]:
         """The name of every job of each stage in this run (what its log and benchmark are called)."""
         names = {
             "snapshot_data": ["all"], "fit_job": [j.key for j in self.jobs], "gather_ledger": ["all"],
-            "draw_curve": [pair_slug(o, f) for o, f in self.pairs], "summarise_curve": ["all"],
+            "draw_curve": [pair_slug(*pair) for pair in self.pairs], "summarise_curve": ["all"],
             "draw_null_curves": [f"{self.joint_key}-{i:04d}" for i in range(len(self.joint_paths()))],
             "test_curve": ["all"], "render_appendix": ["all"], "compile_appendix": ["all"] if build_pdf else [],
         }
@@ -620,7 +621,7 @@ def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf:
     from .figures import draw_curve, save_curve  # matplotlib loads only in the jobs that draw
 
     led = read_ledger(ledger)
-    part = led[[pair_slug(o, f) == slug for o, f in zip(led["outcome"], led["focal"])]]
+    part = led[[pair_slug(o, f, c) == slug for o, f, c in zip(led["outcome"], led["focal"], led["curve"])]]
     if part.empty:
         raise FegridError(f"No specification of the ledger belongs to the pair '{slug}'.")
     save_curve(draw_curve(part, level=grid.level, labels=grid.raw.get("labels")), png, pdf)

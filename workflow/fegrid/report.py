@@ -21,7 +21,7 @@ import pandas as pd
 from tabulate import tabulate
 
 from .grid import Grid
-from .ledger import DIMENSIONS, PAIR, STATUS_OK, sample_family
+from .ledger import DEFAULT_CURVE, DIMENSIONS, PAIR, STATUS_OK, sample_family
 from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
 from .summary import choice_medians, curve_summary, influence
@@ -154,11 +154,16 @@ def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, inf
     return "\n".join(lines) + "\n"
 
 
+def _focal(focal: str, curve: str) -> str:
+    """The focal regressor as a table shows it, with its curve when that is not least squares."""
+    return latex_escape(focal) if curve == DEFAULT_CURVE else f"{latex_escape(focal)} [{latex_escape(curve)}]"
+
+
 def _summary_table(summ: pd.DataFrame, level: float) -> str:
     rows = []
     for r in summ.itertuples(index=False):
         rows.append(
-            f"{latex_escape(r.outcome)} & {latex_escape(r.focal)} & {r.specs} & {r.fitted} & "
+            f"{latex_escape(r.outcome)} & {_focal(r.focal, r.curve)} & {r.specs} & {r.fitted} & "
             f"{r.not_identified} & {r.failed} & {_num(r.baseline_estimate)} & "
             f"{'' if not np.isfinite(r.baseline_percentile) else f'{r.baseline_percentile:.0f}'} & "
             f"{_num(r.median)} & [{_num(r.q25)}, {_num(r.q75)}] & [{_num(r.min)}, {_num(r.max)}] & "
@@ -180,7 +185,8 @@ def _joint_table(joint: pd.DataFrame | None) -> str:
     for r in joint.itertuples(index=False):
         p = "" if not np.isfinite(r.p_value) else (f"$<{1 / r.draws:.3g}$" if r.p_value == 0 else f"{r.p_value:.3f}")
         obs = _pct(r.observed) if r.statistic == "share_significant" else _num(r.observed)
-        rows.append(f"{latex_escape(r.outcome)} & {latex_escape(r.focal)} & {names[r.statistic]} & {obs} & {p} "
+        focal = _focal(r.focal, getattr(r, "curve", DEFAULT_CURVE))  # joint tests written before curves had names
+        rows.append(f"{latex_escape(r.outcome)} & {focal} & {names[r.statistic]} & {obs} & {p} "
                     f"& {r.draws} \\\\")
     return "\n".join([r"\begin{tabular}{@{}lllrrr@{}}", r"\toprule",
                       r"outcome & focal & statistic & observed & $p$ & draws \\", r"\midrule", *rows,
@@ -193,10 +199,10 @@ def _shift(x: float, reference: bool) -> str:
 
 def _choices_table(moves: pd.DataFrame) -> str:
     rows = []
-    for (outcome, focal), part in moves.groupby(PAIR, sort=True):
+    for (outcome, focal, curve), part in moves.groupby(PAIR, sort=True):
         for dim, sub in part.groupby("dimension", sort=False):
             for i, r in enumerate(sub.itertuples(index=False)):
-                rows.append(f"{latex_escape(outcome) if i == 0 else ''} & {latex_escape(focal) if i == 0 else ''} & "
+                rows.append(f"{latex_escape(outcome) if i == 0 else ''} & {_focal(focal, curve) if i == 0 else ''} & "
                             f"{latex_escape(dim) if i == 0 else ''} & {latex_escape(r.choice)} & {r.specs} & "
                             f"{_num(r.median)} & {r.matched_pairs if r.choice != r.reference else ''} & "
                             f"{_shift(r.matched_shift, r.choice == r.reference)} \\\\")
@@ -210,7 +216,7 @@ def _influence_table(infl: pd.DataFrame, top: int = 5) -> str:
     if infl.empty:
         return ""
     rows = []
-    others = ["absorb", "clustering", "controls", "weights"]
+    others = ["absorb", "clustering", "controls", "weights", "estimator"]
     for key, group in infl.groupby(["generator", "outcome", "focal", *others], sort=True):
         head = (f"{latex_escape(key[0])}: {latex_escape(key[1])} on {latex_escape(key[2])} "
                 f"({', '.join(latex_escape(k) for k in key[3:])}); reference "
@@ -233,11 +239,11 @@ def _spec_table(ledger: pd.DataFrame, level: float, significance: Significance) 
     head = " & ".join(["id", *dims, "estimate", "s.e.", "$p$", *(["WCR $p$"] if wild else []), "$N$"])
     colspec = "@{}l" + "l" * len(dims) + "rrr" + ("r" if wild else "") + "r@{}"
     body = []
-    order = ["outcome", "focal", *dims, "spec_id"]
-    for (outcome, focal), part in ledger.sort_values(order).groupby(PAIR, sort=True):
+    order = ["outcome", "focal", "curve", *dims, "spec_id"]
+    for (outcome, focal, curve), part in ledger.sort_values(order).groupby(PAIR, sort=True):
         span = 5 + len(dims) + int(wild)
         body.append(rf"\multicolumn{{{span}}}{{@{{}}l}}{{\textbf{{{latex_escape(outcome)} on "
-                    rf"{latex_escape(focal)}}}}} \\")
+                    rf"{_focal(focal, curve)}}}}} \\")
         for r in part.itertuples(index=False):
             cells = [r"\texttt{" + r.spec_id[:8] + "}"] + [latex_escape(getattr(r, d)) for d in dims]
             if r.status == STATUS_OK:
@@ -337,12 +343,12 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
     notes += ("Fixed effects remove only what is fixed within their groups, and a stable curve is not proof of "
               "causality: every specification can share the same flaw.")
     figure_blocks = []
-    for (outcome, focal), path in zip(sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()}), figures):
+    for (outcome, focal, curve), path in zip(sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()}), figures):
         figure_blocks.append("\n".join([
             r"\begin{figure}[p]\centering",
             rf"\includegraphics[width=\linewidth,height={FIGURE_HEIGHT_SHARE}\textheight,keepaspectratio]"
             rf"{{\fegriddir {path}}}",
-            rf"\caption{{Specification curve: {latex_escape(outcome)} on {latex_escape(focal)}. Top: estimates "
+            rf"\caption{{Specification curve: {latex_escape(outcome)} on {_focal(focal, curve)}. Top: estimates "
             rf"sorted, with {level:.0%} confidence intervals, coloured when significant; the baseline is marked. "
             r"Bottom: the choices each specification uses.}".replace("%", r"\%"),
             r"\end{figure}"]))
@@ -405,5 +411,5 @@ def compile_latex(tex: str | Path, pdf: str | Path) -> Path:
 def figure_names(ledger: pd.DataFrame) -> list[str]:
     """Relative paths of the curve figures (PDF), in the order of the sorted outcome x focal pairs."""
     pairs = sorted({tuple(x) for x in ledger[PAIR].to_numpy().tolist()})
-    return [f"figures/curve-{pair_slug(o, f)}.pdf" for o, f in pairs]
+    return [f"figures/curve-{pair_slug(o, f, c)}.pdf" for o, f, c in pairs]
 

@@ -17,7 +17,7 @@ from tabulate import tabulate
 
 from .defaults import DEFAULTS
 from .errors import FegridError
-from .ledger import DIMENSIONS, PAIR, STATUS_OK, read_ledger
+from .ledger import DEFAULT_CURVE, DIMENSIONS, PAIR, STATUS_OK, read_ledger
 from .report import latex_escape
 from .store import RunPaths, write_json, write_text
 
@@ -66,13 +66,14 @@ def _curve_rows(old: pd.DataFrame, new: pd.DataFrame, alpha: float) -> pd.DataFr
     two focal regressors' estimates are on different scales)."""
     rows = []
     pairs = sorted({tuple(p) for led in (old, new) for p in led[PAIR].astype(str).to_numpy().tolist()})
-    for outcome, focal in pairs:
+    for outcome, focal, curve in pairs:
         for name, led in (("old", old), ("new", new)):
-            part = led[(led["outcome"].astype(str) == outcome) & (led["focal"].astype(str) == focal)]
+            part = led[(led["outcome"].astype(str) == outcome) & (led["focal"].astype(str) == focal)
+                       & (led["curve"].astype(str) == curve)]
             ok = part[part["status"] == STATUS_OK]
             base = part[part["is_baseline"]]
             rows.append({
-                "outcome": outcome, "focal": focal, "ledger": name,
+                "outcome": outcome, "focal": focal, "curve": curve, "ledger": name,
                 "fitted": float(len(ok)),
                 "median": float(ok["estimate"].median()) if len(ok) else np.nan,
                 "share_significant": float((ok["p_value"] < alpha).mean()) if len(ok) else np.nan,
@@ -171,9 +172,9 @@ def comparison_latex(cmp: LedgerComparison) -> str:
         ("Specifications added / removed", f"{c['added']} / {c['removed']}", ""),
         ("Specifications changed / unchanged", f"{c['changed']} / {c['unchanged']}", ""),
     ]
-    for (outcome, focal), part in cmp.curve.groupby(["outcome", "focal"], sort=True):
+    for (outcome, focal, curve), part in cmp.curve.groupby(PAIR, sort=True):
         old, new = part.set_index("ledger").loc["old"], part.set_index("ledger").loc["new"]
-        pair = f"{outcome} on {focal}"
+        pair = f"{outcome} on {focal}" + ("" if curve == DEFAULT_CURVE else f" [{curve}]")
         rows += [
             (f"{pair}: fitted specifications", f"{old['fitted']:.0f}", f"{new['fitted']:.0f}"),
             (f"{pair}: median estimate", _fmt(old["median"]), _fmt(new["median"])),

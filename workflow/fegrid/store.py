@@ -93,14 +93,15 @@ def read_fegrid_metadata(path: str | Path) -> dict:
     return json.loads(meta[b"fegrid"]) if b"fegrid" in meta else {}
 
 
-def pair_slug(outcome: str, focal: str) -> str:
-    """File-name-safe name of an outcome x focal pair.
+def pair_slug(outcome: str, focal: str, curve: str = "least_squares") -> str:
+    """File-name-safe name of a curve: outcome, focal regressor and (unless least squares) curve.
 
-    >>> pair_slug("log yield", "irrigation/ha")
-    'log_yield--irrigation_ha'
+    >>> pair_slug("log yield", "irrigation/ha"), pair_slug("y", "x", "poisson_pml")
+    ('log_yield--irrigation_ha', 'y--x--poisson_pml')
     """
     keep = lambda s: "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in s)  # noqa: E731
-    return f"{keep(outcome)}--{keep(focal)}"
+    slug = f"{keep(outcome)}--{keep(focal)}"
+    return slug if curve == "least_squares" else f"{slug}--{keep(curve)}"
 
 
 #: The folder, under the working directory, that holds one folder per run (``reports/<run_name>/``).

@@ -22,7 +22,7 @@ def _percentile_of(values: np.ndarray, x: float) -> float:
 
 
 def curve_summary(ledger: pd.DataFrame, level: float = DEFAULTS["confidence_level"]) -> pd.DataFrame:
-    """One row per outcome x focal pair.
+    """One row per curve (outcome x focal regressor x curve; see :data:`fegrid.ledger.PAIR`).
 
     Columns: counts by status; the baseline's estimate, its percentile in the curve and its
     p-value; the share of fitted estimates with the baseline's sign; the dominant sign (the sign of
@@ -31,7 +31,7 @@ def curve_summary(ledger: pd.DataFrame, level: float = DEFAULTS["confidence_leve
     """
     alpha = 1.0 - level
     rows = []
-    for (outcome, focal), part in ledger.groupby(PAIR, sort=True):
+    for (outcome, focal, curve), part in ledger.groupby(PAIR, sort=True):
         ok = part[part["status"] == STATUS_OK]
         est = ok["estimate"].to_numpy(dtype=float)
         base = part[part["is_baseline"]]
@@ -43,6 +43,7 @@ def curve_summary(ledger: pd.DataFrame, level: float = DEFAULTS["confidence_leve
         rows.append({
             "outcome": outcome,
             "focal": focal,
+            "curve": curve,
             "specs": len(part),
             "fitted": len(ok),
             "not_identified": int((part["status"] == STATUS_NOT_IDENTIFIED).sum()),
@@ -63,7 +64,7 @@ def curve_summary(ledger: pd.DataFrame, level: float = DEFAULTS["confidence_leve
 
 
 #: Columns of :func:`choice_medians`.
-CHOICE_COLUMNS = ["outcome", "focal", "dimension", "choice", "reference", "specs", "median", "matched_pairs",
+CHOICE_COLUMNS = ["outcome", "focal", "curve", "dimension", "choice", "reference", "specs", "median", "matched_pairs",
                   "matched_shift", "dimension_effect"]
 
 
@@ -91,7 +92,7 @@ def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
     """
     ok = ledger[ledger["status"] == STATUS_OK]
     rows = []
-    for (outcome, focal), part in ok.groupby(PAIR, sort=True):
+    for (outcome, focal, curve), part in ok.groupby(PAIR, sort=True):
         for dim in DIMENSIONS:
             if dim in PAIR:
                 continue
@@ -104,7 +105,8 @@ def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
             for choice, row in meds.iterrows():
                 diffs = (table[choice] - table[reference]).dropna() if reference in table else pd.Series([])
                 dim_rows.append({
-                    "outcome": outcome, "focal": focal, "dimension": dim, "choice": choice, "reference": reference,
+                    "outcome": outcome, "focal": focal, "curve": curve,
+                    "dimension": dim, "choice": choice, "reference": reference,
                     "specs": int(row["size"]), "median": float(row["median"]), "matched_pairs": len(diffs),
                     "matched_shift": float(diffs.median()) if len(diffs) else float("nan"),
                 })
@@ -124,12 +126,12 @@ def influence(ledger: pd.DataFrame) -> pd.DataFrame:
     """
     ok = ledger[(ledger["status"] == STATUS_OK) & ledger["sample"].astype(str).str.contains(":", regex=False)]
     columns = ["generator", "dropped", "outcome", "focal", "absorb", "clustering", "controls", "weights",
-               "estimate", "reference", "reference_sample", "change", "rank"]
+               "estimator", "estimate", "reference", "reference_sample", "change", "rank"]
     if ok.empty:
         return pd.DataFrame(columns=columns)
     base = ledger[ledger["is_baseline"]]
     base_sample = str(base["sample"].iloc[0]) if len(base) else ""
-    others = ["outcome", "focal", "absorb", "clustering", "controls", "weights"]
+    others = ["outcome", "focal", "absorb", "clustering", "controls", "weights", "estimator"]
     on_base = ledger[(ledger["sample"] == base_sample) & (ledger["status"] == STATUS_OK)]
     reference = on_base.set_index(others)["estimate"]
     parts = ok["sample"].str.split(":", n=1, expand=True)

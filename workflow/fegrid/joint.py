@@ -101,7 +101,8 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                 rows.extend({"draw": d, "spec_id": s.spec_id, "estimate": np.nan, "std_error": np.nan,
                              "df_inference": np.nan} for s in block)
                 continue
-            fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block])
+            fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block],
+                            coefficients=False)
             rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
                          "df_inference": r.df_inference} for r in fit.results)
     return pd.DataFrame(rows, columns=["draw", "spec_id", "estimate", "std_error", "df_inference"])

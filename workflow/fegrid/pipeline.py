@@ -25,6 +25,8 @@ from typing import Any
 import pandas as pd
 
 from . import keys
+from .coefficients import STORED_COLUMN as COEFFICIENTS
+from .coefficients import coefficient_table, encode, evaluate_combinations
 from .data import (
     CsvOptions,
     check_columns,
@@ -153,6 +155,8 @@ class Plan:
         out = {
             "ledger_csv": paths.ledger_csv,
             "ledger_parquet": paths.ledger_parquet,
+            "coefficients_parquet": paths.coefficients_parquet,
+            "coefficients_csv": paths.coefficients_csv,
             "summary_csv": paths.file("summary.csv"),
             "summary_md": paths.file("summary.md"),
             "summary_tex": paths.file("summary.tex"),
@@ -488,11 +492,11 @@ def fit_job(grid: Grid, snapshot: str | Path, job_key: str, out: str | Path,
         reused_columns += block.columns_reused
         fitted += len(block.results)
         for res in block.results:
-            record = res.record()
+            record = {**res.record(), COEFFICIENTS: encode(block.coefficients.get(res.spec_id))}
             rows[res.spec_id] = record
             if results_store is not None:
                 results_store.put(result_key_of[res.spec_id], record)
-    results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=list(RESULT_COLUMNS))
+    results = pd.DataFrame([rows[k] for k in sorted(rows)], columns=[*RESULT_COLUMNS, COEFFICIENTS])
     log = JobWork(job=job_key, specs=len(results), specs_fitted=fitted, specs_reused=len(rows) - fitted,
                   designs=designs, columns_demeaned=demeaned, columns_reused=reused_columns,
                   fit_seconds=round(fit_seconds, 3), seconds=round(time.perf_counter() - started, 3))
@@ -513,11 +517,19 @@ def gather_ledger(grid: Grid, snapshot: str | Path, fit_files: Iterable[str | Pa
     table = spec_table(grid, _specs_of(grid, Path(snapshot), frame))
     fit_files = [Path(f) for f in fit_files]
     results = pd.concat([pd.read_parquet(f) for f in fit_files], ignore_index=True)
+    encoded = dict(zip(results["spec_id"], results.pop(COEFFICIENTS))) if COEFFICIENTS in results else {}
     ledger = table.merge(results, on="spec_id", how="left", validate="one_to_one")
     missing = ledger["status"].isna()
     if missing.any():
         raise FegridError(f"{int(missing.sum())} specifications have no results; run the fit step again.")
     ledger = ledger[list(LEDGER_COLUMNS)].sort_values("spec_id", ignore_index=True)
+    declared = grid.raw.get("combinations") or {}
+    if declared:  # the config's linear combinations and joint tests, from the kept coefficients
+        extra = evaluate_combinations(encoded, declared, grid.level)
+        ledger = ledger.merge(extra, on="spec_id", how="left", validate="one_to_one")
+    coefficients = coefficient_table(encoded, grid.level)
+    write_parquet(paths.coefficients_parquet, coefficients)
+    write_csv(paths.coefficients_csv, coefficients.drop(columns=["covariance"]))
     logs = [json.loads(f.with_suffix(".json").read_text()) for f in fit_files if f.with_suffix(".json").is_file()]
     write_csv(paths.timings, pd.DataFrame(logs).sort_values("job") if logs else pd.DataFrame())
     write_parquet(paths.ledger_parquet, ledger)

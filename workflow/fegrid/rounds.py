@@ -80,7 +80,7 @@ def _curve_rows(old: pd.DataFrame, new: pd.DataFrame, alpha: float) -> pd.DataFr
                 "baseline_estimate": float(base["estimate"].iloc[0]) if len(base) else np.nan,
                 "baseline_std_error": float(base["std_error"].iloc[0]) if len(base) else np.nan,
             })
-    return pd.DataFrame(rows, columns=["outcome", "focal", "ledger", "fitted", "median", "share_significant",
+    return pd.DataFrame(rows, columns=["outcome", "focal", "curve", "ledger", "fitted", "median", "share_significant",
                                        "baseline_estimate", "baseline_std_error"])
 
 

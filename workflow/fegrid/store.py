@@ -173,6 +173,15 @@ class RunPaths:
         return self.run / "ledger.parquet"
 
     @property
+    def coefficients_parquet(self) -> Path:
+        """Every kept coefficient of every specification, with its covariance row."""
+        return self.run / "coefficients.parquet"
+
+    @property
+    def coefficients_csv(self) -> Path:
+        return self.run / "coefficients.csv"
+
+    @property
     def timings(self) -> Path:
         return self.run / "timings.csv"
 

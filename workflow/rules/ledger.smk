@@ -10,6 +10,8 @@ rule gather_ledger:
     output:
         csv=str(PLAN.paths.ledger_csv),
         parquet=str(PLAN.paths.ledger_parquet),
+        coefficients=str(PLAN.paths.coefficients_parquet),
+        coefficients_csv=str(PLAN.paths.coefficients_csv),
         timings=str(PLAN.paths.timings),
     params:
         grid_digest=GRID_DIGEST,

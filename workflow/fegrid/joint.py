@@ -4,8 +4,11 @@ Is the curve as a whole more than the grid would give under the null of no effec
 specification ``k`` with estimate ``b_k``, the null is imposed by ``y*_k = y - b_k x``; bootstrap
 samples are drawn (the same draw for every specification; whole units or clusters are drawn with
 replacement, never rows, and a unit drawn twice enters as two units); the whole grid is refitted
-on each draw. Because the fit is linear, the estimate on ``y*_k`` is the draw's ordinary estimate
-less ``b_k``, with the same residuals, so each draw is one ordinary refit of the grid.
+on each draw. Because least squares and 2SLS are linear in ``y``, the estimate on ``y*_k`` is the
+draw's ordinary estimate less ``b_k``, with the same residuals, so each draw is one ordinary refit
+of the grid. Poisson PML is not linear in ``y``: its null is imposed multiplicatively,
+``y*_k = y exp(-b_k x)`` (whose conditional mean no longer depends on ``x``), and each draw refits
+the specification on ``y*_k`` (the draw's rows are marked ``imposed``).
 
 Three statistics of the curve are compared with their bootstrap distributions under the null,
 each curve (observed or drawn) read in its own dominant direction, the sign of its median:
@@ -31,11 +34,13 @@ from scipy.special import ndtri, stdtr
 
 from .errors import FegridError
 from .estimate import SpecRequest, fit_block
+from .estimators import POISSON
 from .grid import Grid, Spec
 from .ledger import PAIR, STATUS_OK
 from .samples import apply_sample
 
-__all__ = ["resample_panel", "without_wild", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS"]
+__all__ = ["resample_panel", "without_wild", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS",
+           "DRAW_COLUMNS"]
 
 STATISTICS = ("median_estimate", "share_significant", "stouffer_z")
 
@@ -79,6 +84,7 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
     for spec in specs:
         by_block.setdefault(spec.block_key, []).append(spec)
     rows: list[dict[str, Any]] = []
+    observed = _poisson_estimates(grid, frame, by_block)
     frame = frame.copy(deep=False)
     frame.attrs = {}  # pandas deep-copies attrs at every operation on every draw's copies
     for col in frame.columns:  # text keys as categories: every draw takes, filters and groups them cheaply
@@ -99,13 +105,43 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
             part = samples[skey]
             if part is None:
                 rows.extend({"draw": d, "spec_id": s.spec_id, "estimate": np.nan, "std_error": np.nan,
-                             "df_inference": np.nan} for s in block)
+                             "df_inference": np.nan, "imposed": s.spec_id in observed} for s in block)
                 continue
-            fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block],
-                            coefficients=False)
+            requests = [without_wild(s.request()) for s in block]
+            if any(s.spec_id in observed for s in block):
+                part = part.copy(deep=False)
+                for i, s in enumerate(block):
+                    if s.spec_id in observed:
+                        null_outcome = f"__null__{s.spec_id}"
+                        part[null_outcome] = (part[s.outcome].to_numpy(dtype=float)
+                                              * np.exp(-observed[s.spec_id] * part[s.focal].to_numpy(dtype=float)))
+                        requests[i] = replace(requests[i], outcome=null_outcome)
+            fit = fit_block(part, grid.block_settings(block[0]), requests, coefficients=False)
             rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
-                         "df_inference": r.df_inference} for r in fit.results)
-    return pd.DataFrame(rows, columns=["draw", "spec_id", "estimate", "std_error", "df_inference"])
+                         "df_inference": r.df_inference, "imposed": r.spec_id in observed} for r in fit.results)
+    return pd.DataFrame(rows, columns=DRAW_COLUMNS)
+
+
+#: Columns of a chunk of bootstrap draws.
+DRAW_COLUMNS = ["draw", "spec_id", "estimate", "std_error", "df_inference", "imposed"]
+
+
+def _poisson_estimates(grid: Grid, frame: pd.DataFrame, by_block: dict[str, list[Spec]]) -> dict[str, float]:
+    """The observed estimates of the Poisson PML specifications (their nulls are imposed on the data),
+    refitted here, so that the draws do not wait for the ledger."""
+    out: dict[str, float] = {}
+    for block in by_block.values():
+        wanted = {s.spec_id for s in block if s.estimator.method == POISSON}
+        if not wanted:
+            continue
+        try:
+            part = apply_sample(frame, block[0].sample, grid.panel)
+        except FegridError:
+            continue
+        fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block],
+                        evaluate=wanted, coefficients=False)
+        out.update({r.spec_id: r.estimate for r in fit.results if r.status == STATUS_OK})
+    return out
 
 
 def curve_statistics(estimate: np.ndarray, p_value: np.ndarray, dominant: float, alpha: float) -> dict[str, float]:
@@ -146,7 +182,8 @@ def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.D
         observed = curve_statistics(obs_est, part["p_value"].to_numpy(dtype=float), dominant, alpha)
         merged = draws.merge(part[["spec_id", "estimate"]].rename(columns={"estimate": "observed"}),
                              on="spec_id", how="inner")
-        merged["centered"] = merged["estimate"] - merged["observed"]
+        imposed = merged["imposed"].fillna(False).astype(bool) if "imposed" in merged else False
+        merged["centered"] = np.where(imposed, merged["estimate"], merged["estimate"] - merged["observed"])
         t = merged["centered"] / merged["std_error"]
         merged["p_null"] = 2 * stdtr(merged["df_inference"].to_numpy(dtype=float), -np.abs(t.to_numpy(dtype=float)))
         per_draw = pd.DataFrame([

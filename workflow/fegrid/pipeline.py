@@ -667,11 +667,11 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     """Joint tests of every outcome x focal pair from the ledger and the bootstrap draws."""
     from tabulate import tabulate
 
-    from .joint import joint_tests
+    from .joint import DRAW_COLUMNS, joint_tests
 
     led = read_ledger(ledger)
     draws = (pd.concat([pd.read_parquet(f) for f in draw_files], ignore_index=True) if draw_files
-             else pd.DataFrame(columns=["draw", "spec_id", "estimate", "std_error", "df_inference"]))
+             else pd.DataFrame(columns=DRAW_COLUMNS))
     table = joint_tests(led, draws, grid.level) if draw_files else joint_tests(led.iloc[0:0], draws, grid.level)
     # a p-value of 0 means that no draw was as extreme: all the draws can say is p < 1/draws
     table["p_value_text"] = [("" if p != p else f"< {1 / n:.3g}" if p == 0 else f"{p:.4g}")

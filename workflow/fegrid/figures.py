@@ -29,6 +29,7 @@ import pandas as pd  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
 from .defaults import DEFAULTS  # noqa: E402
+from .estimators import CURVE_LABELS, LEAST_SQUARES  # noqa: E402
 from .ledger import DIMENSIONS, STATUS_OK, sample_family  # noqa: E402
 from .store import pair_slug  # noqa: E402,F401 - re-exported for callers of this module
 
@@ -55,6 +56,17 @@ def print_scale(fig: Figure, width_in: float, height_in: float) -> float:
 
 def _short(name: str) -> str:
     return name if len(name) <= _LABEL_CHARS else name[: _LABEL_CHARS - 1] + "\u2026"
+
+
+def _what(ledger: pd.DataFrame) -> str:
+    """What the curve's estimates are, from the methods of its estimator choices (a curve the user
+    grouped across methods names each of them)."""
+    if "estimator" not in ledger or "curve" not in ledger:
+        return CURVE_LABELS[LEAST_SQUARES]
+    methods = sorted(set(ledger["curve"].astype(str)) & set(CURVE_LABELS))
+    if len(methods) == 1:
+        return CURVE_LABELS[methods[0]]
+    return "estimate (" + ", ".join(sorted(set(ledger["estimator"].astype(str)))) + ")"
 
 
 def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_level"],
@@ -115,7 +127,7 @@ def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_leve
                                   label=f"median {median:.3g}"))
     if handles:
         ax_top.legend(handles=handles, loc="upper left", fontsize=MIN_FONT_PT, frameon=False, ncol=3)
-    ax_top.set_ylabel(f"estimate ({level:.0%} CI)", fontsize=8)
+    ax_top.set_ylabel(f"{_what(ledger)}\n({level:.0%} CI)", fontsize=8)
     ax_top.axhline(median, color="#666666", linewidth=0.8, linestyle=":", zorder=0)
     ax_top.tick_params(labelbottom=False, labelsize=MIN_FONT_PT)
     ax_top.spines[["top", "right"]].set_visible(False)

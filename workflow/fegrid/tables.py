@@ -197,13 +197,16 @@ def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, abs
         rows.append(TableRow(f"{label(term)} effects", cells, "text", "effects"))
     rows.append(TableRow("Clustering", tuple(label(inference_text.get(str(c["clustering"]), str(c["clustering"])))
                                                    for c in cols), "text", "design"))
-    for dim, title in (("sample", "Sample"), ("weights", "Weights")):
-        if len({str(c[dim]) for c in cols}) > 1 or dim == "sample":
+    for dim, title in (("sample", "Sample"), ("weights", "Weights"), ("estimator", "Estimator")):
+        if dim in cols[0] and (len({str(c[dim]) for c in cols}) > 1 or dim == "sample"):
             rows.append(TableRow(title, tuple(label(str(c[dim])) for c in cols), "text", "design"))
     rows += [
         TableRow("Observations", tuple(_count(float(c["n_obs"])) for c in cols), "count", "stats"),
         TableRow("Clusters", tuple(_count(float(c["n_clusters"])) for c in cols), "count", "stats"),
         TableRow("Within R-squared", tuple(_fmt(float(c["within_r2"]), 3) for c in cols), "stat", "stats"),
+        *([TableRow("First-stage F (effective)", tuple(_fmt(float(c["effective_f"]), 2) for c in cols), "stat",
+                    "stats")] if "effective_f" in cols[0] and any(np.isfinite(float(c["effective_f"])) for c in cols)
+          else []),
         TableRow("Mean of outcome", tuple(_fmt(float(c["outcome_mean"]), digits) for c in cols), "stat", "stats"),
         TableRow("SD of outcome", tuple(_fmt(float(c["outcome_sd"]), digits) for c in cols), "stat", "stats"),
     ]

@@ -125,7 +125,9 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
     w_user = np.ones(len(y)) if weights is None else weights
     mu = (y + np.average(y, weights=w_user)) / 2
     eta = np.log(mu)
-    dev_old = _deviance(y, mu, w_user)
+    # the starting means are not of the model's form, so their deviance is no benchmark: the
+    # first step is taken whole, and step halving guards the later ones
+    dev_old = np.inf
     absorbed = np.zeros((len(y), x.shape[1] + 1))
     beta = np.zeros(x.shape[1])
     converged = False
@@ -153,7 +155,7 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
             mu_new = np.exp(np.clip(eta_new, -700, 700))
             dev = _deviance(y, mu_new, w_user)
             halvings += 1
-        change = abs(dev - dev_old) / max(abs(dev), 0.1)
+        change = abs(dev - dev_old) / max(abs(dev), 0.1) if np.isfinite(dev_old) else np.inf
         eta, mu, beta, dev_old = eta_new, mu_new, beta_new, dev
         if change < 1e-10:
             converged = True

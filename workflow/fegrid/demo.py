@@ -6,6 +6,17 @@ unobserved soil quality that raises yield and also leads growers to irrigate mor
 overstates the effect while the within (fixed-effects) estimator recovers the true value,
 :data:`TRUE_EFFECT`. Some orchards were planted late (an unbalanced panel), the fertilizer record
 has a few gaps, and ``organic`` never changes within an orchard, so orchard effects absorb it.
+
+Two further invented columns serve the other estimators (drawn from their own random stream, so
+every column above, and the demo's baseline, is what it was before they existed):
+
+* ``canal_turns``: the turns at the valley canal that the water board's rotation lottery gave the
+  orchard that season. More turns let the grower irrigate more, and the lottery has nothing to do
+  with the orchard's soil or weather, so it is an instrument for irrigation (its first stage is
+  strong by construction);
+* ``frost_damaged_trees``: a count of trees damaged by frost in the season, zero in many seasons.
+  Sprinklers protect trees from frost, so irrigation lowers the expected count by
+  :data:`TRUE_COUNT_EFFECT` log points per 100 mm (a Poisson model with orchard and season effects).
 """
 
 from __future__ import annotations
@@ -17,10 +28,12 @@ import pandas as pd
 
 from .store import write_csv
 
-__all__ = ["TRUE_EFFECT", "DEMO_SEED", "make_orchards", "write_demo_data"]
+__all__ = ["TRUE_EFFECT", "TRUE_COUNT_EFFECT", "DEMO_SEED", "make_orchards", "write_demo_data"]
 
 #: The invented true effect of 100 mm of irrigation on log yield.
 TRUE_EFFECT = 0.08
+#: The invented effect of 100 mm of irrigation on the log of the expected count of frost-damaged trees.
+TRUE_COUNT_EFFECT = -0.15
 DEMO_SEED = 20261201
 
 
@@ -45,12 +58,15 @@ def make_orchards(seed: int = DEMO_SEED, n_valleys: int = 30, per_valley: int = 
     valley_season = rng.normal(0.0, 0.15, (n_valleys, n_seasons))
     rain_vs = rng.normal(5.0, 1.2, (n_valleys, n_seasons))
     rows = []
+    shocks = []  # the irrigation shock of each row: the lottery's part of it is drawn below
     for i in range(n):
         for t in range(first[i], n_seasons + 1):
             v = valley[i]
             rainfall = rain_vs[v, t - 1] + rng.normal(0, 0.4)
             frost = max(0, int(rng.poisson(3 + 0.3 * (v % 5))))
-            irrigation = 3.0 + 0.9 * soil[i] - 0.25 * (rainfall - 5) + rng.normal(0, 0.7)
+            shock = rng.normal(0, 0.7)
+            shocks.append(shock)
+            irrigation = 3.0 + 0.9 * soil[i] - 0.25 * (rainfall - 5) + shock
             fertilizer = 1.0 + 0.2 * soil[i] + rng.normal(0, 0.3)
             log_yield = (
                 1.5 + TRUE_EFFECT * irrigation + 0.45 * soil[i] + 0.03 * rainfall - 0.04 * frost
@@ -63,6 +79,15 @@ def make_orchards(seed: int = DEMO_SEED, n_valleys: int = 30, per_valley: int = 
                                      "rainfall", "frost_days", "fertilizer", "organic", "area_ha"])
     gaps = rng.choice(len(df), size=len(df) // 50, replace=False)
     df.loc[gaps, "fertilizer"] = np.nan
+    # the other estimators' columns, from a stream of their own (see the module docstring)
+    extra = np.random.default_rng([seed, 1])
+    df["canal_turns"] = np.round(4.0 + 1.5 * np.asarray(shocks) + extra.normal(0, 1.0, len(df)), 2)
+    exposure = extra.normal(-0.6, 0.7, n)  # a fixed frost exposure per orchard
+    season_cold = extra.normal(0.0, 0.5, n_seasons)
+    orchard_index = df["orchard"].str[1:].astype(int).to_numpy() - 1
+    rate = np.exp(exposure[orchard_index] + season_cold[df["season"].to_numpy() - 1] + 0.08 * df["frost_days"]
+                  + TRUE_COUNT_EFFECT * df["irrigation"].to_numpy())
+    df["frost_damaged_trees"] = extra.poisson(rate)
     return df
 
 

@@ -271,6 +271,7 @@ class _Design:
         self._fits: dict[tuple[str, str, tuple[str, ...]], FitPieces] = {}
         self._diagnostics: dict[str, _FocalDiagnostics] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
+        self._poisson: dict[tuple[str, str, tuple[str, ...]], object] = {}  # one PML fit per regression
         self._column_keys: dict[str, str] = {}
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
@@ -804,19 +805,57 @@ def _with_first_stage(design: _Design, spec: SpecRequest, reg: _IvRegressors, co
     return out
 
 
+class _PoissonPieces(NamedTuple):
+    """One Poisson PML regression of a design, shared by its covariance choices."""
+
+    base: SpecResult | None  # the result's common fields, or the whole result when it stops early
+    done: bool
+    rows: np.ndarray | None = None
+    sub: pd.DataFrame | None = None
+    fit: object = None
+    names: tuple[str, ...] = ()
+    pieces: FitPieces | None = None
+
+
 def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
-    """Poisson PML of one specification on the design's rows, less the separated observations."""
+    """Poisson PML of one specification on the design's rows, less the separated observations; the
+    fit is shared by the specifications of the design that differ only in their covariance."""
+    key = (spec.outcome, spec.focal, spec.controls)
+    if key not in design._poisson:
+        design._poisson[key] = _fit_poisson(design, spec)
+    got = design._poisson[key]
+    assert isinstance(got, _PoissonPieces) and got.base is not None
+    if got.done:
+        return replace(got.base, spec_id=spec.spec_id), None
+    assert got.rows is not None and got.sub is not None and got.pieces is not None
+    rows, sub, fit = got.rows, got.sub, got.fit
+    base = replace(got.base, spec_id=spec.spec_id)
+
+    def cluster_of(dim: tuple[str, ...]) -> np.ndarray:
+        return np.unique(design.cluster_codes(dim)[rows], return_inverse=True)[1].ravel()
+
+    codes = [cluster_of(dim) for dim in spec.inference.by]
+    nested = fit.absorber.nested_df(codes) if codes else 0  # type: ignore[attr-defined]
+    result, kept = _inference(base, spec, got.pieces, fit.absorber, nested, codes,  # type: ignore[attr-defined]
+                              _covariance_codes(spec, codes, cluster_of), sub, design.settings, list(got.names), keep)
+    if spec.inference.bootstrap is not None and result.status == STATUS_OK:
+        result = replace(result, message="; ".join(filter(None, [
+            result.message, "the wild cluster bootstrap is computed for least squares only"])))
+    return result, kept
+
+
+def _fit_poisson(design: _Design, spec: SpecRequest) -> _PoissonPieces:
     s = design.settings
     regressors = design.regressors(spec.focal, spec.controls)
     base = _base_result(design, spec, regressors.dropped)
     if regressors.problem:
-        return replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem), None
+        return _PoissonPieces(replace(base, status=STATUS_NOT_IDENTIFIED, message=regressors.problem), True)
     frame = design.frame
     y = frame[spec.outcome].to_numpy(dtype=float)
     negative = int(np.count_nonzero(y < 0))
     if negative:
-        return replace(base, message=f"Poisson PML needs a non-negative outcome: '{spec.outcome}' has {negative} "
-                       "negative value(s) in this sample"), None
+        return _PoissonPieces(replace(base, message=f"Poisson PML needs a non-negative outcome: '{spec.outcome}' has "
+                                      f"{negative} negative value(s) in this sample"), True)
     names = [spec.focal] + [design.columns[j] for j in regressors.columns[1:]]
     rows = separated_rows(frame, y, names, s.absorb, time=s.time, keep_singletons=s.keep_singletons,
                           tolerance=s.tolerance, max_iterations=s.max_iterations)
@@ -824,8 +863,9 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     sub = frame.iloc[np.flatnonzero(rows)]
     base = replace(base, n_separated=n_sep, n_obs=len(sub))
     if len(sub) == 0 or not (y[rows] > 0).any():
-        return replace(base, message="every observation is separated (its outcome is zero throughout its "
-                       "effect groups or where the regressors push it): Poisson PML has no estimate"), None
+        return _PoissonPieces(replace(base, message="every observation is separated (its outcome is zero throughout "
+                                      "its effect groups or where the regressors push it): Poisson PML has no "
+                                      "estimate"), True)
     codes_of = LevelCodes(sub)
     x = sub[names].to_numpy(dtype=float)
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
@@ -835,9 +875,9 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     raw = np.linalg.norm(x - x.mean(axis=0), axis=0)
     flat = np.linalg.norm(check, axis=0) <= design.ident_tol * np.maximum(raw, 1e-300)
     if flat[0]:
-        return replace(base, status=STATUS_NOT_IDENTIFIED, message=(
+        return _PoissonPieces(replace(base, status=STATUS_NOT_IDENTIFIED, message=(
             f"the focal regressor '{spec.focal}' does not vary within the absorbed effects once the "
-            f"{n_sep} separated observation(s) are removed")), None
+            f"{n_sep} separated observation(s) are removed")), True)
     dropped = [f"{c} (separated)" for c, f in zip(names, flat) if f]
     names = [c for c, f in zip(names, flat) if not f]
     x = x[:, ~flat]
@@ -851,25 +891,15 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     try:
         bread = np.linalg.inv(xs.T @ xs)
     except np.linalg.LinAlgError:
-        return replace(base, message="the Poisson PML information matrix is singular"), None
+        return _PoissonPieces(replace(base, message="the Poisson PML information matrix is singular"), True)
     pieces = FitPieces(estimate=float(fit.coefficients[0]), e=e, h=xs @ bread[:, 0], rss=float(e @ e), bread=bread,
                        within_r2=float("nan"), scores=lambda: xs * e[:, None], coefficients=fit.coefficients)
-    def cluster_of(dim: tuple[str, ...]) -> np.ndarray:
-        return np.unique(design.cluster_codes(dim)[rows], return_inverse=True)[1].ravel()
-
-    codes = [cluster_of(dim) for dim in spec.inference.by]
-    nested = fit.absorber.nested_df(codes) if codes else 0
     notes = [] if fit.converged else [f"Poisson PML did not converge in {fit.iterations} steps"]
     base = replace(base, absorbed_df=fit.absorber.absorbed_df, absorb_levels=_fmt_counts(fit.absorber.levels),
                    iterations=fit.iterations, converged=fit.converged, message="; ".join(notes),
                    controls_dropped="; ".join(filter(None, [base.controls_dropped, *dropped])),
                    outcome_mean=float(yk.mean()), outcome_sd=float(yk.std(ddof=1)) if len(yk) > 1 else float("nan"))
-    result, kept = _inference(base, spec, pieces, fit.absorber, nested, codes,
-                              _covariance_codes(spec, codes, cluster_of), sub, s, names, keep)
-    if spec.inference.bootstrap is not None and result.status == STATUS_OK:
-        result = replace(result, message="; ".join(filter(None, [
-            result.message, "the wild cluster bootstrap is computed for least squares only"])))
-    return result, kept
+    return _PoissonPieces(base, False, rows, sub, fit, tuple(names), pieces)
 
 
 def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[int], codes: np.ndarray,

@@ -112,7 +112,9 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                 part = part.copy(deep=False)
                 for i, s in enumerate(block):
                     if s.spec_id in observed:
-                        null_outcome = f"__null__{s.spec_id}"
+                        # specifications with the same estimate (other clusterings) share the column, and so
+                        # the design's one Poisson fit
+                        null_outcome = f"__null__{s.outcome}__{s.focal}__{observed[s.spec_id]!r}"
                         part[null_outcome] = (part[s.outcome].to_numpy(dtype=float)
                                               * np.exp(-observed[s.spec_id] * part[s.focal].to_numpy(dtype=float)))
                         requests[i] = replace(requests[i], outcome=null_outcome)

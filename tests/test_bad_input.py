@@ -48,6 +48,12 @@ CONFIG_CASES = {
     "baseline names no choice": (("sample: all,", "sample: everything,"), r"baseline.sample is 'everything'"),
     "bootstrap on robust errors": (("robust: {kind: hc1}", "robust: {kind: hc1, wild_bootstrap: {draws: 99}}"),
                                    r"clustering.robust: the wild cluster bootstrap needs kind 'clustered'"),
+    "unknown instrument column": (("jobs:", "estimators: {iv: {method: two_stage_least_squares, instruments: "
+                                            "[rain]}}\njobs:"), r"instrument column\(s\) 'rain'"),
+    "unknown estimator method": (("jobs:", "estimators: {iv: {method: gmm}}\njobs:"),
+                                 r"'estimators.iv.method' is invalid"),
+    "combination of a column never kept": (("jobs:", "combinations: {c: {total: {value: 1}}}\njobs:"),
+                                           r"'combinations.c' is invalid"),
     "unknown bootstrap weights": (("firm: {kind: clustered, by: firm}",
                                    "firm: {kind: clustered, by: firm, wild_bootstrap: {weights: mammen}}"),
                                   r"'clustering.firm.wild_bootstrap.weights' is invalid"),

@@ -11,7 +11,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from fegrid.demo import TRUE_EFFECT
+from fegrid.demo import TRUE_COUNT_EFFECT, TRUE_EFFECT
 from fegrid.locations import DEMO_CONFIG
 
 pytestmark = pytest.mark.slow
@@ -24,7 +24,8 @@ def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
     assert proc.returncode == 0, proc.stderr[-4000:]
     run = tmp_path / "reports" / "demo"
     ledger = pd.read_csv(run / "ledger.csv")
-    assert len(ledger) == 564
+    assert len(ledger) == 618
+    assert ledger["estimator"].value_counts().to_dict() == {"least_squares": 564, "iv_canal": 30, "poisson": 24}
     base = ledger[ledger["is_baseline"]].iloc[0]
     # the invented truth is recovered by the baseline within its interval; pooled OLS overstates it
     assert base["ci_low"] <= TRUE_EFFECT <= base["ci_high"]
@@ -33,11 +34,29 @@ def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
     organic = ledger[(ledger["focal"] == "organic") & (ledger["absorb"] != "pooled")]
     assert (organic["status"] == "not_identified").all()
     assert "fertilizer" in ledger["controls"].to_string()
+    # the other estimators: 2SLS with the (strong, invented) canal lottery recovers the truth under
+    # orchard effects; Poisson PML recovers the invented count effect; separated orchards are counted
+    iv = ledger[(ledger["estimator"] == "iv_canal") & (ledger["absorb"] == "orchard_season")]
+    assert ((iv["ci_low"] <= TRUE_EFFECT) & (TRUE_EFFECT <= iv["ci_high"])).all()
+    assert (iv["effective_f"] > 100).all() and iv["ar_set"].str.startswith("[").all()
+    pml = ledger[(ledger["estimator"] == "poisson") & (ledger["absorb"] == "orchard_season")]
+    assert ((pml["ci_low"] <= TRUE_COUNT_EFFECT) & (TRUE_COUNT_EFFECT <= pml["ci_high"])).all()
+    assert (pml["n_separated"] > 0).all() and (pml["curve"] == "poisson_pml").all()
+    coefficients = pd.read_csv(run / "coefficients.csv")
+    kept = coefficients[coefficients["spec_id"] == base["spec_id"]].set_index("term")
+    assert list(kept.index) == ["irrigation", "fertilizer", "rainfall"]
+    assert kept.loc["irrigation", "estimate"] == pytest.approx(base["estimate"], rel=1e-12)
+    total = base["combination_irrigation_and_fertilizer_estimate"]
+    assert total == pytest.approx(kept.loc["irrigation", "estimate"] + kept.loc["fertilizer", "estimate"], rel=1e-10)
+    assert 0 <= base["combination_weather_and_inputs_p_value"] <= 1
+    assert sorted(joint["curve"].unique()) == ["least_squares", "poisson_pml", "two_stage_least_squares"]
     joint = pd.read_csv(run / "joint_tests.csv")
     assert (joint["draws"] == 500).all()
     for name in ("manifest.json", "REPLICATION.md", "summary.tex", "appendix.tex", "environment-lock.txt",
                  "Dockerfile", "tables/main.tex", "tables/main.md", "tables/main.html",
-                 "figures/curve-log_yield--irrigation.pdf"):
+                 "figures/curve-log_yield--irrigation.pdf", "tables/estimators.md", "coefficients.parquet",
+                 "figures/curve-log_yield--irrigation--two_stage_least_squares.pdf",
+                 "figures/curve-frost_damaged_trees--irrigation--poisson_pml.pdf"):
         assert (run / name).is_file(), name
     # REPLICATION.md: every section of the data editors' template, each filled from the config and the run
     replication = (run / "REPLICATION.md").read_text()

@@ -184,3 +184,45 @@ def test_renamed_spellings_work_for_one_release_and_keep_spec_ids(tmp_path) -> N
     for foreign in ("u*t", "u#t", "u:t"):
         with pytest.raises(ConfigError, match="only as 'a x b' \\(here 'u x t'\\)"):
             load_config({**raw(("hc1",) * 2 + ("clustered", "two_way_clustered"), {}), "absorb": {"i": [foreign]}})
+
+
+def test_the_estimator_dimension_keeps_least_squares_ids_and_gives_the_others_their_own() -> None:
+    """Least-squares ids are those of a grid without the dimension (the demo's baseline keeps its id);
+    2SLS ids depend on the instruments, not on the choice's name or curve; an estimator that
+    instruments the focal regressor or the outcome is left out; the baseline and exclusions name it."""
+    plain = _ids(BASE)
+    raw = copy.deepcopy(BASE)
+    raw["estimators"] = {"ols": {"method": "least_squares"},
+                         "iv": {"method": "two_stage_least_squares", "instruments": ["capital"]},
+                         "pml": {"method": "poisson_pml", "curve": "counts"}}
+    specs = load_config(raw).expand()
+    by = {name: {s.spec_id for s in specs if s.name("estimator") == name} for name in raw["estimators"]}
+    assert by["ols"] == set(plain)
+    assert not by["iv"] & by["ols"] and not by["pml"] & by["ols"]
+    assert all(s.focal == "value" for s in specs if s.name("estimator") == "iv")  # capital is its instrument
+    assert {s.curve for s in specs} == {"least_squares", "two_stage_least_squares", "counts"}
+    renamed = copy.deepcopy(raw)
+    renamed["estimators"] = {"a": raw["estimators"]["ols"], "b": raw["estimators"]["iv"],
+                             "c": {"method": "poisson_pml", "curve": "other"}}
+    assert {s.spec_id for s in load_config(renamed).expand()} == set().union(*by.values())
+    other = copy.deepcopy(raw)
+    other["estimators"]["iv"]["instruments"] = ["value"]
+    assert not {s.spec_id for s in load_config(other).expand() if s.name("estimator") == "iv"} & by["iv"]
+    raw["exclude"] = [{"estimator": "pml", "absorb": "pooled"}]
+    assert len(load_config(raw).expand()) == len(specs) - len([s for s in specs if s.name("estimator") == "pml"
+                                                                and s.name("absorb") == "pooled"])
+    raw["baseline"] = {"focal": "value", "absorb": "firm", "clustering": "firm", "sample": "all",
+                       "controls": "capital"}
+    grid = load_config(raw)
+    with pytest.raises(ConfigError, match="name a choice for: estimator"):
+        grid.baseline_id(grid.expand())
+    raw["baseline"]["estimator"] = "iv"
+    grid = load_config(raw)
+    assert grid.baseline_id(grid.expand()) in by["iv"]
+    bad = copy.deepcopy(BASE)
+    bad["estimators"] = {"iv": {"method": "two_stage_least_squares"}}
+    with pytest.raises(ConfigError, match="estimators.iv: two-stage least squares needs at least one"):
+        load_config(bad)
+    bad["estimators"] = {"p": {"method": "poisson_pml", "instruments": ["capital"]}}
+    with pytest.raises(ConfigError, match="estimators.p:.*belong to method two_stage_least_squares"):
+        load_config(bad)

@@ -20,6 +20,7 @@ from __future__ import annotations
 import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 import pandas as pd
@@ -422,9 +423,10 @@ class Absorber:
             self._projections = [
                 _Projection(self._codes[i], self._nlev[i], self.w, slopes[i]) for i in active
             ]
-        self.absorbed_df = self._count_df()
-
-    def _count_df(self) -> int:
+    @cached_property
+    def absorbed_df(self) -> int:
+        """Degrees of freedom taken by the absorbed terms (see the Notes); counted when first asked
+        (a Poisson fit builds an absorber per step and asks once)."""
         return self._rank(self._active) if self.terms else 1
 
     def _rank(self, members: Sequence[int]) -> int:

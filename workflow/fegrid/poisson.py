@@ -13,8 +13,9 @@ estimate does not exist (or its effects diverge) with them:
 * effect groups whose outcome is zero throughout (a unit that never records a count), repeated
   with singletons until nothing changes;
 * observations separated by the regressors: zeros that a linear combination of the regressors
-  and effects can push to minus infinity without touching the positive outcomes. They are found
-  by the iterated rectifier of Correia, Guimarães & Zylkin (2021): regress ``u`` (1 for zeros) on
+  and effects can push to minus infinity without touching the positive outcomes. When the
+  regressors and effects have the same rank on the positive outcomes as on all rows, no such
+  combination exists (checked first, cheaply); otherwise they are found by the iterated rectifier of Correia, Guimarães & Zylkin (2021): regress ``u`` (1 for zeros) on
   the regressors and effects with a prohibitive weight on the positive outcomes, replace ``u`` by
   the positive part of the fit, repeat; when the fit is non-negative on the zeros, the zeros with a
   positive fit are separated.
@@ -73,6 +74,9 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
         return keep
     sub = frame.iloc[idx]
     x = sub[list(regressors)].to_numpy(dtype=float)
+    if _positives_span_everything(sub, zeros, x, terms, time=time, tolerance=tolerance,
+                                  max_iterations=max_iterations):
+        return keep
     w = np.where(zeros, 1.0, _PIN)
     absorber = Absorber(sub, terms, weights=w, time=time, tolerance=min(tolerance, 1e-12),
                         max_iterations=max_iterations, codes_of=LevelCodes(sub))
@@ -94,6 +98,30 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
             return keep
         u = np.where(zeros, np.clip(fit, 0, None), 0.0)
     return keep  # no verdict in 100 steps: nothing is dropped (the fit's convergence says the rest)
+
+
+def _positives_span_everything(frame: pd.DataFrame, zeros: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
+                               time: str | None, tolerance: float, max_iterations: int) -> bool:
+    """A sufficient condition for no separation, cheap to check: the regressors and effects have
+    the same rank on the positive outcomes as on all rows. A separating combination vanishes on the
+    positives and not on some zero, so it cannot exist then. Exact for at most two categorical
+    terms (their rank is counted exactly); otherwise ``False`` (the rectifier decides)."""
+    if len(terms) > 2:
+        return False
+    pos = frame.iloc[np.flatnonzero(~zeros)]
+    if len(pos) <= x.shape[1]:
+        return False
+    everything = Absorber(frame, terms, time=time, codes_of=LevelCodes(frame))
+    positives = Absorber(pos, terms, time=time, tolerance=tolerance, max_iterations=max_iterations,
+                         codes_of=LevelCodes(pos))
+    if positives.absorbed_df != everything.absorbed_df:
+        return False
+    xp = positives.demean(x[~zeros]).values
+    if not x.shape[1]:
+        return True
+    r = np.linalg.qr(xp, mode="r")
+    scale = np.linalg.norm(x[~zeros] - x[~zeros].mean(axis=0), axis=0).max()
+    return bool(np.abs(np.diag(r)).min() > 1e-8 * max(scale, 1e-300))
 
 
 class PoissonFit(NamedTuple):

@@ -156,12 +156,10 @@ def test_unknown_key_suggests_the_near_one_and_empty_config(tmp_path) -> None:
         load_config(empty)
 
 
-def test_renamed_spellings_work_for_one_release_and_keep_spec_ids(tmp_path) -> None:
-    """0.2 spellings (covariance kinds, keep_singletons) give the same grid and spec ids as the new
-    ones, with a deprecation message naming the new spelling; interactions are only 'a x b'."""
-    import warnings
-
-    from fegrid.errors import ConfigError, FegridDeprecationWarning
+def test_spellings_removed_in_0_4_are_refused_with_the_new_one_named() -> None:
+    """0.2 spellings (covariance kinds, keep_singletons), accepted with a warning in 0.3, are refused in
+    0.4 with a one-paragraph error naming the new spelling; interactions are only 'a x b'."""
+    from fegrid.errors import ConfigError
 
     def raw(kinds: tuple[str, str, str, str], singletons: dict) -> dict:
         return {"run_name": "r", "data": {"path": "x.csv", "unit": "u", "time": "t"}, "outcomes": ["y"],
@@ -169,21 +167,17 @@ def test_renamed_spellings_work_for_one_release_and_keep_spec_ids(tmp_path) -> N
                 "clustering": {"a": {"kind": kinds[0]}, "b": {"kind": kinds[1]},
                                "c": {"kind": kinds[2], "by": "u"}, "d": {"kind": kinds[3], "by": ["u", "t"]}}}
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        old = load_config(raw(("iid", "robust", "cluster", "twoway"), {"keep_singletons": True}))
-    notes = [str(w.message) for w in caught if issubclass(w.category, FegridDeprecationWarning)]
-    assert len(notes) == 5
-    assert any("estimation.singletons" in n and "singletons: keep" in n for n in notes)
-    assert any("'twoway' is renamed 'two_way_clustered'" in n for n in notes)
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", FegridDeprecationWarning)
-        new = load_config(raw(("homoskedastic", "hc1", "clustered", "two_way_clustered"), {"singletons": "keep"}))
-    assert [s.spec_id for s in old.expand()] == [s.spec_id for s in new.expand()]
-    assert old.keep_singletons and new.keep_singletons
+    new = ("homoskedastic", "hc1", "clustered", "two_way_clustered")
+    assert load_config(raw(new, {"singletons": "keep"})).keep_singletons
+    for i, old in enumerate(("iid", "robust", "cluster", "twoway")):
+        kinds = new[:i] + (old,) + new[i + 1:]
+        with pytest.raises(ConfigError, match=f"'{old}' was renamed '{new[i]}' in fegrid 0.3.*removed in 0.4"):
+            load_config(raw(kinds, {}))
+    with pytest.raises(ConfigError, match="write 'singletons: keep'"):
+        load_config(raw(new, {"keep_singletons": True}))
     for foreign in ("u*t", "u#t", "u:t"):
         with pytest.raises(ConfigError, match="only as 'a x b' \\(here 'u x t'\\)"):
-            load_config({**raw(("hc1",) * 2 + ("clustered", "two_way_clustered"), {}), "absorb": {"i": [foreign]}})
+            load_config({**raw(new, {}), "absorb": {"i": [foreign]}})
 
 
 def test_the_estimator_dimension_keeps_least_squares_ids_and_gives_the_others_their_own() -> None:

@@ -216,3 +216,17 @@ def test_a_time_column_that_is_not_a_date_is_named(grunfeld: pd.DataFrame, tmp_p
            "outcomes": ["invest"], "focal_regressors": ["value"], "joint_inference": {"draws": 0}}
     with pytest.raises(fegrid.FegridError, match=r"time column 'year' is declared monthly.*'spring'"):
         fegrid.fit_grid(raw, progress=False)
+
+
+def test_a_demo_file_from_an_older_generator_is_rewritten(tmp_path) -> None:
+    """The demo's file (INVENTED data) is regenerated when its header is not the generator's (0.3 wrote
+    no instrument or count column)."""
+    from fegrid.demo import DEMO_COLUMNS, is_current_demo, make_orchards, write_demo_data
+
+    path = tmp_path / "orchards.csv"
+    assert not is_current_demo(path)
+    make_orchards(n_valleys=2, per_valley=2).drop(columns=["canal_turns", "frost_damaged_trees"]).to_csv(path,
+                                                                                                        index=False)
+    assert not is_current_demo(path)
+    write_demo_data(path)
+    assert is_current_demo(path) and tuple(make_orchards(n_valleys=2, per_valley=2).columns) == DEMO_COLUMNS

@@ -28,7 +28,12 @@ import pandas as pd
 
 from .store import write_csv
 
-__all__ = ["TRUE_EFFECT", "TRUE_COUNT_EFFECT", "DEMO_SEED", "make_orchards", "write_demo_data"]
+__all__ = ["TRUE_EFFECT", "TRUE_COUNT_EFFECT", "DEMO_SEED", "DEMO_COLUMNS", "make_orchards", "write_demo_data",
+           "is_current_demo"]
+
+#: The demo file's columns, in order (a file written by an older generator lacks some and is rewritten).
+DEMO_COLUMNS = ("orchard", "valley", "season", "log_yield", "irrigation", "rainfall", "frost_days", "fertilizer",
+                "organic", "area_ha", "canal_turns", "frost_damaged_trees")
 
 #: The invented true effect of 100 mm of irrigation on log yield.
 TRUE_EFFECT = 0.08
@@ -89,6 +94,16 @@ def make_orchards(seed: int = DEMO_SEED, n_valleys: int = 30, per_valley: int = 
                   + TRUE_COUNT_EFFECT * df["irrigation"].to_numpy())
     df["frost_damaged_trees"] = extra.poisson(rate)
     return df
+
+
+def is_current_demo(path: str | Path) -> bool:
+    """Whether ``path`` holds a demo file with every column the generator writes."""
+    path = Path(path)
+    if not path.is_file():
+        return False
+    with open(path, encoding="utf-8") as fh:
+        header = fh.readline().strip().split(",")
+    return header == list(DEMO_COLUMNS)
 
 
 def write_demo_data(path: str | Path, seed: int = DEMO_SEED) -> Path:

@@ -38,7 +38,7 @@ from .data import (
     require_file,
 )
 from .defaults import fill_defaults
-from .demo import write_demo_data
+from .demo import is_current_demo, write_demo_data
 from .errors import ConfigError, DataError, FegridError
 from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
@@ -288,7 +288,7 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     """
     grid = load_config(config)
     path = Path(grid.data_path)
-    if prepare and grid.raw["data"].get("demo") and not path.exists():
+    if prepare and grid.raw["data"].get("demo") and not is_current_demo(path):
         write_demo_data(path)
     require_file(path)
     data_sha = file_sha256(path)

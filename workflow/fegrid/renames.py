@@ -1,8 +1,8 @@
-"""Config spellings renamed in fegrid 0.3, accepted for one release with a deprecation message.
+"""Config spellings renamed in fegrid 0.3 and removed in 0.4.
 
-Each old spelling still works in 0.3.x: the config is rewritten to the new spelling before it is
-checked (so spec ids do not change), and a :class:`FegridDeprecationWarning` names the new key or
-value. Release 0.4 removes them.
+fegrid 0.3 accepted the old spellings with a deprecation message; since 0.4 a config that uses one
+is refused with a one-paragraph error that names the new spelling (spec ids never depended on the
+spelling, so rewriting the config changes no id and refits nothing).
 
 ================================= =================================== ============================
 old spelling                      new spelling                        why
@@ -19,22 +19,20 @@ old spelling                      new spelling                        why
                                                                       Gelbach & Miller 2011)
 ================================= =================================== ============================
 
->>> import warnings
->>> with warnings.catch_warnings(record=True) as caught:
-...     warnings.simplefilter("always")
-...     new = modernise({"clustering": {"c": {"kind": "cluster", "by": "u"}}})
->>> new["clustering"]["c"]["kind"], str(caught[0].message)[:51]
-('clustered', "clustering.c.kind: 'cluster' is renamed 'clustered'")
+>>> try:
+...     modernise({"clustering": {"c": {"kind": "cluster", "by": "u"}}})
+... except Exception as exc:
+...     print(str(exc)[:62])
+clustering.c.kind: 'cluster' was renamed 'clustered' in fegrid
 """
 
 from __future__ import annotations
 
 import copy
-import warnings
 from collections.abc import Mapping
 from typing import Any
 
-from .errors import FegridDeprecationWarning
+from .errors import ConfigError
 
 __all__ = ["KIND_RENAMES", "modernise"]
 
@@ -42,26 +40,23 @@ __all__ = ["KIND_RENAMES", "modernise"]
 KIND_RENAMES = {"iid": "homoskedastic", "robust": "hc1", "cluster": "clustered", "twoway": "two_way_clustered"}
 
 
-def _say(text: str) -> None:
-    warnings.warn(f"{text}; the old spelling is accepted in fegrid 0.3 only.", FegridDeprecationWarning,
-                  stacklevel=3)
+def _refuse(text: str) -> None:
+    raise ConfigError(f"{text} in fegrid 0.3, and the old spelling was removed in 0.4; write the new one "
+                      "(spec ids do not change, nothing is refitted).")
 
 
 def modernise(raw: Mapping[str, Any]) -> dict[str, Any]:
-    """A copy of ``raw`` with every renamed key or value in its new spelling (a warning for each)."""
+    """A copy of ``raw``, refused with the new spelling named when it uses a removed one."""
     out = copy.deepcopy(dict(raw))
     est = out.get("estimation")
     if isinstance(est, dict) and "keep_singletons" in est:
-        keep = est.pop("keep_singletons")
-        if "singletons" not in est:
-            est["singletons"] = "keep" if keep else "drop"
-        _say(f"estimation.keep_singletons is renamed estimation.singletons (write 'singletons: "
-             f"{'keep' if keep else 'drop'}')")
+        keep = est["keep_singletons"]
+        _refuse(f"estimation.keep_singletons was renamed estimation.singletons (write 'singletons: "
+                f"{'keep' if keep else 'drop'}')")
     clustering = out.get("clustering")
     if isinstance(clustering, dict):
         for name, body in clustering.items():
             if isinstance(body, dict) and body.get("kind") in KIND_RENAMES:
                 old = body["kind"]
-                body["kind"] = KIND_RENAMES[old]
-                _say(f"clustering.{name}.kind: '{old}' is renamed '{KIND_RENAMES[old]}'")
+                _refuse(f"clustering.{name}.kind: '{old}' was renamed '{KIND_RENAMES[old]}'")
     return out

@@ -16,9 +16,10 @@ estimate does not exist (or its effects diverge) with them:
   and effects can push to minus infinity without touching the positive outcomes. When the
   regressors and effects have the same rank on the positive outcomes as on all rows, no such
   combination exists (checked first, cheaply); otherwise they are found by the iterated rectifier
-  of Correia, Guimarães & Zylkin (2021): regress ``u`` (1 for zeros) on the regressors and effects with a prohibitive weight on the positive outcomes, replace ``u`` by
-  the positive part of the fit, repeat; when the fit is non-negative on the zeros, the zeros with a
-  positive fit are separated.
+  of Correia, Guimarães & Zylkin (2021): regress ``u`` (1 for zeros) on the regressors and
+  effects with a prohibitive weight on the positive outcomes, replace ``u`` by the positive part
+  of the fit, repeat; when the fit is non-negative on the zeros and zero on the positive
+  outcomes, the zeros with a positive fit are separated.
 
 Both counts land in the ledger (``n_separated``), like singletons.
 """

@@ -8,7 +8,9 @@ version, and holds no state.
 key            what it hashes                        what gives a new key
 ============== ===================================== ==================================================
 spec id        a specification's canonical content   what is estimated (not the choices' names or
-               (12 hex)                              their order in the config)
+               (12 hex); an estimator other than     their order in the config); least squares adds
+               least squares adds its method and     nothing, so its ids predate the estimator
+               instruments                           dimension
 data file      the data file's bytes (SHA-256)       any byte of the file
 snapshot       the data file's hash, the grid's      the file, a column added to or removed from the
                columns, how the file is read (CSV    grid, another CSV option or time frequency,

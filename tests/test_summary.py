@@ -87,3 +87,19 @@ def test_summary_markdown_prints_blanks_and_one_row_per_family(wage_panel: pd.Da
     assert f"| {len(fitted)} " in family[0].replace("  ", " ").replace("  ", " ") or str(len(fitted)) in family[0]
     # choices.csv keeps every level
     assert pd.read_csv(paths["choices_csv"])["choice"].str.startswith("without_occupation:").sum() >= 9
+
+
+def test_estimates_of_another_method_are_their_own_curve(wage_ledger: pd.DataFrame, tmp_path: Path) -> None:
+    """The same outcome and focal regressor estimated by another method (here relabelled) is a second
+    curve in every summary: its own row, named by its curve, never pooled with least squares."""
+    other = wage_ledger.assign(spec_id=wage_ledger["spec_id"] + "x", estimator="iv", curve="two_stage_least_squares",
+                               is_baseline=False, estimate=wage_ledger["estimate"] * 10)
+    both = pd.concat([wage_ledger, other], ignore_index=True)
+    summ = curve_summary(both, 0.95)
+    assert len(summ) == 2 * len(curve_summary(wage_ledger, 0.95))
+    iv = summ[summ["curve"] == "two_stage_least_squares"]
+    ls = summ[summ["curve"] == "least_squares"]
+    pd.testing.assert_series_equal(iv.set_index("focal")["median"], 10 * ls.set_index("focal")["median"], rtol=1e-12)
+    paths = write_summaries(both, 0.95, tmp_path)
+    assert "two_stage_least_squares" in paths["summary_md"].read_text()
+    assert "[two\\_stage\\_least\\_squares]" in paths["summary_tex"].read_text()

@@ -77,7 +77,7 @@ MATCHED_NOTE_TEX = (
 
 
 def write_summaries(ledger: pd.DataFrame, level: float, out_dir: str | Path) -> dict[str, Path]:
-    """summary.csv / .md / .tex (one row per outcome x focal) and choices.csv / .md (per choice)."""
+    """summary.csv / .md / .tex (one row per curve) and choices.csv / .md (per choice)."""
     out_dir = Path(out_dir)
     summ = curve_summary(ledger, level)
     moves = choice_medians(ledger)
@@ -117,7 +117,7 @@ def collapse_families(moves: pd.DataFrame) -> pd.DataFrame:
     if not generated.any():
         return moves
     rows = []
-    for _, part in moves[generated].groupby(["outcome", "focal", "dimension"], sort=False):
+    for _, part in moves[generated].groupby([*PAIR, "dimension"], sort=False):
         for fam, members in part.groupby(part["choice"].astype(str).map(sample_family), sort=True):
             row = members.iloc[0].copy()
             row["choice"] = f"{fam} (each of {len(members)})"
@@ -129,13 +129,13 @@ def collapse_families(moves: pd.DataFrame) -> pd.DataFrame:
             rows.append(row)
     out = pd.concat([moves[~generated], pd.DataFrame(rows)], ignore_index=True)
     order = {d: i for i, d in enumerate(DIMENSIONS)}
-    return out.sort_values(["outcome", "focal", "dimension", "choice"], key=lambda s: s.map(order) if s.name ==
+    return out.sort_values([*PAIR, "dimension", "choice"], key=lambda s: s.map(order) if s.name ==
                            "dimension" else s, kind="stable", ignore_index=True)
 
 
 def _summary_markdown(summ: pd.DataFrame, moves: pd.DataFrame, level: float, infl: pd.DataFrame) -> str:
     lines = ["# Specification curve summary", ""]
-    cols = {"outcome": "outcome", "focal": "focal", "specs": "specs", "fitted": "fitted",
+    cols = {"outcome": "outcome", "focal": "focal", "curve": "curve", "specs": "specs", "fitted": "fitted",
             "not_identified": "not identified", "failed": "failed", "baseline_estimate": "baseline",
             "baseline_percentile": "baseline percentile", "median": "median", "q25": "q25", "q75": "q75",
             "min": "min", "max": "max", "share_baseline_sign": "share with baseline's sign",

@@ -267,20 +267,20 @@ def _print_summary(ledger_path: Path, level: float) -> None:
     ledger = read_ledger(ledger_path)
     summ = curve_summary(ledger, level)
     print(f"\nledger: {ledger_path} ({len(ledger)} specifications)")
-    cols = ["outcome", "focal", "specs", "fitted", "not_identified", "failed", "baseline_estimate",
+    cols = ["outcome", "focal", "curve", "specs", "fitted", "not_identified", "failed", "baseline_estimate",
             "baseline_percentile", "median", "q25", "q75", "share_baseline_sign",
             "share_significant_dominant"]
     print(tabulate([[_fmt(v) for v in row] for row in summ[cols].itertuples(index=False)],
-                   headers=["outcome", "focal", "specs", "fitted", "not id.", "failed", "baseline",
+                   headers=["outcome", "focal", "curve", "specs", "fitted", "not id.", "failed", "baseline",
                             "base pct", "median", "q25", "q75", "same sign", f"signif. ({1 - level:.2g})"]))
     moves = choice_medians(ledger)
     moves = moves[moves["dimension_effect"] > 0]
     if len(moves):
-        keys = ["outcome", "focal", "dimension"]
+        keys = ["outcome", "focal", "curve", "dimension"]
         top = moves.sort_values("dimension_effect", ascending=False).drop_duplicates(keys).head(6)
         print("\ndimensions that move the estimate most (median change over specifications that differ only "
               "in that dimension):")
-        print(tabulate([[r.outcome, r.focal, r.dimension, _fmt(r.dimension_effect)] for r in top.itertuples()],
+        print(tabulate([[r.outcome, r.focal, r.curve, r.dimension, _fmt(r.dimension_effect)] for r in top.itertuples()],
                        headers=[*keys, "largest matched shift"]))
 
 

@@ -24,8 +24,8 @@ def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
     assert proc.returncode == 0, proc.stderr[-4000:]
     run = tmp_path / "reports" / "demo"
     ledger = pd.read_csv(run / "ledger.csv")
-    assert len(ledger) == 618
-    assert ledger["estimator"].value_counts().to_dict() == {"least_squares": 564, "iv_canal": 30, "poisson": 24}
+    assert len(ledger) == 582
+    assert ledger["estimator"].value_counts().to_dict() == {"least_squares": 564, "iv_canal": 10, "poisson": 8}
     base = ledger[ledger["is_baseline"]].iloc[0]
     # the invented truth is recovered by the baseline within its interval; pooled OLS overstates it
     assert base["ci_low"] <= TRUE_EFFECT <= base["ci_high"]

@@ -276,20 +276,16 @@ class _Projection:
     """Residual maker of one term on fixed rows, in the inner product weighted by ``w``."""
 
     def __init__(self, codes: np.ndarray, n_groups: int, w: np.ndarray, slope: np.ndarray | None):
-        n = len(codes)
         self.codes = codes
         self.w = w
         self.unweighted = bool(np.all(w == 1.0))
-        self.sum_op = sp.csr_array(
-            (w, (codes, np.arange(n))), shape=(n_groups, n)
-        )  # rows: groups, entries: weights, so sum_op @ X gives weighted group sums
-        wsum = self.sum_op @ np.ones(n)
+        wsum = np.bincount(codes, w, minlength=n_groups)  # weighted group sizes
         self.inv_wsum = np.divide(1.0, wsum, out=np.zeros_like(wsum), where=wsum > 0)
         self.slope = None
         if slope is not None:
-            tbar = (self.sum_op @ slope) * self.inv_wsum
+            tbar = np.bincount(codes, w * slope, minlength=n_groups) * self.inv_wsum
             tc = slope - tbar[codes]
-            ss = self.sum_op @ (tc * tc)
+            ss = np.bincount(codes, w * (tc * tc), minlength=n_groups)
             # groups where time does not vary get no slope: the intercept alone is projected out
             self.inv_ss = np.divide(1.0, ss, out=np.zeros_like(ss), where=ss > 1e-12 * (1 + ss.max()))
             self.slope = tc

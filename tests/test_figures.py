@@ -73,3 +73,26 @@ def test_figure_labels_are_legible_at_print_size(wage_panel: pd.DataFrame, tmp_p
     est, p = ledger.loc[ledger["status"] == "ok", "estimate"], ledger.loc[ledger["status"] == "ok", "p_value"]
     assert any("negative" in t for t in legend) == bool(((est < 0) & (p < 0.05)).any())
     assert any("not significant" in t for t in legend) == bool((p >= 0.05).any())
+
+
+def test_a_long_title_wraps_inside_the_figure() -> None:
+    """Every choice fixed across a curve is named in the title, wrapped whole ("dimension = choice")
+    and drawn inside the figure (a one-line title ran off the page once the estimator was named)."""
+    import numpy as np
+    import pandas as pd
+
+    from fegrid.figures import draw_curve
+    from fegrid.ledger import DIMENSIONS
+
+    n = 6
+    frame = pd.DataFrame({d: [f"a_long_choice_name_for_{d}"] * n for d in DIMENSIONS})
+    frame = frame.assign(spec_id=[f"{i:012x}" for i in range(n)], absorb=[f"effects_{i % 2}" for i in range(n)],
+                         estimate=np.linspace(-1, 1, n), ci_low=np.linspace(-2, 0, n), ci_high=np.linspace(0, 2, n),
+                         p_value=0.01, status="ok", is_baseline=False, curve="poisson_pml", estimator="poisson")
+    fig = draw_curve(frame)
+    fig.canvas.draw()
+    drawn = fig.get_tightbbox(fig.canvas.get_renderer())  # inches, every artist, the title included
+    assert drawn.x1 <= fig.get_figwidth() + 1e-6 and drawn.y1 <= fig.get_figheight() + 1e-6
+    title = fig.axes[0].get_title(loc="left")
+    assert title.count("\n") >= 2 and "estimator = poisson" in title
+    assert "semi-elasticity" in fig.axes[0].get_ylabel()

@@ -17,6 +17,7 @@ the factor a page of given size would shrink it by.
 
 from __future__ import annotations
 
+import textwrap
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -58,6 +59,10 @@ def _short(name: str) -> str:
     return name if len(name) <= _LABEL_CHARS else name[: _LABEL_CHARS - 1] + "\u2026"
 
 
+#: Characters per title line: the axes are 66% of the figure's width (4.45 in), at 9 pt.
+_TITLE_CHARS = 62
+
+
 def _what(ledger: pd.DataFrame) -> str:
     """What the curve's estimates are, from the methods of its estimator choices (a curve the user
     grouped across methods names each of them)."""
@@ -88,10 +93,29 @@ def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_leve
     rows: list[tuple[str, str]] = [(d, c) for d in dims for c in sorted(ok[d].unique(), key=str)]
     bottom_in = max(0.6, _ROW_INCHES * (len(rows) + 1.3 * len(dims)) + 0.5)
     top_in = 2.8
-    fig = plt.figure(figsize=(WIDTH_IN, top_in + bottom_in + 0.9))
+    # the title: what is plotted, then the choices every specification shares, wrapped to the axes
+    not_fitted = len(ledger) - n
+    head = title or f"{shown(ledger['outcome'].iloc[0])} on {shown(ledger['focal'].iloc[0])}"
+    fixed = [f"{d} = {shown(ok[d].iloc[0])}" for d in dimensions
+             if d not in ("outcome", "focal") and n and ok[d].nunique() == 1]
+    title_lines = textwrap.wrap(f"{head}: {n} fitted specifications"
+                                + (f" ({not_fitted} not identified or failed, not shown)" if not_fitted else ""),
+                                _TITLE_CHARS)
+    line = "in every one:"
+    for i, item in enumerate(fixed):  # whole "dimension = choice" items per line
+        text = item + (";" if i < len(fixed) - 1 else "")
+        if len(line) + 1 + len(text) > _TITLE_CHARS:
+            title_lines.append(line)
+            line = text
+        else:
+            line = f"{line} {text}"
+    if fixed:
+        title_lines.append(line)
+    head_in = 0.25 + 0.16 * len(title_lines)
+    fig = plt.figure(figsize=(WIDTH_IN, top_in + bottom_in + 0.65 + head_in))
+    height = top_in + bottom_in + 0.65 + head_in
     grid = fig.add_gridspec(2, 1, height_ratios=[top_in, bottom_in], hspace=0.06,
-                            left=0.32, right=0.98, top=1 - 0.55 / (top_in + bottom_in + 0.9),
-                            bottom=0.45 / (top_in + bottom_in + 0.9))
+                            left=0.32, right=0.98, top=1 - head_in / height, bottom=0.45 / height)
     ax_top = fig.add_subplot(grid[0])
     ax_bot = fig.add_subplot(grid[1], sharex=ax_top)
     x = np.arange(n)
@@ -126,19 +150,12 @@ def draw_curve(ledger: pd.DataFrame, *, level: float = DEFAULTS["confidence_leve
         handles.append(plt.Line2D([], [], color="#666666", linewidth=0.8, linestyle=":",
                                   label=f"median {median:.3g}"))
     if handles:
-        ax_top.legend(handles=handles, loc="upper left", fontsize=MIN_FONT_PT, frameon=False, ncol=3)
+        ax_top.legend(handles=handles, loc="best", fontsize=MIN_FONT_PT, frameon=False, ncol=3)
     ax_top.set_ylabel(f"{_what(ledger)}\n({level:.0%} CI)", fontsize=8)
     ax_top.axhline(median, color="#666666", linewidth=0.8, linestyle=":", zorder=0)
     ax_top.tick_params(labelbottom=False, labelsize=MIN_FONT_PT)
     ax_top.spines[["top", "right"]].set_visible(False)
-    not_fitted = len(ledger) - n
-    head = title or f"{shown(ledger['outcome'].iloc[0])} on {shown(ledger['focal'].iloc[0])}"
-    fixed = [f"{d} = {shown(ok[d].iloc[0])}" for d in dimensions
-             if d not in ("outcome", "focal") and n and ok[d].nunique() == 1]
-    ax_top.set_title(f"{head}: {n} fitted specifications"
-                     + (f" ({not_fitted} not identified or failed, not shown)" if not_fitted else "")
-                     + (f"\nin every one: {'; '.join(fixed)}" if fixed else ""),
-                     fontsize=9, loc="left")
+    ax_top.set_title("\n".join(title_lines), fontsize=9, loc="left")
 
     # bottom panel: one row per choice, grouped by dimension under a header row naming it
     ypos, labels, headers, y = {}, [], [], 0.0

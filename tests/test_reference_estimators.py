@@ -303,3 +303,16 @@ def test_poisson_pml_on_hours_worked_matches_statsmodels_glm(wages) -> None:
     ref = sm.GLM(kept["hours"], x, family=sm.families.Poisson()).fit(tol=1e-13, scale="X2")
     assert r.estimate == pytest.approx(ref.params["union"], rel=1e-7)
     assert r.std_error == pytest.approx(ref.bse["union"], rel=1e-6)
+
+
+def test_the_wild_bootstrap_is_left_to_least_squares_and_says_so(wages) -> None:
+    """A clustering choice with a wild cluster bootstrap gives 2SLS and Poisson PML their clustered
+    inference and a message, never a least-squares bootstrap p-value under their name."""
+    from fegrid.wild import WildBootstrap
+
+    inference = Inference("clustered", (("nr",),), WildBootstrap(draws=99, seed=1))
+    for estimator, outcome in ((TWO_SLS, "lwage"), (Estimator("poisson_pml"), "hours")):
+        r = fit_one(wages, outcome, "hours" if outcome == "lwage" else "union", absorb=parse_absorb(["nr", "year"]),
+                    inference=inference, estimator=estimator, unit="nr", time="year")
+        assert r.status == "ok" and math.isnan(r.wild_p_value) and r.wild_draws == 0
+        assert "wild cluster bootstrap is computed for least squares only" in r.message

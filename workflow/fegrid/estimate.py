@@ -698,12 +698,15 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
     if spec.inference.bootstrap is not None and result.std_error > 0:
-        if two_stage:
-            result = replace(result, message="; ".join(filter(None, [
-                result.message, "the wild cluster bootstrap is computed for least squares only"])))
-        else:
-            result = _with_wild(design, spec, pieces, regressors.columns, codes[0], result.n_clusters, result)
+        result = (_without_wild(result) if two_stage else
+                  _with_wild(design, spec, pieces, regressors.columns, codes[0], result.n_clusters, result))
     return result, kept
+
+
+def _without_wild(result: SpecResult) -> SpecResult:
+    """A 2SLS or Poisson PML result of a clustering choice that asks for the wild cluster bootstrap."""
+    return replace(result, message="; ".join(filter(None, [
+        result.message, "the wild cluster bootstrap is computed for least squares only"])))
 
 
 def _covariance_codes(spec: SpecRequest, codes: list[np.ndarray],
@@ -839,8 +842,7 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     result, kept = _inference(base, spec, got.pieces, fit.absorber, nested, codes,  # type: ignore[attr-defined]
                               _covariance_codes(spec, codes, cluster_of), sub, design.settings, list(got.names), keep)
     if spec.inference.bootstrap is not None and result.status == STATUS_OK:
-        result = replace(result, message="; ".join(filter(None, [
-            result.message, "the wild cluster bootstrap is computed for least squares only"])))
+        result = _without_wild(result)
     return result, kept
 
 

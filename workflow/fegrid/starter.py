@@ -156,6 +156,13 @@ def starter_config(data_path: str, guess: PanelGuess, run_name: str) -> str:
         lines.append("  named: {none: []}")
     lines += [
         "",
+        "# Estimators (a grid dimension; least squares alone when left out). Uncomment to add 2SLS with",
+        "# your instrument(s), or Poisson PML for a count or other non-negative outcome with zeros.",
+        "# estimators:",
+        "#   least_squares: {method: least_squares}",
+        "#   iv: {method: two_stage_least_squares, instruments: [YOUR_INSTRUMENT]}",
+        "#   poisson: {method: poisson_pml}",
+        "",
         "confidence_level: 0.95",
         "",
         "# Joint tests across the curve (bootstrap draws under the null); 0 turns them off.",

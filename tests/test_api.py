@@ -72,6 +72,13 @@ def test_summary_figure_tables_and_joint_tests(tmp_path: Path, wage_panel: pd.Da
     assert (joint["draws"] == 4).all()
     with pytest.raises(fegrid.FegridError, match="formats are"):
         result.table("html5")
+    # every kept coefficient: the focal rows are the ledger's estimates and standard errors
+    coefs = result.coefficients()
+    focal = coefs[coefs["position"] == 0].set_index("spec_id")
+    ok = result.ledger[result.ledger["status"] == "ok"].set_index("spec_id")
+    assert set(focal.index) == set(ok.index)
+    pd.testing.assert_series_equal(focal.loc[ok.index, "estimate"], ok["estimate"], rtol=1e-12)
+    pd.testing.assert_series_equal(focal.loc[ok.index, "std_error"], ok["std_error"], rtol=1e-9)
 
 
 def test_a_mistake_is_one_paragraph(tmp_path: Path, wage_panel: pd.DataFrame) -> None:

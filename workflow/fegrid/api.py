@@ -76,6 +76,11 @@ class GridResult:
         """One row per outcome x focal curve: counts, the baseline, the median and quartiles, shares."""
         return curve_summary(self.ledger, self.level)
 
+    def coefficients(self) -> pd.DataFrame:
+        """Every kept coefficient of every specification (``coefficients.parquet``): estimate, SE, t,
+        p, interval and df per term, focal first, and the term's row of the covariance matrix."""
+        return pd.read_parquet(self._plan.paths.coefficients_parquet)
+
     def choices(self) -> pd.DataFrame:
         """How each choice of each dimension shifts the estimate, on matched pairs of specifications."""
         return choice_medians(self.ledger)

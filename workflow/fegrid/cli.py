@@ -115,7 +115,7 @@ def _stages(plan) -> list[Stage]:
     paths = plan.paths
     draws = [min(plan.grid.draws_per_job, plan.grid.draws - i * plan.grid.draws_per_job)
              for i in range(len(plan.joint_paths()))]
-    figures = plan.figure_paths("pdf")
+    figures = plan.figure_paths("pdf") + plan.adoption_figure_paths("pdf")
     tables = [files["md"] for files in plan.table_paths().values()]
     appendix = [paths.file("appendix.tex")] + ([paths.file("appendix.pdf")] if pdflatex() else [])
     return [

@@ -14,7 +14,8 @@ import pandas as pd
 
 from .errors import DataError
 from .grid import Grid
-from .samples import apply_sample
+from .samples import Panel, apply_sample
+from .staggered import check_absorbing, shown
 
 __all__ = ["READERS", "CsvOptions", "file_sha256", "file_columns", "read_table", "check_columns", "check_data",
            "levels_for", "require_file"]
@@ -264,6 +265,8 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
                 f"{int(dup.sum())} rows share a key, e.g. {grid.panel.unit}={first[0]}, "
                 f"{grid.panel.time}={first[1]}. Each unit may appear once per period."
             )
+    if grid.panel.treatment and grid.panel.time:
+        _check_adoption(frame, grid.panel)
     for col in roles["weights"]:
         w = frame[col].to_numpy(dtype=float)
         bad = np.isfinite(w) & (w <= 0)
@@ -271,3 +274,30 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
             raise DataError(f"The weights column '{col}' has {int(bad.sum())} value(s) that are not positive.")
     for _, sample in grid.sample_defs(levels_for(frame, grid)).values():
         apply_sample(frame, sample, grid.panel)
+
+
+def _check_adoption(frame: pd.DataFrame, panel: Panel) -> None:
+    """A staggered adoption: the treatment is 0/1 and stays on; the adoption period, when declared, is one
+    value per unit and agrees with the treatment (treated exactly from the adoption period on)."""
+    assert panel.treatment and panel.time
+    check_absorbing(frame, panel.unit, panel.time, panel.treatment)
+    if not panel.adoption:
+        return
+    col = panel.adoption
+    if not pd.api.types.is_numeric_dtype(frame[col]):
+        raise DataError(f"data.adoption: the column '{col}' must hold periods of the time column "
+                        f"'{panel.time}' as numbers (empty for never treated).")
+    spread = frame.groupby(panel.unit)[col].nunique(dropna=False)
+    if (spread > 1).any():
+        raise DataError(f"data.adoption: the column '{col}' takes several values for unit {shown(spread.idxmax())}; "
+                        "a unit adopts once.")
+    expected = (frame[panel.time] >= frame[col]).astype(float)
+    observed = frame[panel.treatment]
+    bad = observed.notna() & (expected != observed)
+    if bad.any():
+        row = frame.loc[bad].iloc[0]
+        raise DataError(f"data.adoption: unit {shown(row[panel.unit])} has '{panel.treatment}' = "
+                        f"{shown(row[panel.treatment])} in period {shown(row[panel.time])} but adopts in "
+                        f"{shown(row[col])} ('{col}'); the treatment must "
+                        f"be 1 exactly from the adoption period on ({int(bad.sum())} disagreeing row(s)).")
+

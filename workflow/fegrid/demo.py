@@ -17,6 +17,16 @@ every column above, and the demo's baseline, is what it was before they existed)
 * ``frost_damaged_trees``: a count of trees damaged by frost in the season, zero in many seasons.
   Sprinklers protect trees from frost, so irrigation lowers the expected count by
   :data:`TRUE_COUNT_EFFECT` log points per 100 mm (a Poisson model with orchard and season effects).
+
+A third stream holds an invented staggered adoption: some growers start sowing a cover crop between
+the tree rows, in different seasons (cohorts adopting in seasons 4, 7, 10 and 13; about a fifth never
+adopt), and keep sowing it. ``cover_crop`` is 0/1 and ``cover_crop_season`` the season of adoption
+(empty for never). The cover crop raises the soil's organic carbon (``soil_carbon``, g/kg), slowly:
+the effect grows with the seasons since adoption, and more for early adopters
+(:func:`cover_crop_effect`). Earlier adopters were also growers on poorer soil, and soil carbon drifts
+up everywhere over the seasons, which orchard and season effects absorb. With effects that grow over
+time, the two-way estimate compares later adopters with earlier ones whose effect is still growing,
+and falls well short of the average effect on the treated; the heterogeneity-robust estimators recover it.
 """
 
 from __future__ import annotations
@@ -29,17 +39,30 @@ import pandas as pd
 from .store import write_csv
 
 __all__ = ["TRUE_EFFECT", "TRUE_COUNT_EFFECT", "DEMO_SEED", "DEMO_COLUMNS", "make_orchards", "write_demo_data",
-           "is_current_demo"]
+           "is_current_demo", "cover_crop_effect", "ADOPTION_SEASONS"]
 
 #: The demo file's columns, in order (a file written by an older generator lacks some and is rewritten).
 DEMO_COLUMNS = ("orchard", "valley", "season", "log_yield", "irrigation", "rainfall", "frost_days", "fertilizer",
-                "organic", "area_ha", "canal_turns", "frost_damaged_trees")
+                "organic", "area_ha", "canal_turns", "frost_damaged_trees", "cover_crop", "cover_crop_season",
+                "soil_carbon")
 
 #: The invented true effect of 100 mm of irrigation on log yield.
 TRUE_EFFECT = 0.08
 #: The invented effect of 100 mm of irrigation on the log of the expected count of frost-damaged trees.
 TRUE_COUNT_EFFECT = -0.15
 DEMO_SEED = 20261201
+#: The invented cover-crop cohorts' adoption seasons (and their shares of orchards; the rest never adopt).
+ADOPTION_SEASONS = {4: 0.2, 7: 0.2, 10: 0.2, 13: 0.2}
+
+
+def cover_crop_effect(season: np.ndarray, adoption: np.ndarray) -> np.ndarray:
+    """The invented effect of the cover crop on soil carbon (g/kg): 0.3 in the season of adoption, growing
+    by 0.25 a season, and by 0.1 a season more for each three seasons of earlier adoption (zero before
+    adoption and for orchards that never adopt)."""
+    since = np.asarray(season, dtype=float) - np.asarray(adoption, dtype=float)
+    growth = 0.25 + 0.1 * (13 - np.asarray(adoption, dtype=float)) / 3
+    return np.where(np.isfinite(since) & (since >= 0), 0.3 + growth * np.nan_to_num(since), 0.0)
+
 
 
 def make_orchards(seed: int = DEMO_SEED, n_valleys: int = 30, per_valley: int = 20,
@@ -93,6 +116,24 @@ def make_orchards(seed: int = DEMO_SEED, n_valleys: int = 30, per_valley: int = 
     rate = np.exp(exposure[orchard_index] + season_cold[df["season"].to_numpy() - 1] + 0.08 * df["frost_days"]
                   + TRUE_COUNT_EFFECT * df["irrigation"].to_numpy())
     df["frost_damaged_trees"] = extra.poisson(rate)
+    # the staggered adoption's columns, from a third stream (see the module docstring)
+    third = np.random.default_rng([seed, 2])
+    poorer = soil + third.normal(0, 1.0, n)  # earlier adopters farm poorer soil
+    ranks = np.argsort(np.argsort(poorer)) / n
+    edges = np.cumsum(list(ADOPTION_SEASONS.values()))
+    cohort_of = np.searchsorted(edges, ranks, side="right")
+    seasons = np.array(list(ADOPTION_SEASONS) + [np.nan])
+    adoption = seasons[cohort_of]
+    adopt_row = adoption[orchard_index]
+    season = df["season"].to_numpy()
+    df["cover_crop"] = (np.isfinite(adopt_row) & (season >= adopt_row)).astype(int)
+    df["cover_crop_season"] = adopt_row
+    base_carbon = 12.0 + 1.5 * soil + third.normal(0, 1.0, n)
+    drift = np.cumsum(third.normal(0.15, 0.1, n_seasons))
+    valley_index = df["valley"].str[1:].astype(int).to_numpy() - 1
+    valley_shock = third.normal(0.0, 0.2, (n_valleys, n_seasons))
+    df["soil_carbon"] = np.round(base_carbon[orchard_index] + drift[season - 1] + valley_shock[valley_index, season - 1]
+                                 + cover_crop_effect(season, adopt_row) + third.normal(0, 0.5, len(df)), 4)
     return df
 
 

@@ -17,6 +17,7 @@ weights. :func:`fit_block` evaluates all of them with as little repeated work as
 from __future__ import annotations
 
 import json
+import zlib
 from collections.abc import Callable, Collection, Sequence
 from dataclasses import asdict, dataclass, field, fields, replace
 from typing import NamedTuple, Protocol
@@ -26,12 +27,30 @@ import pandas as pd
 from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
 from . import __version__, keys
-from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons
+from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons, parse_absorb
 from .covariance import FitPieces, covariance_kind
 from .defaults import DEFAULTS
 from .errors import EstimationError
 from .estimators import POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
 from .poisson import irls, separated_rows
+from .staggered import (
+    EVENT_STUDY,
+    IMPUTATION,
+    INTERACTION_WEIGHTED,
+    Cohorts,
+    LinearEstimates,
+    bacon_decomposition,
+    cohorts_of,
+    event_indicators,
+    group_time,
+    imputation_pieces,
+    interaction_cells,
+    interaction_weights,
+    negative_weights,
+    replace_options,
+    share_covariance,
+    wald_p_value,
+)
 from .wild import WildBootstrap, wild_cluster_test
 
 __all__ = [
@@ -105,6 +124,8 @@ class BlockSettings:
     weights: str | None = None
     unit: str | None = None
     time: str | None = None
+    treatment: str | None = None
+    adoption: str | None = None
     keep_singletons: bool = DEFAULTS["estimation.singletons"] == "keep"
     tolerance: float = DEFAULTS["estimation.tolerance"]
     max_iterations: int = DEFAULTS["estimation.max_iterations"]
@@ -119,7 +140,7 @@ class BlockSettings:
         and the engine's version, so that columns demeaned by another version are never reused."""
         body = asdict(self)
         for key in ("level", "warn_min_clusters", "warn_max_cluster_share", "warn_min_treated_clusters",
-                    "warn_min_first_stage_f"):
+                    "warn_min_first_stage_f", "treatment", "adoption"):
             body.pop(key)
         body["absorb"] = [t.canonical() for t in self.absorb]
         body["fegrid"] = __version__
@@ -175,6 +196,16 @@ class SpecResult:
     ar_ci_high: float = float("nan")
     ar_set: str = ""
     n_separated: int = 0
+    cohorts: int = -1
+    never_treated_units: int = -1
+    not_yet_treated_obs: int = -1
+    decomposition: str = ""
+    already_treated_weight: float = float("nan")
+    negative_weights: int = -1
+    negative_weight_sum: float = float("nan")
+    sign_flip_sd: float = float("nan")
+    pretrend_p_value: float = float("nan")
+    uniform_critical: float = float("nan")
 
     def record(self) -> dict[str, object]:
         return asdict(self)
@@ -272,6 +303,10 @@ class _Design:
         self._diagnostics: dict[str, _FocalDiagnostics] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
         self._poisson: dict[tuple[str, str, tuple[str, ...]], object] = {}  # one PML fit per regression
+        # one staggered-adoption fit per regression, shared by its covariance choices
+        self._staggered: dict[tuple[object, ...], object] = {}
+        self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
+        self._cohorts: Cohorts | None = None
         self._column_keys: dict[str, str] = {}
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
@@ -540,6 +575,8 @@ def read_columns(spec: SpecRequest, settings: BlockSettings, available: Sequence
     :func:`fegrid.keys.content_key`): its own variables, the design's, and the panel's unit
     (diagnostics), when they are among the ``available`` columns."""
     cols = _needed(spec, settings) + [c for c in (settings.unit, settings.time) if c]
+    if spec.focal == settings.treatment and settings.adoption:  # missing adoption = never treated: not in _needed
+        cols.append(settings.adoption)
     return sorted(c for c in set(cols) if c in set(available))
 
 
@@ -619,6 +656,7 @@ def fit_block(
         design_key = keys.design_key(settings.demean_key() + data_key, len(rows),
                                      {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
         design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
+        design.keep_all = coefficients
         fit.designs += 1
         cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls,
                                                       *specs[i].estimator.columns())})
@@ -676,6 +714,8 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
     method = spec.estimator.method
     if method == POISSON:
         return _evaluate_poisson(design, spec, keep)
+    if spec.estimator.staggered is not None:
+        return _evaluate_staggered(design, spec, keep)
     two_stage = method == TWO_STAGE
     regressors = (design.iv_regressors(spec.focal, spec.controls, spec.estimator) if two_stage
                   else design.regressors(spec.focal, spec.controls))
@@ -697,6 +737,8 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
     if two_stage:
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
+    elif keep and spec.focal == design.settings.treatment:
+        result = _with_adoption_diagnostics(design, spec, pieces, result)
     if spec.inference.bootstrap is not None and result.std_error > 0:
         result = (_without_wild(result) if two_stage else
                   _with_wild(design, spec, pieces, regressors.columns, codes[0], result.n_clusters, result))
@@ -902,6 +944,276 @@ def _fit_poisson(design: _Design, spec: SpecRequest) -> _PoissonPieces:
                    controls_dropped="; ".join(filter(None, [base.controls_dropped, *dropped])),
                    outcome_mean=float(yk.mean()), outcome_sd=float(yk.std(ddof=1)) if len(yk) > 1 else float("nan"))
     return _PoissonPieces(base, False, rows, sub, fit, tuple(names), pieces)
+
+
+def _cohorts(design: _Design) -> Cohorts:
+    """The adoption design of a design's rows (from data.adoption when declared, else from the treatment),
+    computed once per design."""
+    if design._cohorts is None:
+        design._cohorts = _design_cohorts(design)
+    return design._cohorts
+
+
+def _design_cohorts(design: _Design) -> Cohorts:
+    s = design.settings
+    assert s.unit and s.time and s.treatment
+    f = design.frame
+    if s.adoption:
+        return cohorts_of(f[s.unit].to_numpy(), f[s.time].to_numpy(), adoption=f[s.adoption].to_numpy(dtype=float))
+    return cohorts_of(f[s.unit].to_numpy(), f[s.time].to_numpy(), treatment=f[s.treatment].to_numpy(dtype=float))
+
+
+def _with_counts(result: SpecResult, cohorts: Cohorts) -> SpecResult:
+    counts = cohorts.counts()
+    return replace(result, cohorts=counts["cohorts"], never_treated_units=counts["never_treated_units"],
+                   not_yet_treated_obs=counts["not_yet_treated_obs"])
+
+
+def _with_adoption_diagnostics(design: _Design, spec: SpecRequest, pieces: FitPieces,
+                               result: SpecResult) -> SpecResult:
+    """A least-squares fit of the treatment: cohort counts, the weights of de Chaisemartin &
+    D'Haultfoeuille (2020) on the treated observations' effects and, for the two-way model without
+    controls or weights on a balanced panel, the decomposition of Goodman-Bacon (2021)."""
+    s = design.settings
+    cohorts = _cohorts(design)
+    result = _with_counts(result, cohorts)
+    contribution = pieces.h * design.sqrt_w  # the estimate is sum_i contribution_i y_i
+    neg = negative_weights(contribution, cohorts.treated, result.estimate, design.w if s.weights else None)
+    result = replace(result, negative_weights=neg.count, negative_weight_sum=neg.total, sign_flip_sd=neg.sign_flip_sd)
+    two_way = sorted(json.dumps(t.canonical()) for t in s.absorb) == sorted(
+        json.dumps(t.canonical()) for t in parse_absorb([s.unit, s.time]))
+    if not (two_way and not spec.controls and not s.weights):
+        return result
+    try:
+        table = bacon_decomposition(design.frame[spec.outcome].to_numpy(dtype=float), cohorts)
+    except ValueError as exc:
+        return replace(result, message="; ".join(filter(None, [result.message, f"no decomposition: {exc}"])))
+    late = table["comparison"] == "later_vs_earlier"
+    return replace(result, decomposition=table.to_json(orient="records", double_precision=12),
+                   already_treated_weight=float(table.loc[late, "weight"].sum()))
+
+
+def _cluster_for_staggered(design: _Design, spec: SpecRequest) -> tuple[np.ndarray, str, str]:
+    """The clusters of an estimator with its own inference: the specification's one-way clusters, else
+    the unit; with the dimension's label and a note when the specification asked for something else."""
+    if spec.inference.kind == "clustered":
+        dim = spec.inference.by[0]
+        return design.cluster_codes(dim), " x ".join(dim), ""
+    unit = design.settings.unit
+    assert unit is not None
+    note = f"clustered by {unit} (this estimator's inference is cluster-robust by unit or a declared cluster)"
+    return design.cluster_codes((unit,)), unit, note
+
+
+class _IndicatorFit(NamedTuple):
+    """A least-squares fit on relative-period (or cohort x relative-period) indicators, shared by the
+    covariance choices of a regression."""
+
+    rows: np.ndarray  # the design's rows kept
+    sub: pd.DataFrame
+    absorber: Absorber
+    pieces: FitPieces
+    terms: list[str]  # the regressors: indicators, then controls
+    combine: np.ndarray  # (reported rows, regressors): the reported combinations, then every coefficient
+    reported: tuple[str, ...]
+    # the interaction-weighted estimator: the variance its estimated cohort shares add to the aggregates
+    # (their number, and the function of the kept rows' clusters)
+    shares: tuple[int, Callable[[np.ndarray], np.ndarray]] | None = None
+
+
+def _evaluate_staggered(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    """A staggered-adoption estimator of the treatment's effect on the design's rows."""
+    method = spec.estimator.method
+    s = design.settings
+    options = spec.estimator.staggered
+    assert options is not None
+    key = (method, options, spec.outcome, spec.controls)
+    if key not in design._staggered:
+        design._staggered[key] = _fit_staggered(design, spec)
+    got = design._staggered[key]
+    if isinstance(got, SpecResult):  # refused or failed: the same for every covariance choice
+        return replace(got, spec_id=spec.spec_id), None
+    base = replace(_with_counts(_base_result(design, spec, []), _cohorts(design)), n_obs=len(design.frame))
+    if isinstance(got, _IndicatorFit):
+        return _indicator_result(design, spec, base, got, keep)
+    assert isinstance(got, _LinearPieces)
+    clusters, label, note = _cluster_for_staggered(design, spec)
+    try:
+        estimates = got.compute(clusters)
+    except ValueError as exc:  # the design or the clusters do not suit the estimator: say why
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=str(exc)), None
+    return _linear_result(base, spec, estimates, label, note, got.pretrend(estimates), s.level, keep)
+
+
+class _LinearPieces(NamedTuple):
+    """An estimator linear in the outcome (imputation, group-time effects), fitted once per regression:
+    ``compute`` gives its estimates with their covariance for the clusters of a covariance choice."""
+
+    compute: Callable[[np.ndarray], LinearEstimates]
+
+    def pretrend(self, got: LinearEstimates) -> float:
+        """The estimator's own test of parallel trends, else the Wald test of its pre-period estimates."""
+        if np.isfinite(got.pretrend_p_value):
+            return got.pretrend_p_value
+        pre = [j for j, n in enumerate(got.names) if n.startswith("rel=-")]
+        return wald_p_value(got.estimates[pre], got.covariance[np.ix_(pre, pre)], got.df)
+
+
+def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
+    """The cluster-independent part of a staggered-adoption fit, or the refusal (a :class:`SpecResult`)."""
+    method = spec.estimator.method
+    s = design.settings
+    options = spec.estimator.staggered
+    assert options is not None
+    cohorts = _cohorts(design)
+    base = _with_counts(_base_result(design, spec, []), cohorts)
+
+    def refuse(why: str) -> SpecResult:
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=why)
+
+    if base.cohorts == 0:
+        return refuse("no unit adopts the treatment inside this sample's periods")
+    if method in (EVENT_STUDY, INTERACTION_WEIGHTED):
+        return _fit_indicators(design, spec, base, cohorts)
+    if s.weights:
+        return refuse(f"method {method} does not take weights")
+    y = design.frame[spec.outcome].to_numpy(dtype=float)
+    if method == IMPUTATION:
+        if any(t.kind != "effect" for t in s.absorb):
+            return refuse("the imputation estimator takes absorbed effects without trends")
+        codes = [design.codes_of(t.columns) for t in s.absorb]  # type: ignore[union-attr]
+        x = design.frame[list(spec.controls)].to_numpy(dtype=float) if spec.controls else np.zeros((len(y), 0))
+        try:
+            pieces = imputation_pieces(y, cohorts, codes, x, options)
+        except ValueError as exc:
+            return refuse(str(exc))
+        return _LinearPieces(pieces.with_clusters)
+    if spec.controls:
+        return refuse("group-time effects are computed without covariates (remove the control set)")
+    seed = zlib.crc32(f"{spec.outcome}|{spec.focal}".encode())  # the same draws for the design in every run
+    # the multiplier bootstrap's band is for reading the event study: not needed in the joint tests' draws
+    draws = options.draws if design.keep_all else 0
+
+    def compute(clusters: np.ndarray) -> LinearEstimates:
+        got, _ = group_time(y, cohorts, clusters, replace_options(options, draws), seed=seed, level=s.level)
+        return got
+
+    return _LinearPieces(compute)
+
+
+def _linear_result(base: SpecResult, spec: SpecRequest, got: LinearEstimates, label: str, note: str,
+                   pretrend: float, level: float, keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    """The result of an estimator that gives named estimates with their covariance (overall first)."""
+    est, se = float(got.estimates[0]), float(np.sqrt(got.covariance[0, 0]))
+    if not (np.isfinite(est) and np.isfinite(se)):
+        return replace(base, message="the estimate or its standard error is not finite"), None
+    t = est / se if se > 0 else float("nan")
+    crit = float(stdtrit(got.df, 0.5 + level / 2))
+    notes = [m for m in (base.message, got.message, note) if m]
+    result = replace(base, status=STATUS_OK, message="; ".join(notes), estimate=est, std_error=se, t_stat=t,
+                     p_value=float(2 * stdtr(got.df, -abs(t))) if se > 0 else float("nan"),
+                     ci_low=est - crit * se, ci_high=est + crit * se, df_inference=got.df, n_obs=got.n_obs,
+                     n_clusters=got.n_clusters, clusters=f"{label}={got.n_clusters}", pretrend_p_value=pretrend,
+                     uniform_critical=got.uniform_critical)
+    if spec.inference.bootstrap is not None:
+        result = _without_wild(result)
+    terms = (spec.focal, *got.names[1:])
+    kept = Coefficients(terms, got.estimates, got.covariance, got.df) if keep else None
+    return result, kept
+
+
+def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohorts: Cohorts) -> object:
+    """The two-way event study or the interaction-weighted estimator: least squares of the outcome on
+    indicators (and the controls) with the specification's absorbed effects and weights; the reported
+    estimate is a fixed linear combination of the indicators' coefficients."""
+    s = design.settings
+    options = spec.estimator.staggered
+    assert options is not None
+    shares = None
+    if spec.estimator.method == EVENT_STUDY:
+        rows = np.ones(len(design.frame), dtype=bool)
+        x, names = event_indicators(cohorts, options)
+        rel = np.array([int(n.split("=")[1]) for n in names])
+        combine = np.vstack([(rel >= 0) / max(int((rel >= 0).sum()), 1), np.eye(len(names))])
+        reported = [spec.focal, *names]
+    else:
+        try:
+            cells = interaction_cells(cohorts, options)
+        except ValueError as exc:
+            return replace(base, status=STATUS_NOT_IDENTIFIED, message=str(exc))
+        rows, x, names = cells.rows, cells.matrix, cells.names
+        agg, agg_names = interaction_weights(cells, options)
+        combine = np.vstack([agg, np.eye(len(names))])
+        reported = [spec.focal, *agg_names[1:], *names]
+        shares = (len(agg), lambda clusters, beta: share_covariance(cells, agg, beta[: len(names)], clusters))
+    whole = bool(rows.all())
+    sub = design.frame if whole else design.frame.loc[rows]
+    w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
+    absorber = design.absorber if whole else Absorber(sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,
+                                                      max_iterations=s.max_iterations, codes_of=LevelCodes(sub))
+    raw = np.column_stack([sub[spec.outcome].to_numpy(dtype=float), x,
+                           sub[list(spec.controls)].to_numpy(dtype=float).reshape(len(sub), -1)])
+    sw = np.sqrt(w) if w is not None else np.ones(len(sub))
+    z = absorber.demean(raw).values * sw[:, None]
+    yz, xz = z[:, 0], np.asfortranarray(z[:, 1:])
+    # the cross products, not a QR factor: many indicator columns, and a QR of them costs 30 times more
+    gram = xz.T @ xz
+    norms = np.sqrt(np.diag(gram))
+    if len(norms) == 0 or norms.min() <= 1e-9 * max(norms.max(), 1e-300) or np.linalg.eigvalsh(
+            gram / np.outer(norms, norms)).min() <= 1e-10:
+        return replace(base, status=STATUS_NOT_IDENTIFIED, message=(
+            "the relative-period indicators (or the controls) are collinear with the absorbed effects: without "
+            "never-treated units, a two-way event study needs binned end points and a window inside the periods"))
+    bread = np.linalg.inv(gram)
+    bread = (bread + bread.T) / 2
+    beta = bread @ (xz.T @ yz)
+    e = yz - xz @ beta
+    full = np.zeros((combine.shape[0] + len(spec.controls), xz.shape[1]))
+    full[: combine.shape[0], : combine.shape[1]] = combine
+    full[combine.shape[0]:, combine.shape[1]:] = np.eye(len(spec.controls))
+    a = full[0]
+    tss = float(yz @ yz)
+    pieces = FitPieces(estimate=float(a @ beta), e=e, h=xz @ (bread @ a), rss=float(e @ e), bread=bread,
+                       within_r2=1.0 - float(e @ e) / tss if tss > 0 else float("nan"),
+                       scores=lambda: np.asfortranarray(xz * e[:, None]), coefficients=beta)
+    share_part = None if shares is None else (shares[0], lambda clusters: shares[1](clusters, beta))
+    return _IndicatorFit(rows, sub, absorber, pieces, [*names, *spec.controls], full,
+                         (*reported, *spec.controls), share_part)
+
+
+def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit: _IndicatorFit,
+                      keep: bool) -> tuple[SpecResult, Coefficients | None]:
+    rows = fit.rows
+
+    def cluster_of(dim: tuple[str, ...]) -> np.ndarray:
+        return np.unique(design.cluster_codes(dim)[rows], return_inverse=True)[1].ravel()
+
+    codes = [cluster_of(dim) for dim in spec.inference.by]
+    nested = fit.absorber.nested_df(codes) if codes else 0
+    base = replace(base, n_obs=len(fit.sub))
+    result, kept = _inference(base, spec, fit.pieces, fit.absorber, nested, codes,
+                              _covariance_codes(spec, codes, cluster_of), fit.sub, design.settings, fit.terms, True)
+    if result.status != STATUS_OK or kept is None:
+        return result, None
+    # every reported row: the combinations, then the coefficients (indicators and controls)
+    cov = fit.combine @ kept.covariance @ fit.combine.T
+    assert fit.pieces.coefficients is not None
+    values = fit.combine @ fit.pieces.coefficients
+    if fit.shares is not None:  # the cohort shares are estimated too: their variance adds to the aggregates
+        n_agg, share_cov = fit.shares
+        dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (design.settings.unit,)
+        cov[:n_agg, :n_agg] += share_cov(cluster_of(dim))  # type: ignore[arg-type]
+        se = float(np.sqrt(cov[0, 0]))
+        crit = float(stdtrit(kept.df, 0.5 + design.settings.level / 2))
+        t = values[0] / se if se > 0 else float("nan")
+        result = replace(result, std_error=se, t_stat=t,
+                         p_value=float(2 * stdtr(kept.df, -abs(t))) if se > 0 else float("nan"),
+                         ci_low=values[0] - crit * se, ci_high=values[0] + crit * se)
+    pre = [j for j, n in enumerate(fit.reported) if n.startswith("rel=-")]
+    result = replace(result, pretrend_p_value=wald_p_value(values[pre], cov[np.ix_(pre, pre)], kept.df))
+    if spec.inference.bootstrap is not None:
+        result = _without_wild(result)
+    return result, (Coefficients(fit.reported, values, cov, kept.df) if keep else None)
 
 
 def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[int], codes: np.ndarray,

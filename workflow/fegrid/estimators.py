@@ -35,6 +35,15 @@ from scipy.optimize import brentq
 from scipy.special import fdtrc, fdtri
 
 from .errors import ConfigError
+from .staggered import (
+    EVENT_STUDY,
+    GROUP_TIME,
+    IMPUTATION,
+    INTERACTION_WEIGHTED,
+    STAGGERED_METHODS,
+    StaggeredOptions,
+    parse_options,
+)
 
 __all__ = [
     "METHODS",
@@ -54,14 +63,18 @@ __all__ = [
 LEAST_SQUARES = "least_squares"
 TWO_STAGE = "two_stage_least_squares"
 POISSON = "poisson_pml"
-#: The methods of the estimator dimension.
-METHODS: tuple[str, ...] = (LEAST_SQUARES, TWO_STAGE, POISSON)
+#: The methods of the estimator dimension (the staggered-adoption ones: :mod:`fegrid.staggered`).
+METHODS: tuple[str, ...] = (LEAST_SQUARES, TWO_STAGE, POISSON, *STAGGERED_METHODS)
 
 #: What a curve's estimates are, by method (the y-axis of its figure).
 CURVE_LABELS: dict[str, str] = {
     LEAST_SQUARES: "least-squares coefficient",
     TWO_STAGE: "2SLS coefficient",
     POISSON: "Poisson PML coefficient (semi-elasticity)",
+    EVENT_STUDY: "two-way event study: mean effect over periods 0 to the window's end",
+    INTERACTION_WEIGHTED: "interaction-weighted average effect on the treated",
+    IMPUTATION: "imputation average effect on the treated",
+    GROUP_TIME: "group-time average effect on the treated",
 }
 
 
@@ -79,6 +92,7 @@ class Estimator:
     instruments: tuple[str, ...] = ()
     endogenous: tuple[str, ...] = ()
     curve: str = ""
+    staggered: StaggeredOptions | None = None  # the options of a staggered-adoption method
 
     def canonical(self) -> dict[str, object] | None:
         """Content for spec ids (``None`` for least squares: its ids predate the dimension)."""
@@ -88,6 +102,8 @@ class Estimator:
         if self.method == TWO_STAGE:
             body["instruments"] = sorted(self.instruments)
             body["endogenous"] = sorted(self.endogenous)
+        if self.staggered is not None:
+            body.update(self.staggered.canonical())
         return body
 
     @property
@@ -96,6 +112,15 @@ class Estimator:
 
     def columns(self) -> tuple[str, ...]:
         return tuple(self.instruments) + tuple(self.endogenous)
+
+    @property
+    def staggered_method(self) -> bool:
+        """Whether the method estimates the effect of a staggered adoption (the focal regressor must be
+        the declared data.treatment)."""
+        return self.method in STAGGERED_METHODS
+
+
+_STAGGERED_KEYS = ("window", "reference", "controls_from", "uniform_band_draws")
 
 
 def parse_estimator(name: str, body: dict[str, object]) -> Estimator:
@@ -113,7 +138,15 @@ def parse_estimator(name: str, body: dict[str, object]) -> Estimator:
                 "(the focal regressor and also_endogenous); the model is under-identified.")
         if set(instruments) & set(endogenous):
             raise ConfigError(f"{where}: a column cannot be both an instrument and endogenous.")
-    elif instruments or endogenous:
+    elif method in STAGGERED_METHODS:
+        if instruments or endogenous:
+            raise ConfigError(f"{where}: 'instruments' and 'also_endogenous' belong to method {TWO_STAGE} only.")
+        options = parse_options(where, body, method)
+        return Estimator(method, curve=str(body.get("curve") or ""), staggered=options)
+    if method not in STAGGERED_METHODS and any(k in body for k in _STAGGERED_KEYS):
+        raise ConfigError(f"{where}: {', '.join(k for k in _STAGGERED_KEYS if k in body)} belong to the "
+                          f"staggered-adoption methods ({', '.join(STAGGERED_METHODS)}) only.")
+    if method not in (TWO_STAGE, *STAGGERED_METHODS) and (instruments or endogenous):
         raise ConfigError(f"{where}: 'instruments' and 'also_endogenous' belong to method "
                           f"{TWO_STAGE} only (this choice has method {method}).")
     return Estimator(method, instruments, endogenous, str(body.get("curve") or ""))

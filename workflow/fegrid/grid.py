@@ -207,6 +207,7 @@ class Grid:
             "instrument": sorted({c for e in self.estimators.values() for c in e.instruments}),
             "endogenous regressor": sorted({c for e in self.estimators.values() for c in e.endogenous}),
             "resampling": [self.resample] if self.draws and self.resample != self.panel.unit else [],
+            "adoption period": [self.panel.adoption] if self.panel.adoption else [],
         }
 
     def reading(self) -> dict[str, Any]:
@@ -266,6 +267,9 @@ class Grid:
             # nor does instrumenting a regressor by itself or by the outcome (see self_instrumented)
             if {focal, outcome} & set(estimator.columns()):
                 continue
+            # the staggered-adoption methods estimate the effect of data.treatment only
+            if estimator.staggered_method and focal != self.panel.treatment:
+                continue
             ctrl = tuple(sorted(self.controls[controls]))
             inference = self.clustering[clus]
             body = {
@@ -280,6 +284,8 @@ class Grid:
             }
             if estimator.canonical() is not None:  # least squares adds nothing: ids predate the dimension
                 body["estimator"] = estimator.canonical()
+                if estimator.staggered_method:
+                    body["estimator"]["adoption"] = self.panel.adoption or ""
             canonical = json.dumps(body, sort_keys=True)
             spec_id = keys.spec_id(canonical)
             if spec_id in specs:
@@ -355,6 +361,8 @@ class Grid:
             weights=spec.weights,
             unit=self.panel.unit,
             time=self.panel.time,
+            treatment=self.panel.treatment,
+            adoption=self.panel.adoption,
             keep_singletons=self.keep_singletons,
             tolerance=self.tolerance,
             max_iterations=self.max_iterations,
@@ -376,6 +384,7 @@ class Grid:
                 "max_iterations": self.max_iterations,
                 "keep_singletons": self.keep_singletons,
                 "warnings": self.warnings,
+                "staggered": [self.panel.treatment, self.panel.adoption],  # diagnostics of the treatment's fits
             },
             sort_keys=True,
         )
@@ -415,9 +424,15 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
     # every default comes from the schema, filled in once here (as Snakemake's validate does)
     raw = fill_defaults(raw)
     data = raw["data"]
-    panel = Panel(unit=data["unit"], time=data.get("time"), frequency=data.get("time_frequency"))
+    panel = Panel(unit=data["unit"], time=data.get("time"), frequency=data.get("time_frequency"),
+                  treatment=data.get("treatment"), adoption=data.get("adoption"))
     if panel.frequency is not None and panel.time is None:
         raise ConfigError("data.time_frequency is set but data.time names no time column.")
+    if (panel.treatment or panel.adoption) and panel.time is None:
+        raise ConfigError("data.treatment (a staggered adoption) needs data.time: adoption is dated in periods.")
+    if panel.adoption and not panel.treatment:
+        raise ConfigError("data.adoption is set without data.treatment: name the 0/1 treatment column too "
+                          "(the focal regressor of the staggered-adoption estimators).")
     absorb_raw = _choices(raw, "absorb", {panel.unit: [panel.unit]})  # a default that depends on data.unit
     absorb = {name: parse_absorb(terms, where=f"absorb.{name}") for name, terms in absorb_raw.items()}
     clustering: dict[str, Inference] = {}
@@ -454,6 +469,13 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         raise ConfigError("control_sets declares no control set; use named: {none: []} for none.")
     weights = dict(_choices(raw, "weights"))
     estimators = {name: parse_estimator(name, body) for name, body in _choices(raw, "estimators").items()}
+    for name, est in estimators.items():
+        if est.staggered_method and not panel.treatment:
+            raise ConfigError(f"estimators.{name}: method {est.method} estimates the effect of a staggered "
+                              "adoption; declare the 0/1 treatment column in data.treatment.")
+        if est.staggered_method and panel.treatment not in raw["focal_regressors"]:
+            raise ConfigError(f"estimators.{name}: method {est.method} applies to the treatment "
+                              f"'{panel.treatment}' (data.treatment), which is not among focal_regressors.")
     grid_names = {
         "outcome": list(raw["outcomes"]),
         "focal": list(raw["focal_regressors"]),

@@ -94,6 +94,7 @@ class _PlanFacts:
 
     n_specs: int
     pairs: tuple[tuple[str, str, str], ...]
+    adoption: tuple[tuple[str, str], ...]
     joint_key: str
     job_sizes: dict[str, int]
 
@@ -136,11 +137,25 @@ class Plan:
 
     def for_rules(self) -> Plan:
         """The same plan without its specifications: all that the rules of a job's parse need."""
-        facts = _PlanFacts(self.n_specs, tuple(self.pairs), self.joint_key, self.job_sizes)
+        facts = _PlanFacts(self.n_specs, tuple(self.pairs), tuple(self.adoption_designs), self.joint_key,
+                           self.job_sizes)
         return replace(self, specs=(), jobs=tuple(Job(j.key, ()) for j in self.jobs), facts=facts)
+
+    @property
+    def adoption_designs(self) -> list[tuple[str, str]]:
+        """The staggered designs (outcome, treatment): fits of the declared treatment, sorted."""
+        if self.facts:
+            return list(self.facts.adoption)
+        treatment = self.grid.panel.treatment
+        return sorted({(s.outcome, s.focal) for s in self.specs if treatment and s.focal == treatment})
 
     def figure_paths(self, ext: str) -> list[Path]:
         return [self.paths.figure(pair_slug(*pair), ext) for pair in self.pairs]
+
+    def adoption_figure_paths(self, ext: str) -> list[Path]:
+        """The staggered designs' figures: the event study, then the decomposition, of each design."""
+        return [self.paths.adoption_figure(kind, pair_slug(*design), ext) for design in self.adoption_designs
+                for kind in ("event", "decomposition")]
 
     def joint_paths(self) -> list[Path]:
         chunks = math.ceil(self.grid.draws / self.grid.draws_per_job) if self.grid.draws else 0
@@ -174,6 +189,11 @@ class Plan:
             name = f"figure_{outcome}_{focal}" + ("" if curve == DEFAULT_CURVE else f"_{curve}")
             out[f"{name}_png"] = png
             out[f"{name}_pdf"] = pdf
+        for outcome, focal in self.adoption_designs:
+            for kind in ("event", "decomposition"):
+                for ext in ("png", "pdf"):
+                    out[f"{kind}_{outcome}_{focal}_{ext}"] = self.paths.adoption_figure(kind, pair_slug(outcome, focal),
+                                                                                       ext)
         return out
 
     def job_names(self, *, build_pdf: bool) -> dict[str, list[str]]:
@@ -181,6 +201,7 @@ class Plan:
         names = {
             "snapshot_data": ["all"], "fit_job": [j.key for j in self.jobs], "gather_ledger": ["all"],
             "draw_curve": [pair_slug(*pair) for pair in self.pairs], "summarise_curve": ["all"],
+            "draw_adoption": [pair_slug(*design) for design in self.adoption_designs],
             "draw_null_curves": [f"{self.joint_key}-{i:04d}" for i in range(len(self.joint_paths()))],
             "test_curve": ["all"], "render_appendix": ["all"], "compile_appendix": ["all"] if build_pdf else [],
         }
@@ -207,7 +228,7 @@ class Plan:
 #: The pipeline's stages (its Snakemake rules) whose jobs are timed for the manifest, in order.
 #: Every rule but ``all`` and ``write_provenance`` is one of them (a test checks the Snakefile).
 STAGES: tuple[str, ...] = ("snapshot_data", "fit_job", "gather_ledger", "draw_curve", "summarise_curve",
-                           "draw_null_curves", "test_curve", "render_appendix", "compile_appendix")
+                           "draw_adoption", "draw_null_curves", "test_curve", "render_appendix", "compile_appendix")
 
 
 #: Every rule that runs a job: the timed stages, then the provenance step (which times the others).
@@ -639,6 +660,32 @@ def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf:
     save_curve(draw_curve(part, level=grid.level, labels=grid.raw.get("labels")), png, pdf)
 
 
+def draw_adoption(grid: Grid, ledger: str | Path, coefficients: str | Path, slug: str,
+                  outputs: Mapping[str, str | Path]) -> None:
+    """The event-study and decomposition figures of the staggered design named by ``slug``
+    (``outputs``: ``event_png``, ``event_pdf``, ``decomposition_png``, ``decomposition_pdf``)."""
+    from .adoption import adoption_designs, baseline_names, draw_decomposition, draw_event_study, representatives
+    from .figures import save_curve
+
+    led = read_ledger(ledger)
+    found = [d for d in adoption_designs(led) if pair_slug(*d) == slug]
+    labels = grid.raw.get("labels") or {}
+    if found:
+        outcome, focal = found[0]
+        chosen = representatives(led, outcome, focal, baseline_names(grid.raw))
+    else:  # every fit of the design failed: the figures say so
+        outcome = focal = slug
+        chosen = led.iloc[0:0]
+    title = f"{labels.get(focal, focal)} on {labels.get(outcome, outcome)}"
+    coefs = pd.read_parquet(coefficients, columns=["spec_id", "term", "estimate", "std_error", "ci_low", "ci_high"])
+    save_curve(draw_event_study(chosen, coefs[coefs["spec_id"].isin(set(chosen["spec_id"]))], level=grid.level,
+                                labels=labels, title=f"Event study: {title}"),
+               outputs["event_png"], outputs["event_pdf"])
+    reference = chosen.iloc[0] if len(chosen) and chosen.iloc[0]["decomposition"] else None
+    save_curve(draw_decomposition(reference, title=f"Decomposition of the two-way estimate: {title}"),
+               outputs["decomposition_png"], outputs["decomposition_pdf"])
+
+
 def summarise(grid: Grid, ledger: str | Path, out_dir: str | Path) -> None:
     from .report import write_summaries
 
@@ -697,8 +744,14 @@ def appendix(grid: Grid, ledger: str | Path, joint_csv: str | Path, out: str | P
     built = grid_tables(grid, led)
     if tables is not None:
         write_tables(built, {name: {e: Path(p) for e, p in files.items()} for name, files in tables.items()})
+    from .adoption import adoption_designs, baseline_names, latex_section
+
+    sections = [latex_section(led, outcome, focal, f"figures/event-{pair_slug(outcome, focal)}.pdf",
+                              f"figures/decomposition-{pair_slug(outcome, focal)}.pdf", level=grid.level,
+                              baseline=baseline_names(grid.raw), labels=grid.raw.get("labels") or {})
+                for outcome, focal in adoption_designs(led)]
     render_appendix(grid, led, joint, figure_names(led), out, draws=grid.draws, seed=grid.seed,
-                    resample=grid.resample, tables=[latex_table(t) for t in built.values()])
+                    resample=grid.resample, tables=[latex_table(t) for t in built.values()], sections=sections)
 
 
 def compile_appendix(tex: str | Path, pdf: str | Path) -> None:

@@ -293,7 +293,8 @@ def _data_statement(replication: Mapping[str, Any], manifest: Mapping[str, Any],
 def _exhibit_rows(manifest: Mapping[str, Any], exhibits: Mapping[str, str]) -> list[str]:
     rows = []
     for name, entry in manifest["outputs"].items():
-        rule = _RULE_OF.get(name, "draw_curve" if name.startswith("figure") else "")
+        rule = _RULE_OF.get(name, "draw_curve" if name.startswith("figure") else
+                            "draw_adoption" if name.startswith(("event_", "decomposition_")) else "")
         rows.append(f"| {exhibits.get(name, '')} | {name} | `{entry['path']}` | {rule} |")
     rows.sort(key=lambda r: (r.startswith("|  |"), r))  # the paper's exhibits first
     return rows
@@ -357,7 +358,8 @@ def replication_section(manifest: Mapping[str, Any], *, config_path: str, draws:
         f"- `{config_path}` declares the whole grid (outcomes, focal regressors, absorbed effects, clustering, "
         "samples, controls, weights, exclusions, baseline); nothing else is chosen by hand.",
         "- fegrid's Snakemake workflow runs, in order: `snapshot_data` (the columns read, hashed), `fit_job` "
-        "(every specification), `gather_ledger`, `summarise_curve`, `draw_curve`, `draw_null_curves` and "
+        "(every specification), `gather_ledger`, `summarise_curve`, `draw_curve`, `draw_adoption` (staggered "
+        "designs), `draw_null_curves` and "
         "`test_curve` (joint tests), `render_appendix` and `compile_appendix`, then `write_provenance` "
         "(this file, the manifest, the lock and the container recipe).",
         "",

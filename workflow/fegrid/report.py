@@ -290,7 +290,7 @@ FIGURE_HEIGHT_SHARE = 0.9
 
 def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None, figures: Sequence[str],
                     out: str | Path, *, draws: int = 0, seed: int | None = None,
-                    resample: str | None = None, tables: Sequence[str] = ()) -> Path:
+                    resample: str | None = None, tables: Sequence[str] = (), sections: Sequence[str] = ()) -> Path:
     """Write ``appendix.tex``: notes, summary, joint tests, figures, choices, every specification."""
     level = grid.level
     significance = Significance.from_config(grid.raw)
@@ -365,7 +365,7 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         "", r"\begin{table}[ht]\centering\footnotesize",
         r"\caption{Joint tests across the curve (bootstrap under the null).}",
         _joint_table(joint), r"\end{table}", "",
-        *figure_blocks, "", r"\clearpage",
+        *figure_blocks, "", *sections, "", r"\clearpage",
         r"\subsection*{What each choice does to the estimate}",
         MATCHED_NOTE_TEX, "",
         r"{\footnotesize", _choices_table(collapse_families(moves)), "}",

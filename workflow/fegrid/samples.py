@@ -28,6 +28,9 @@ class Panel:
     time: str | None = None
     #: the time column's declared frequency (its dates are numbered as periods), or None
     frequency: str | None = None
+    #: a staggered adoption: the 0/1 treatment column and, optionally, the adoption-period column
+    treatment: str | None = None
+    adoption: str | None = None
 
     def bound(self, column: str, value: Any) -> float:
         """A range bound on ``column``: a date or period label on a dated time column becomes its number."""

@@ -215,6 +215,11 @@ class RunPaths:
     def figure(self, slug: str, ext: str) -> Path:
         return self.run / "figures" / f"curve-{slug}.{ext}"
 
+    def adoption_figure(self, kind: str, slug: str, ext: str) -> Path:
+        """A staggered design's figure: ``kind`` is ``event`` (the event study) or ``decomposition``."""
+        assert kind in ("event", "decomposition"), kind
+        return self.run / "figures" / f"{kind}-{slug}.{ext}"
+
     def joint_draws(self, key: str, chunk: int | str) -> Path:
         """One chunk of bootstrap draws (``chunk`` may be a wildcard such as ``"{chunk}"``)."""
         name = f"{chunk:04d}" if isinstance(chunk, int) else chunk

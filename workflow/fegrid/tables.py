@@ -207,6 +207,10 @@ def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, abs
         *([TableRow("First-stage F (effective)", tuple(_fmt(float(c["effective_f"]), 2) for c in cols), "stat",
                     "stats")] if "effective_f" in cols[0] and any(np.isfinite(float(c["effective_f"])) for c in cols)
           else []),
+        *[TableRow(title, tuple(_fmt(float(c[col]), 3) for c in cols), "stat", "stats")
+          for col, title in (("pretrend_p_value", "Pre-trend test, p-value"),
+                             ("already_treated_weight", "Weight on already-treated controls"))
+          if col in cols[0] and any(np.isfinite(float(c[col])) for c in cols)],
         TableRow("Mean of outcome", tuple(_fmt(float(c["outcome_mean"]), digits) for c in cols), "stat", "stats"),
         TableRow("SD of outcome", tuple(_fmt(float(c["outcome_sd"]), digits) for c in cols), "stat", "stats"),
     ]

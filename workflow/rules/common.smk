@@ -91,7 +91,7 @@ def benchmark_of(stage, name="all"):
 def first_answer():
     """The outputs a user waits for: the ledger, its summary and the curve figures."""
     return [str(PLAN.paths.ledger_parquet), str(PLAN.paths.file("summary.csv"))] + [
-        str(p) for p in PLAN.figure_paths("png")]
+        str(p) for p in PLAN.figure_paths("png") + PLAN.adoption_figure_paths("png")]
 
 
 def final_outputs():

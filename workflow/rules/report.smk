@@ -44,6 +44,31 @@ rule summarise_curve:
         "../scripts/summarise_curve.py"
 
 
+rule draw_adoption:
+    # a staggered design's event study and decomposition: part of the first answer too
+    priority: 50
+    input:
+        ledger=str(PLAN.paths.ledger_parquet),
+        coefficients=str(PLAN.paths.coefficients_parquet),
+    output:
+        event_png=report(
+            str(PLAN.paths.adoption_figure("event", "{design}", "png")),
+            caption="../report/event.rst",
+            category="Staggered adoption",
+        ),
+        event_pdf=str(PLAN.paths.adoption_figure("event", "{design}", "pdf")),
+        decomposition_png=str(PLAN.paths.adoption_figure("decomposition", "{design}", "png")),
+        decomposition_pdf=str(PLAN.paths.adoption_figure("decomposition", "{design}", "pdf")),
+    log:
+        log_of("draw_adoption", "{design}"),
+    benchmark:
+        benchmark_of("draw_adoption", "{design}")
+    conda:
+        "../envs/fegrid.yaml"
+    script:
+        "../scripts/draw_adoption.py"
+
+
 rule draw_null_curves:
     input:
         snapshot=str(PLAN.snapshot_path),
@@ -87,6 +112,7 @@ rule render_appendix:
         ledger=str(PLAN.paths.ledger_parquet),
         joint=PLAN.paths.file("joint_tests.csv"),
         figures=[str(p) for p in PLAN.figure_paths("pdf")],
+        adoption=[str(p) for p in PLAN.adoption_figure_paths("pdf")],
     output:
         tex=PLAN.paths.file("appendix.tex"),
         # the results tables (tables.<name> in the config), each as .tex, .md and .html
@@ -106,6 +132,7 @@ rule compile_appendix:
     input:
         tex=PLAN.paths.file("appendix.tex"),
         figures=[str(p) for p in PLAN.figure_paths("pdf")],
+        adoption=[str(p) for p in PLAN.adoption_figure_paths("pdf")],
     output:
         pdf=report(PLAN.paths.file("appendix.pdf"), caption="../report/appendix.rst", category="Appendix"),
     log:

@@ -311,8 +311,49 @@ def test_robust_estimators_through_the_engine_agree_with_the_functions():
     # without data.adoption the cohorts come from the treatment column: the same numbers
     gt2, _ = engine(df, "group_time", kind="clustered", window=[-3, 3], adoption=None)
     assert gt2.estimate == pytest.approx(gt.estimate, abs=1e-12)
-    refused, _ = engine(df, "group_time", controls=("x",))
-    assert refused.status == "not_identified" and "without covariates" in refused.message
+    with_x, with_x_coefs = engine(df, "group_time", controls=("x",), kind="clustered", window=[-3, 3])
+    assert with_x.status == "ok" and with_x.estimate != pytest.approx(gt.estimate, abs=1e-6)
+
+
+def test_group_time_with_covariates_by_hand():
+    # Callaway & Sant'Anna (2021) with covariates, outcome-regression form (Sant'Anna & Zhao 2020): for each
+    # ATT(g, t), statsmodels OLS of the change on the base-period covariate among the controls, predicted
+    # for the cohort; the overall effect's standard error against a numerical derivative of the whole
+    # estimator in each unit's weight (weighted least squares and weighted means)
+    df = staggered_panel(60, 6, [3, 4, None], [1, 2, 2], seed=51)
+    design = cohorts_of(df["unit"].to_numpy(), df["period"].to_numpy(), adoption=df["adopt"].to_numpy())
+    opts = StaggeredOptions(control="not_yet_treated", draws=0)
+    agg, table = group_time(df["y"].to_numpy(), design, df["unit"].to_numpy(), opts, seed=1, level=0.95,
+                            covariates=df[["x"]].to_numpy())
+    wide = df.pivot(index="unit", columns="period", values="y")
+    xw = df.pivot(index="unit", columns="period", values="x")
+    adopt = df.groupby("unit")["adopt"].first()
+
+    def att(g: int, t: int, weights: pd.Series) -> float:
+        ctrl = (adopt.isna() | (adopt > max(t, g - 1))) & (adopt != g)
+        frame = pd.DataFrame({"dy": wide[t] - wide[g - 1], "x": xw[g - 1], "w": weights})
+        fit = smf.wls("dy ~ x", data=frame[ctrl], weights=frame.loc[ctrl, "w"]).fit()
+        mine = adopt == g
+        return float(np.average(frame.loc[mine, "dy"] - fit.predict(frame[mine]), weights=weights[mine]))
+
+    ones = pd.Series(1.0, index=wide.index)
+    for row in table.itertuples():
+        assert row.estimate == pytest.approx(att(int(row.cohort), int(row.period), ones), abs=1e-10)
+
+    def overall(weights: pd.Series) -> float:
+        num = total = 0.0
+        for g in (3, 4):
+            size = weights[adopt == g].sum()
+            for t in range(g, 7):
+                num += size * att(g, t, weights)
+                total += size
+        return num / total
+
+    base = overall(ones)
+    assert agg.estimates[0] == pytest.approx(base, abs=1e-10)
+    eps = 1e-6
+    psi = np.array([(overall(ones + eps * (ones.index == i)) - base) / eps for i in wide.index])
+    assert np.sqrt(agg.covariance[0, 0]) == pytest.approx(np.sqrt((psi ** 2).sum() * 60 / 59), rel=1e-4)
 
 
 # ---- an open dataset: linearmodels' jobtraining (Holzer et al. 1993, as in Wooldridge's textbook) ----------

@@ -1088,14 +1088,14 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
         except ValueError as exc:
             return refuse(str(exc))
         return _LinearPieces(pieces.with_clusters)
-    if spec.controls:
-        return refuse("group-time effects are computed without covariates (remove the control set)")
+    covariates = design.frame[list(spec.controls)].to_numpy(dtype=float) if spec.controls else None
     seed = zlib.crc32(f"{spec.outcome}|{spec.focal}".encode())  # the same draws for the design in every run
     # the multiplier bootstrap's band is for reading the event study: not needed in the joint tests' draws
     draws = options.draws if design.keep_all else 0
 
     def compute(clusters: np.ndarray) -> LinearEstimates:
-        got, _ = group_time(y, cohorts, clusters, replace_options(options, draws), seed=seed, level=s.level)
+        got, _ = group_time(y, cohorts, clusters, replace_options(options, draws), seed=seed, level=s.level,
+                            covariates=covariates)
         return got
 
     return _LinearPieces(compute)
@@ -1279,8 +1279,11 @@ def fit_one(
     tolerance: float = DEFAULTS["estimation.tolerance"],
     level: float = DEFAULTS["confidence_level"],
     estimator: Estimator | None = None,
+    treatment: str | None = None,
+    adoption: str | None = None,
 ) -> SpecResult:
-    """Fit one specification; a convenience wrapper around :func:`fit_block`.
+    """Fit one specification; a convenience wrapper around :func:`fit_block`. ``treatment`` (and
+    ``adoption``) declare a staggered adoption, as ``data.treatment`` and ``data.adoption`` do.
 
     Examples
     --------
@@ -1292,7 +1295,7 @@ def fit_one(
     >>> round(r.estimate, 6), r.status
     (2.0, 'ok')
     """
-    settings = BlockSettings(absorb=absorb, weights=weights, unit=unit, time=time,
-                             keep_singletons=keep_singletons, tolerance=tolerance, level=level)
+    settings = BlockSettings(absorb=absorb, weights=weights, unit=unit, time=time, treatment=treatment,
+                             adoption=adoption, keep_singletons=keep_singletons, tolerance=tolerance, level=level)
     spec = SpecRequest("one", outcome, focal, tuple(controls), inference or Inference(), estimator or Estimator())
     return fit_block(frame, settings, [spec]).results[0]

@@ -664,8 +664,8 @@ def _balanced_units(design: Cohorts, y: np.ndarray,
 
 
 def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: StaggeredOptions,
-               seed: int, level: float) -> tuple[LinearEstimates, pd.DataFrame]:
-    """Callaway & Sant'Anna (2021) without covariates, on the units observed in every period.
+               seed: int, level: float, covariates: np.ndarray | None = None) -> tuple[LinearEstimates, pd.DataFrame]:
+    """Callaway & Sant'Anna (2021), on the units observed in every period.
 
     ``ATT(g, t) = mean_{G=g}(Y_t - Y_{g-1}) - mean_C(Y_t - Y_{g-1})`` for every cohort ``g`` adopting
     inside the periods and every period ``t != g - 1`` (the base period is ``g - 1`` for pre-periods
@@ -676,14 +676,26 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
     band's critical value over the window's relative periods comes from a multiplier bootstrap with
     Rademacher weights by cluster (``options.draws`` draws).
 
+    With ``covariates`` (n, k), each ``ATT(g, t)`` takes the outcome-regression form (Sant'Anna & Zhao
+    2020, as Callaway & Sant'Anna 2021 use it): ``mean_{G=g}(dY - X'b)`` with ``b`` the least-squares
+    fit of ``dY`` on a constant and the covariates among the controls, the covariates taken in the base
+    period ``g - 1``; its influence function counts the estimation of ``b``.
+
     Returns the aggregated estimates and the table of ``ATT(g, t)`` (cohort, period, relative,
     estimate, std_error).
     """
+    if covariates is not None:  # carried through the balancing with the outcome
+        y = np.column_stack([y, covariates])
     design, y, clusters, left_out = _balanced_units(design, y, clusters)
+    y, covariates = (y[:, 0], y[:, 1:]) if covariates is not None else (y, None)
     u, t = design.unit, design.period.astype(np.int64)
     n_units, n_periods = int(u.max()) + 1, int(t.max()) + 1
     ymat = np.empty((n_units, n_periods))
     ymat[u, t] = y
+    xmat = None
+    if covariates is not None:
+        xmat = np.empty((n_units, n_periods, covariates.shape[1]))
+        xmat[u, t] = covariates
     start = pd.Series(design.cohort).groupby(u).first().to_numpy()
     group = np.where(np.isfinite(start), start, np.inf)
     cl_unit = pd.Series(clusters).groupby(u).agg(["first", "nunique"])
@@ -708,10 +720,25 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
             if not ctrl.any():
                 continue
             dy = ymat[:, tt] - base
-            mu1, mu0 = dy[mine].mean(), dy[ctrl].mean()
-            inf = mine * (dy - mu1) / mine.mean() - ctrl * (dy - mu0) / ctrl.mean()
-            cells.append((gi, g, tt, mu1 - mu0))
-            psi.append(inf / n_units)
+            if xmat is None:
+                mu1, mu0 = dy[mine].mean(), dy[ctrl].mean()
+                inf = mine * (dy - mu1) / mine.mean() - ctrl * (dy - mu0) / ctrl.mean()
+                cells.append((gi, g, tt, mu1 - mu0))
+                psi.append(inf / n_units)
+                continue
+            x = np.column_stack([np.ones(n_units), xmat[:, g - 1, :]])
+            xc = x[ctrl]
+            gram = xc.T @ xc
+            if np.linalg.matrix_rank(gram) < x.shape[1]:
+                raise ValueError(f"the covariates are collinear among the controls of cohort "
+                                 f"{period_label(design.labels[g])} in period {period_label(design.labels[tt])}")
+            b = np.linalg.solve(gram, xc.T @ dy[ctrl])
+            resid = dy - x @ b
+            att = resid[mine].mean()
+            # sum_i psi_i: treated (resid - att) / n_1, less the fit's error moved through the treated mean of X
+            lever = np.linalg.solve(gram, x[mine].mean(axis=0))
+            psi.append(mine * (resid - att) / mine.sum() - ctrl * (x @ lever) * resid)
+            cells.append((gi, g, tt, att))
     att = np.array([c[3] for c in cells])
     psi_m = np.column_stack(psi)  # (units, cells): estimate - truth ~ sum_i psi_i
     rel = np.array([c[2] - c[1] for c in cells])

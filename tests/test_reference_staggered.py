@@ -84,7 +84,8 @@ def test_bacon_refuses_an_unbalanced_panel():
 def _imputation_by_hand(df: pd.DataFrame, controls: str) -> tuple[float, float, dict[int, float]]:
     """Borusyak, Jaravel & Spiess (2024) by hand: statsmodels OLS with explicit dummies on the untreated
     rows, counterfactuals predicted for the treated rows, averaged; Theorem 3's variance with dense
-    linear algebra (implied weights -Z0 pinv(Z0'Z0) Z1'w1), clustered by unit with G/(G-1)."""
+    linear algebra (implied weights -Z0 inv(Z0'Z0) Z1'w1 on a full-rank set of dummies), clustered by unit
+    with G/(G-1)."""
     untreated = df[df["d"] == 0]
     treated = df[df["d"] == 1]
     fit = smf.ols(f"y ~ C(unit) + C(period){controls}", data=untreated).fit()
@@ -92,7 +93,10 @@ def _imputation_by_hand(df: pd.DataFrame, controls: str) -> tuple[float, float, 
     by_rel = tau.groupby(treated["period"] - treated["adopt"]).mean().to_dict()
     # dense design matrices for the variance
     def design(frame):
-        z = pd.get_dummies(frame[["unit", "period"]].astype(str), dtype=float)
+        # every unit's dummy and every period's but the first: full column rank, so the inverse is exact
+        # (a pseudo-inverse of the rank-deficient full set depends on the platform's rounding)
+        z = pd.concat([pd.get_dummies(frame["unit"].astype(str), prefix="u", dtype=float),
+                       pd.get_dummies(frame["period"].astype(str), prefix="t", dtype=float, drop_first=True)], axis=1)
         if controls:
             z["x"] = frame["x"]
         return z
@@ -100,7 +104,7 @@ def _imputation_by_hand(df: pd.DataFrame, controls: str) -> tuple[float, float, 
     z0 = z_all.loc[untreated.index].to_numpy()
     z1 = z_all.loc[treated.index].to_numpy()
     w1 = np.full(len(treated), 1 / len(treated))
-    v0 = -z0 @ np.linalg.pinv(z0.T @ z0) @ z1.T @ w1
+    v0 = -z0 @ np.linalg.solve(z0.T @ z0, z1.T @ w1)
     e0 = untreated["y"] - fit.fittedvalues
     cell = tau.groupby([treated["adopt"], treated["period"] - treated["adopt"]]).transform("mean")
     e1 = tau - cell

@@ -36,7 +36,7 @@ import numpy as np
 
 from .errors import EstimationError
 
-__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind"]
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_sums"]
 
 
 @dataclass(frozen=True)
@@ -70,7 +70,7 @@ class CovarianceOutcome:
     psd_adjusted: bool = False
 
 
-def _cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
+def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
     """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``."""
     n_groups = int(codes.max()) + 1
     if n_groups == len(codes):  # one observation per cluster (e.g. unit x period): the sums are the rows
@@ -171,7 +171,7 @@ class OneWay(_Kind):
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
         dof = _dof(n, n_params + absorbed_df - nested_df)
-        sums, g = _cluster_sums(fit.h * fit.e, clusters[0])
+        sums, g = cluster_sums(fit.h * fit.e, clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
         return CovarianceOutcome(g / (g - 1) * (n - 1) / dof * float(sums @ sums), g - 1, (g,))
@@ -179,7 +179,7 @@ class OneWay(_Kind):
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = scores.shape[0]
         dof = _dof(n, n_params + absorbed_df - nested_df)
-        u, g = _cluster_sums(scores, clusters[0])
+        u, g = cluster_sums(scores, clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
         return g / (g - 1) * (n - 1) / dof * (u.T @ u)
@@ -213,7 +213,7 @@ class TwoWay(_Kind):
         dof = _dof(n, n_params + absorbed_df - nested_df)
         meat = np.zeros((scores.shape[1], scores.shape[1]))
         for codes, sign in zip(clusters, (1.0, 1.0, -1.0)):
-            u, g = _cluster_sums(scores, codes)
+            u, g = cluster_sums(scores, codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
             meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)

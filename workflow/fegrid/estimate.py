@@ -47,7 +47,6 @@ from .staggered import (
     interaction_cells,
     interaction_weights,
     negative_weights,
-    replace_options,
     share_covariance,
     wald_p_value,
 )
@@ -1094,7 +1093,7 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
     draws = options.draws if design.keep_all else 0
 
     def compute(clusters: np.ndarray) -> LinearEstimates:
-        got, _ = group_time(y, cohorts, clusters, replace_options(options, draws), seed=seed, level=s.level,
+        got, _ = group_time(y, cohorts, clusters, replace(options, draws=draws), seed=seed, level=s.level,
                             covariates=covariates)
         return got
 

@@ -746,8 +746,13 @@ def appendix(grid: Grid, ledger: str | Path, joint_csv: str | Path, out: str | P
         write_tables(built, {name: {e: Path(p) for e, p in files.items()} for name, files in tables.items()})
     from .adoption import adoption_designs, baseline_names, latex_section
 
-    sections = [latex_section(led, outcome, focal, f"figures/event-{pair_slug(outcome, focal)}.pdf",
-                              f"figures/decomposition-{pair_slug(outcome, focal)}.pdf", level=grid.level,
+    paths = RunPaths.of_file(out)  # appendix.tex sits in the run folder; figures are named relative to it
+
+    def figure(kind: str, outcome: str, focal: str) -> str:
+        return str(paths.adoption_figure(kind, pair_slug(outcome, focal), "pdf").relative_to(paths.run))
+
+    sections = [latex_section(led, outcome, focal, figure("event", outcome, focal),
+                              figure("decomposition", outcome, focal), level=grid.level,
                               baseline=baseline_names(grid.raw), labels=grid.raw.get("labels") or {})
                 for outcome, focal in adoption_designs(led)]
     render_appendix(grid, led, joint, figure_names(led), out, draws=grid.draws, seed=grid.seed,

@@ -43,6 +43,7 @@ from typing import NamedTuple
 import numpy as np
 import pandas as pd
 
+from .covariance import cluster_sums
 from .errors import ConfigError, DataError
 
 __all__ = [
@@ -67,7 +68,6 @@ __all__ = [
     "imputation",
     "imputation_pieces",
     "ImputationPieces",
-    "replace_options",
     "group_time",
     "wald_p_value",
     "term_of",
@@ -408,19 +408,9 @@ class LinearEstimates:
     pretrend_p_value: float = float("nan")
 
 
-def replace_options(options: StaggeredOptions, draws: int) -> StaggeredOptions:
-    """``options`` with another number of multiplier-bootstrap draws."""
-    from dataclasses import replace
-
-    return replace(options, draws=draws)
-
-
 def _cluster_covariance(v: np.ndarray, e: np.ndarray, clusters: np.ndarray) -> tuple[np.ndarray, int]:
     """``G/(G-1) sum_g s_g s_g'`` with ``s_g = sum_{i in g} v_i e_i`` for each column of ``v`` (n, q)."""
-    codes, _ = pd.factorize(clusters)
-    g = int(codes.max()) + 1
-    sums = np.zeros((g, v.shape[1]))
-    np.add.at(sums, codes, v * e[:, None])
+    sums, g = cluster_sums(v * e[:, None], pd.factorize(clusters)[0])
     return sums.T @ sums * (g / (g - 1) if g > 1 else float("nan")), g
 
 
@@ -779,9 +769,7 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
             infl.append(ig)
     infl_m = np.column_stack(infl)
     cl_codes, _ = pd.factorize(unit_cluster)
-    n_cl = int(cl_codes.max()) + 1
-    sums = np.zeros((n_cl, infl_m.shape[1]))
-    np.add.at(sums, cl_codes, infl_m)
+    sums, n_cl = cluster_sums(infl_m, cl_codes)
     factor = n_cl / (n_cl - 1) if n_cl > 1 else float("nan")
     cov = sums.T @ sums * factor
     # multiplier bootstrap over the window's relative periods: sup-t critical value
@@ -795,8 +783,7 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
             signs = rng.choice((-1.0, 1.0), size=(options.draws, n_cl))
             stats = np.abs(signs @ sums[:, in_window][:, ok]) * math.sqrt(factor) / sd[ok]
             critical = float(np.quantile(stats.max(axis=1), level))
-    cell_sums = np.zeros((n_cl, psi_m.shape[1]))
-    np.add.at(cell_sums, cl_codes, psi_m)
+    cell_sums, _ = cluster_sums(psi_m, cl_codes)
     se_cells = np.sqrt((cell_sums ** 2).sum(axis=0) * factor)
     table = pd.DataFrame({"cohort": [design.labels[c[1]] for c in cells],
                           "period": [design.labels[c[2]] for c in cells], "relative": rel,

@@ -349,3 +349,36 @@ def test_demeaning_a_column_does_not_depend_on_its_companions(wage_panel: pd.Dat
         alone = ab.demean(wage_panel[[col]].to_numpy(dtype=float))
         assert alone.iterations[0] == together.iterations[j], col
         assert np.array_equal(alone.values[:, 0], together.values[:, j]), col
+
+
+@pytest.mark.parametrize("case", ["two_way", "two_way_weighted", "trend_and_year"])
+def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wage_panel: pd.DataFrame,
+                                                                  jobtraining: pd.DataFrame) -> None:
+    """Source: numpy least squares on explicit dummy columns (firm and year dummies on linearmodels'
+    jobtraining, unbalanced once missing scrap rates are dropped; a dummy and a slope per worker plus
+    year dummies on linearmodels' wage_panel). Two terms of which one is a small categorical effect
+    are solved directly: one sweep confirms the solution, which is exact to rounding (alternating
+    projections stop at the tolerance, up to 1e-8 away on these data at the default tolerance)."""
+    if case == "trend_and_year":
+        df = wage_panel[wage_panel["nr"] < 3000].assign(t=lambda d: d["year"] - 1980.0)
+        terms, unit, weights = (TrendTerm("nr"), EffectTerm(("year",))), "nr", None
+        cols = ["lwage", "union", "hours"]
+    else:
+        df = jobtraining.dropna(subset=["lscrap"]).iloc[5:].assign(t=lambda d: d["year"] - 1987.0)
+        terms, unit = parse_absorb(["fcode", "year"]), "fcode"
+        weights = df["employ"].fillna(1.0).to_numpy(dtype=float) + 1.0 if case.endswith("weighted") else None
+        cols = ["lscrap", "grant", "grant_1"]
+    absorber = Absorber(df, terms, weights=weights, time="t")
+    out = absorber.demean(df[cols].to_numpy(dtype=float))
+    dummies = [pd.get_dummies(df[unit]).to_numpy(dtype=float), pd.get_dummies(df["year"]).to_numpy(dtype=float)]
+    if case == "trend_and_year":
+        dummies.append(dummies[0] * df["t"].to_numpy()[:, None])
+    d = np.hstack(dummies)
+    sw = np.sqrt(np.ones(len(df)) if weights is None else weights)[:, None]
+    x = df[cols].to_numpy(dtype=float)
+    exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
+    assert absorber._direct is not None
+    assert np.all(out.iterations == 1) and np.all(out.converged)
+    assert np.max(np.abs(out.values - exact)) <= 1e-11 * np.max(np.abs(x))
+    for j in range(len(cols)):  # a column alone gives the same bytes (see the test above)
+        assert np.array_equal(absorber.demean(x[:, [j]]).values[:, 0], out.values[:, j])

@@ -12,7 +12,11 @@ A choice of absorbed effects is a tuple of *terms*. Two kinds of term exist, hel
 
 Terms are compiled on a fixed set of rows into projections; their joint residual maker is computed
 by alternating projections (Gaure 2013) with the line-search acceleration of Gearhart & Koshy
-(1989). One term alone is projected out exactly in one sweep.
+(1989). One term alone is projected out exactly in one sweep. Two terms of which the smaller is a
+categorical effect with few levels (unit and period effects, the commonest case) are projected out
+directly: the large term's residuals, less their projection on the small term's dummies made
+orthogonal to the large term (Frisch-Waugh-Lovell), from a small dense system; the alternating
+projections then only confirm the tolerance, starting from that solution.
 """
 
 from __future__ import annotations
@@ -309,6 +313,60 @@ class _Projection:
         return out
 
 
+#: Largest number of levels of the small term that :class:`_TwoTerms` solves directly, and largest
+#: size of its (large-term levels x small-term levels) table; beyond, alternating projections alone.
+DIRECT_MAX_LEVELS = 128
+DIRECT_MAX_CELLS = 20_000_000
+
+
+class _TwoTerms:
+    """Exact residual maker of a large term ``P`` (categorical or trend) and a small categorical term.
+
+    With ``D`` the small term's dummies and ``M_P`` the large term's residual maker, the residuals
+    of ``x`` on both are ``M_P x - M_P D g`` with ``g`` solving ``(D'W M_P D) g = D'W M_P x``
+    (Frisch-Waugh-Lovell). ``M_P D`` is never formed: within a group of ``P``, the projection of
+    a dummy is the group's (weighted) share of the level (plus, for a trend, the slope term), so
+    ``D'W M_P D = diag(W_t) - sum_g (c_g c_g' / W_g + e_g e_g' / S_g)`` with ``c_g`` the weighted
+    counts of the levels in group ``g``, ``e_g`` the same weighted by the centred time and ``S_g``
+    its sum of squares. The system is solved by a pseudo-inverse (the dummies sum to the constant,
+    which ``P`` absorbs).
+    """
+
+    def __init__(self, large: _Projection, small: np.ndarray, n_small: int, w: np.ndarray) -> None:
+        self.large = large
+        self.small = small
+        self.n_small = n_small
+        self.w = w
+        n_groups = len(large.inv_wsum)
+        cells = large.codes * n_small + small
+        counts = np.bincount(cells, w, minlength=n_groups * n_small).reshape(n_groups, n_small)
+        self.shares = counts * large.inv_wsum[:, None]
+        gram = np.diag(np.bincount(small, w, minlength=n_small)) - self.shares.T @ counts
+        self.slopes = None
+        if large.slope is not None:
+            timed = np.bincount(cells, w * large.slope, minlength=n_groups * n_small).reshape(n_groups, n_small)
+            self.slopes = timed * large.inv_ss[:, None]
+            gram -= self.slopes.T @ timed
+        gram = (gram + gram.T) / 2
+        eigval, eigvec = np.linalg.eigh(gram)
+        keep = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+        self.inverse = (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T
+
+    def apply(self, x: np.ndarray) -> np.ndarray:
+        """Residuals of the columns of ``x`` (Fortran order) on both terms, column by column (so that
+        a column's result does not depend on the other columns: no matrix products across them)."""
+        xt = self.large.apply(x)
+        for j in range(x.shape[1]):
+            col = xt[:, j]
+            g = self.inverse @ np.bincount(self.small, col if self.large.unweighted else col * self.w,
+                                           minlength=self.n_small)
+            col -= g.take(self.small)
+            col += (self.shares @ g).take(self.large.codes)
+            if self.slopes is not None:
+                col += (self.slopes @ g).take(self.large.codes) * self.large.slope
+        return xt
+
+
 def _components(a: np.ndarray, la: int, b: np.ndarray, lb: int) -> int:
     graph = sp.coo_array((np.ones(len(a)), (a, b + la)), shape=(la + lb, la + lb))
     return int(connected_components(graph, directed=False)[0])
@@ -419,6 +477,20 @@ class Absorber:
             self._projections = [
                 _Projection(self._codes[i], self._nlev[i], self.w, slopes[i]) for i in active
             ]
+
+    @cached_property
+    def _direct(self) -> _TwoTerms | None:
+        """The direct solver, when there are two active terms and the smaller is a categorical effect
+        with few levels (see :class:`_TwoTerms`)."""
+        if len(self._projections) != 2:
+            return None
+        a, b = sorted(range(2), key=lambda j: (self._projections[j].slope is None, -self._nlev[self._active[j]]))
+        large, small = self._projections[a], self._projections[b]
+        n_small = self._nlev[self._active[b]]
+        if (small.slope is not None or n_small > DIRECT_MAX_LEVELS
+                or len(large.inv_wsum) * n_small > DIRECT_MAX_CELLS):
+            return None
+        return _TwoTerms(large, small.codes, n_small, self.w)
     @cached_property
     def absorbed_df(self) -> int:
         """Degrees of freedom taken by the absorbed terms (see the Notes); counted when first asked
@@ -475,7 +547,8 @@ class Absorber:
     def demean(self, x: np.ndarray) -> DemeanOutcome:
         """Residuals of the columns of ``x`` (n, k) on all absorbed terms.
 
-        One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
+        One projection is exact in one sweep; two that :class:`_TwoTerms` solves directly start from
+        its solution. Several are iterated: ``x <- x - t (x - T x)`` with
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction.
         """
@@ -505,6 +578,8 @@ class Absorber:
         scale[scale == 0] = 1.0
         active = np.arange(k)
         converged[:] = False
+        if self._direct is not None:  # start from the direct solution: the first sweep then confirms it
+            x = self._direct.apply(x)
         cur = x
         for it in range(1, self.max_iterations + 1):
             tx = self._sweep(cur)

@@ -3,12 +3,14 @@
 Is the curve as a whole more than the grid would give under the null of no effect? For every
 specification ``k`` with estimate ``b_k``, the null is imposed by ``y*_k = y - b_k x``; bootstrap
 samples are drawn (the same draw for every specification; whole units or clusters are drawn with
-replacement, never rows, and a unit drawn twice enters as two units); the whole grid is refitted
-on each draw. Because least squares and 2SLS are linear in ``y``, the estimate on ``y*_k`` is the
-draw's ordinary estimate less ``b_k``, with the same residuals, so each draw is one ordinary refit
-of the grid. Poisson PML is not linear in ``y``: its null is imposed multiplicatively,
-``y*_k = y exp(-b_k x)`` (whose conditional mean no longer depends on ``x``), and each draw refits
-the specification on ``y*_k`` (the draw's rows are marked ``imposed``).
+replacement, never rows, and a unit drawn twice enters as two units); a draw's sample is the copies of
+the sample's rows in the data; the whole grid is refitted on each draw. Because least squares and
+2SLS are linear in ``y``, the estimate on ``y*_k`` is the draw's ordinary estimate less ``b_k``,
+with the same residuals, so each draw is one ordinary refit of the grid (for least squares, a
+reweighting of the data already demeaned: :mod:`fegrid.reweight`). Poisson PML is not linear in
+``y``: its null is imposed multiplicatively, ``y*_k = y exp(-b_k x)`` (whose conditional mean no
+longer depends on ``x``), and each draw refits the specification on ``y*_k`` (the draw's rows are
+marked ``imposed``).
 
 Three statistics of the curve are compared with their bootstrap distributions under the null,
 each curve (observed or drawn) read in its own dominant direction, the sign of its median:
@@ -37,9 +39,11 @@ from .estimate import SpecRequest, fit_block
 from .estimators import POISSON
 from .grid import Grid, Spec
 from .ledger import PAIR, STATUS_OK
-from .samples import apply_sample
+from .reweight import Draw, draw_levels, prepare_blocks
+from .samples import SampleDef, apply_sample
 
-__all__ = ["resample_panel", "without_wild", "draw_curves", "curve_statistics", "joint_tests", "STATISTICS",
+__all__ = ["resample_panel", "stack_draw", "without_wild", "draw_curves", "curve_statistics", "joint_tests",
+           "STATISTICS",
            "DRAW_COLUMNS"]
 
 STATISTICS = ("median_estimate", "share_significant", "stouffer_z")
@@ -52,20 +56,16 @@ def resample_panel(frame: pd.DataFrame, column: str, unit: str, rng: np.random.G
     are relabelled with that position, so that a unit drawn twice has two fixed effects.
     """
     codes, levels = pd.factorize(frame[column], sort=True)
-    n_levels = len(levels)
-    order = np.argsort(codes, kind="stable")
-    counts = np.bincount(codes, minlength=n_levels)
-    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    picks = rng.integers(0, n_levels, size=n_levels)
-    lengths = counts[picks]
-    offsets = np.repeat(starts[picks] - np.concatenate([[0], np.cumsum(lengths)[:-1]]), lengths)
-    rows = order[offsets + np.arange(lengths.sum())]
-    out = frame.iloc[rows].reset_index(drop=True)
-    position = np.repeat(np.arange(n_levels), lengths)
+    return stack_draw(frame, draw_levels(codes, len(levels), rng), column, unit)
+
+
+def stack_draw(frame: pd.DataFrame, draw: Draw, column: str, unit: str) -> pd.DataFrame:
+    """The stacked panel of a draw (see :func:`resample_panel`)."""
+    out = frame.iloc[draw.rows].reset_index(drop=True)
     unit_codes = pd.factorize(out[unit], sort=True)[0]
-    out[unit] = position * (int(unit_codes.max()) + 1) + unit_codes
+    out[unit] = draw.position * (int(unit_codes.max()) + 1) + unit_codes
     if column != unit:
-        out[column] = position
+        out[column] = draw.position
     return out
 
 
@@ -78,30 +78,63 @@ def without_wild(request: SpecRequest) -> SpecRequest:
 
 
 def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: Sequence[int], *,
-                seed: int, column: str) -> pd.DataFrame:
-    """Refit ``specs`` on each bootstrap draw; one row per draw and specification."""
-    by_block: dict[str, list[Spec]] = {}
-    for spec in specs:
-        by_block.setdefault(spec.block_key, []).append(spec)
+                seed: int, column: str, reweight: bool = True) -> pd.DataFrame:
+    """Refit ``specs`` on each bootstrap draw; one row per draw and specification.
+
+    Least-squares specifications are refitted as reweightings of the data (:mod:`fegrid.reweight`)
+    unless ``reweight`` is false; the others, and any block of a draw the reweighting leaves, are
+    refitted on the draw's stacked panel.
+    """
     rows: list[dict[str, Any]] = []
-    observed = _poisson_estimates(grid, frame, by_block)
+    all_blocks: dict[str, list[Spec]] = {}
+    for spec in specs:
+        all_blocks.setdefault(spec.block_key, []).append(spec)
+    observed = _poisson_estimates(grid, frame, all_blocks)
     frame = frame.copy(deep=False)
     frame.attrs = {}  # pandas deep-copies attrs at every operation on every draw's copies
     for col in frame.columns:  # text keys as categories: every draw takes, filters and groups them cheaply
         if not pd.api.types.is_numeric_dtype(frame[col]) and not isinstance(frame[col].dtype, pd.CategoricalDtype):
             frame[col] = pd.Categorical(frame[col].astype(object),
                                         categories=sorted(frame[col].dropna().astype(object).unique(), key=str))
+    codes, levels = pd.factorize(frame[column], sort=True)
+    sample_rows: dict[str, np.ndarray] = {}
+
+    def in_sample(sample: SampleDef) -> np.ndarray:
+        """The rows of the data in ``sample``: a draw's sample is their copies (not the filters applied
+        again to the stacked panel, whose unit and resampling labels are the copies' positions)."""
+        skey = repr(sample.canonical())
+        if skey not in sample_rows:
+            mask = np.zeros(len(frame), dtype=bool)
+            try:
+                mask[apply_sample(frame.assign(__row__=np.arange(len(frame))), sample, grid.panel)["__row__"]] = True
+            except FegridError:
+                pass
+            sample_rows[skey] = mask
+        return sample_rows[skey]
+
+    blocks, stacked = (prepare_blocks(grid, frame, specs, codes, len(levels), column) if reweight
+                       else ([], list(specs)))
+    by_block: dict[str, list[Spec]] = {}
+    for spec in stacked:
+        by_block.setdefault(spec.block_key, []).append(spec)
     for d in draws:
-        boot = resample_panel(frame, column, grid.panel.unit, np.random.default_rng([seed, d]))
+        draw = draw_levels(codes, len(levels), np.random.default_rng([seed, d]))
+        boot: pd.DataFrame | None = None  # the stacked panel, made only when a block needs it
         samples: dict[str, pd.DataFrame | None] = {}
-        for bkey in sorted(by_block):
-            block = by_block[bkey]
+        todo = [by_block[k] for k in sorted(by_block)]
+        for block in blocks:
+            got = block.refit(draw)
+            if got is None:
+                todo.append(block.specs)
+            else:
+                rows.extend({"draw": d, **r, "imposed": False} for r in got)
+        for block in todo:
             skey = repr(block[0].sample.canonical())
             if skey not in samples:
-                try:
-                    samples[skey] = apply_sample(boot, block[0].sample, grid.panel)
-                except FegridError:  # this draw left the sample empty
-                    samples[skey] = None
+                chosen = in_sample(block[0].sample)[draw.rows]
+                if boot is None and chosen.any():
+                    boot = stack_draw(frame, draw, column, grid.panel.unit)
+                samples[skey] = boot.loc[chosen] if boot is not None and chosen.any() else None
             part = samples[skey]
             if part is None:
                 rows.extend({"draw": d, "spec_id": s.spec_id, "estimate": np.nan, "std_error": np.nan,

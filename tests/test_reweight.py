@@ -1,0 +1,110 @@
+"""The joint tests' least-squares draws as reweightings equal the stacked refits they replace.
+
+Data: linearmodels' wage_panel (an open dataset; see conftest.py), on the grid of tests/helpers.py
+with weights, singletons and a sample that a draw can empty. The reference is the second, older
+algorithm kept in fegrid itself: every draw's panel stacked copy by copy and refitted by the engine
+(:func:`fegrid.joint.draw_curves` with ``reweight=False``), which tests/test_joint.py checks against
+brute-force refits.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from helpers import wage_grid
+
+from fegrid.estimate import fit_block
+from fegrid.grid import load_config, spec_table
+from fegrid.joint import draw_curves, joint_tests
+from fegrid.reweight import draw_levels, prepare_blocks
+
+KEY = ["draw", "spec_id"]
+
+
+def _grid(tmp_path: Path, wage_panel: pd.DataFrame):
+    raw = wage_grid(tmp_path, wage_panel, weights={"unweighted": None, "by_hours": "hours"})
+    raw["samples"] = {**raw["samples"],
+                      "long_hours": {"range": {"hours": {"min": 2600}}},  # leaves workers with one year: singletons
+                      "without_worker_13": {"drop": {"nr": [13]}},  # filters on the unit column itself
+                      "worker_13": {"keep": {"nr": [13]}}}  # a draw without worker 13 leaves it empty
+    raw["control_sets"] = {"combinations_of": ["expersq", "hours"]}
+    grid = load_config(raw)
+    return grid, grid.expand()
+
+
+def _ledger(grid, frame, specs) -> pd.DataFrame:
+    rows = []
+    by_block: dict[str, list] = {}
+    for s in specs:
+        by_block.setdefault(s.block_key, []).append(s)
+    for block in by_block.values():
+        from fegrid.samples import apply_sample
+
+        part = apply_sample(frame, block[0].sample, grid.panel)
+        rows.extend(r.record() for r in fit_block(part, grid.block_settings(block[0]),
+                                                  [s.request() for s in block]).results)
+    return spec_table(grid, specs).merge(pd.DataFrame(rows), on="spec_id")
+
+
+def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+    """Estimates, SEs and df of every least-squares draw equal the stacked refits' (estimates and SEs
+    to 1e-9 relative: the stacked path demeans by alternating projections where the effects have
+    three terms; df exactly), including each copy counted as its own cluster and its own effects,
+    the two-way and homoskedastic kinds, weights, singletons and the draws that empty a sample;
+    and the joint tests' p-values are the same."""
+    grid, specs = _grid(tmp_path, wage_panel)
+    frame = wage_panel
+    codes, levels = pd.factorize(frame["nr"], sort=True)
+    blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), "nr")
+    assert sum(len(b.specs) for b in blocks) > 0.9 * len(specs) and len(blocks) + len(rest) > 0
+    draws = range(6)
+    fast = draw_curves(grid, frame, specs, draws, seed=5, column="nr").sort_values(KEY, ignore_index=True)
+    slow = draw_curves(grid, frame, specs, draws, seed=5, column="nr", reweight=False).sort_values(
+        KEY, ignore_index=True)
+    pd.testing.assert_frame_equal(fast[KEY], slow[KEY])
+    for col in ("estimate", "std_error"):
+        a, b = fast[col].to_numpy(), slow[col].to_numpy()
+        assert np.array_equal(np.isnan(a), np.isnan(b)), col
+        ok = ~np.isnan(b)
+        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-9, atol=1e-12, err_msg=col)
+    pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
+    # the cases the test is meant to cover did occur: a draw's sample is the copies of the sample's rows,
+    # so a filter on the unit column keeps its meaning in every draw (before, it was applied again to the
+    # copies' new labels: "without_worker_13" failed in nearly every draw and left the curve), and a draw
+    # without worker 13 leaves "worker_13" empty
+    name = {s.spec_id: s.sample.name for s in specs}
+    emptied = [d for d in draws if draw_levels(codes, len(levels), np.random.default_rng([5, d])).counts[
+        list(levels).index(13)] == 0]
+    sample = slow["spec_id"].map(name)
+    assert 0 < len(emptied) < len(draws)
+    assert slow.loc[sample == "worker_13"].groupby("draw")["estimate"].apply(lambda e: e.isna().all()).to_dict() == {
+        d: d in emptied for d in draws}
+    assert slow.loc[sample == "without_worker_13", "estimate"].notna().mean() > 0.9
+    ledger = _ledger(grid, frame, specs)
+    assert (ledger["n_singletons"] > 0).any()
+    kinds = {s.inference.kind for s in specs}
+    assert {"hc1", "clustered", "two_way_clustered", "homoskedastic"} <= kinds
+    pd.testing.assert_frame_equal(joint_tests(ledger, fast, 0.95), joint_tests(ledger, slow, 0.95))
+
+
+@pytest.mark.parametrize("column", ["nr", "occupation_block"])
+def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column: str, tmp_path: Path,
+                                                                         wage_panel: pd.DataFrame) -> None:
+    """Resampling groups of workers (here workers grouped by the remainder of their id, a coarser
+    column fixed within workers): clusters on workers and on the groups are per copy, the year
+    effects shared; the reweighted draws equal the stacked refits (linearmodels' wage_panel)."""
+    frame = wage_panel.assign(occupation_block=wage_panel["nr"] % 97)
+    raw = wage_grid(tmp_path, frame)
+    raw["clustering"] = {**raw["clustering"], "blocks": {"kind": "clustered", "by": "occupation_block"}}
+    raw["samples"] = {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}}}
+    raw["control_sets"] = {"combinations_of": ["expersq"]}
+    raw["absorb"] = {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": []}
+    grid = load_config(raw)
+    specs = grid.expand()
+    fast = draw_curves(grid, frame, specs, range(3), seed=9, column=column).sort_values(KEY, ignore_index=True)
+    slow = draw_curves(grid, frame, specs, range(3), seed=9, column=column, reweight=False).sort_values(
+        KEY, ignore_index=True)
+    pd.testing.assert_frame_equal(fast, slow, rtol=1e-9, atol=1e-12)

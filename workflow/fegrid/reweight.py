@@ -1,0 +1,365 @@
+"""Least-squares refits of the joint tests' draws as reweightings of the data, without a copied panel.
+
+A draw of :func:`fegrid.joint.draw_levels` takes ``c_l`` copies of every level ``l`` of the
+resampling column; the stacked panel gives each copy its own unit (and resampling-level) labels.
+For least squares, the stacked fit is the original rows weighted by their copies (Frisch-Waugh-Lovell):
+
+* absorbed terms whose groups lie within levels of the resampling column (unit effects, unit
+  trends) project out the same way whatever the counts, which are constant within their groups:
+  their residuals are computed once per design, not once per draw;
+* the other absorbed terms (period effects: categorical, with few levels) enter through their
+  dummies, made orthogonal to the nested terms once, and are partialled out on each draw from the
+  draw's cross products (with no nested term, the intercept is such a column);
+* each specification's coefficients then come from the draw's rows and small cross products.
+
+Standard errors, degrees of freedom and singletons depend on the copies themselves: each copy is a
+cluster of its own when clustering on the unit or the resampling column, and each copy's effects
+are levels of their own. They are computed on the draw's stacked rows, with codes built from the
+copies' positions, by the engine's own covariance kinds (:mod:`fegrid.covariance`), absorbed-df
+count (:class:`fegrid.absorb.Absorber`) and singleton rule (:func:`fegrid.absorb.drop_singletons`),
+not by new formulas.
+
+A draw's sample is the copies of the sample's rows in the data. A block of a draw that meets a case
+this shortcut could get wrong takes the stacked refit instead (:func:`fegrid.joint.draw_curves` does
+it): a draw without any of the sample's rows; a singleton that the copies make or unmake; an
+identification decision (absorbed or collinear regressor) near its threshold; a nearly constant
+column. Specifications of other methods (2SLS, Poisson PML, staggered adoption) always take the
+stacked path. The results equal the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, NamedTuple
+
+import numpy as np
+import pandas as pd
+
+from .absorb import Absorber, LevelCodes, _nested, drop_singletons
+from .covariance import FitPieces, covariance_kind
+from .errors import EstimationError, FegridError
+from .estimate import BlockSettings, _covariance_codes, _needed
+from .estimators import LEAST_SQUARES
+from .grid import Grid, Spec
+from .samples import Panel, SampleDef, apply_sample
+
+__all__ = ["Draw", "draw_levels", "fast_specs", "ReweightedBlock", "prepare_blocks"]
+
+#: Most dummy columns of the non-nested absorbed terms a design partials out per draw.
+MAX_DUMMIES = 64
+
+#: Identification decisions within this factor of their threshold take the stacked refit.
+MARGIN = 100.0
+
+
+class Draw(NamedTuple):
+    """One bootstrap draw of the levels of the resampling column."""
+
+    counts: np.ndarray  # copies of each level
+    rows: np.ndarray  # positions (in the frame) of the stacked rows, copy after copy
+    position: np.ndarray  # the copy (draw position) of each stacked row
+    picks: np.ndarray  # the level drawn at each position
+
+
+def draw_levels(codes: np.ndarray, n_levels: int, rng: np.random.Generator) -> Draw:
+    """Draw ``n_levels`` levels with replacement; the stacked rows of their copies, in draw order."""
+    order = np.argsort(codes, kind="stable")
+    counts = np.bincount(codes, minlength=n_levels)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    picks = rng.integers(0, n_levels, size=n_levels)
+    lengths = counts[picks]
+    offsets = np.repeat(starts[picks] - np.concatenate([[0], np.cumsum(lengths)[:-1]]), lengths)
+    rows = order[offsets + np.arange(lengths.sum())]
+    return Draw(np.bincount(picks, minlength=n_levels), rows, np.repeat(np.arange(n_levels), lengths), picks)
+
+
+def fast_specs(specs: Sequence[Spec]) -> tuple[list[Spec], list[Spec]]:
+    """The specifications a reweighting can refit (least squares) and the others."""
+    fast = [s for s in specs if s.estimator.method == LEAST_SQUARES and s.estimator.staggered is None]
+    ids = {s.spec_id for s in fast}
+    return fast, [s for s in specs if s.spec_id not in ids]
+
+
+class _Unsupported(Exception):
+    """A block or design that the reweighting does not handle: it takes the stacked refit."""
+
+
+def _sample_rows(frame: pd.DataFrame, sample: SampleDef, panel: Panel) -> np.ndarray:
+    """Positions of the sample's rows in the data."""
+    part = apply_sample(frame.assign(__row__=np.arange(len(frame))), sample, panel)
+    return part["__row__"].to_numpy()
+
+
+def _dense(codes: np.ndarray, n: int) -> np.ndarray:
+    present = np.zeros(n, dtype=bool)
+    present[codes] = True
+    return (np.cumsum(present) - 1)[codes]
+
+
+@dataclass
+class _Dim:
+    """Codes of a column combination on a design's rows, and how its copies are labelled."""
+
+    codes: np.ndarray  # dense codes on the rows
+    n: int
+    copied: bool  # the stacked panel relabels it per copy (it holds the unit or the resampling column)
+    local: np.ndarray | None = None  # copied: dense rank of the code within its resampling level
+    per_level: np.ndarray | None = None  # copied: distinct codes per resampling level
+
+    def stacked(self, rows: np.ndarray, position: np.ndarray, picks: np.ndarray) -> np.ndarray:
+        """Dense codes on stacked rows (``rows`` index the design's rows)."""
+        if not self.copied:
+            return _dense(self.codes[rows], self.n)
+        assert self.local is not None and self.per_level is not None
+        offsets = np.concatenate([[0], np.cumsum(self.per_level[picks])[:-1]])
+        return offsets[position] + self.local[rows]
+
+
+class _Design:
+    """One complete-case group of a block's least-squares specifications, prepared once."""
+
+    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
+                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str]) -> None:
+        self.specs = specs
+        self.settings = settings
+        self.n_frame = len(frame)
+        cc_pos = positions[cc]
+        sub = frame.iloc[cc_pos]
+        self.check_singletons = bool(settings.absorb) and not settings.keep_singletons
+        keep = (drop_singletons(sub, settings.absorb, codes_of=LevelCodes(sub))
+                if self.check_singletons else np.ones(len(sub), dtype=bool))
+        if not keep.any():
+            raise _Unsupported("no rows")
+        rows = sub.loc[keep]
+        self.cc_index = np.full(len(frame), -1, dtype=np.int64)
+        self.cc_index[cc_pos] = np.arange(len(cc_pos))
+        self.base_index = np.full(len(frame), -1, dtype=np.int64)
+        self.base_index[cc_pos[keep]] = np.arange(int(keep.sum()))
+        self.cc_keep = keep
+        self.levels = levels[cc_pos[keep]]
+        self.n_levels = n_levels
+        self.copied = copied
+        cc_codes = LevelCodes(sub)
+        self._cc_dims = {t.groups: self._dim(cc_codes(t.groups), levels[cc_pos], t.groups) for t in settings.absorb}
+        codes = LevelCodes(rows)
+        dims = {t.groups for t in settings.absorb}
+        for s in specs:
+            by = s.inference.by
+            dims.update(by)
+            if len(by) == 2:
+                dims.add(by[0] + by[1])
+        self.dims = {d: self._dim(codes(d), self.levels, d) for d in dims}
+        self.time = rows[settings.time].to_numpy(dtype=float) if settings.time and settings.time in rows else None
+        self.w = rows[settings.weights].to_numpy(dtype=float) if settings.weights else np.ones(len(rows))
+        self.columns = sorted({c for s in specs for c in (s.outcome, s.focal, *s.controls)})
+        self.pos = {c: j for j, c in enumerate(self.columns)}
+        raw = rows[self.columns].to_numpy(dtype=float)
+        if not np.all(np.isfinite(raw)) or not np.all(np.isfinite(raw @ np.ones(raw.shape[1]))):
+            raise _Unsupported("infinite values")
+        self.raw = raw
+        # nested terms are projected out once; the others become dummy columns partialled per draw
+        absorber = Absorber(rows, settings.absorb, weights=self.w if settings.weights else None, time=settings.time,
+                            tolerance=settings.tolerance, max_iterations=settings.max_iterations, codes_of=codes)
+        nested, others = [], []
+        for i in absorber._active if settings.absorb else []:
+            (nested if _nested(absorber._codes[i], self.levels) else others).append(i)
+        dummies = [] if nested else [np.ones((len(rows), 1))]
+        for i in others:
+            if settings.absorb[i].has_slope:
+                raise _Unsupported("a trend term not nested in the resampling column")
+            c, n = absorber._codes[i], absorber._nlev[i]
+            block = np.zeros((len(rows), n - 1))
+            hit = c > 0
+            block[np.flatnonzero(hit), c[hit] - 1] = 1.0
+            dummies.append(block)
+        d = np.hstack(dummies) if dummies else np.zeros((len(rows), 0))
+        if d.shape[1] > MAX_DUMMIES:
+            raise _Unsupported("too many dummy columns")
+        both = np.asfortranarray(np.hstack([raw, d]))
+        if nested:
+            inner = Absorber(rows, tuple(settings.absorb[i] for i in nested),
+                             weights=self.w if settings.weights else None, time=settings.time,
+                             tolerance=settings.tolerance, max_iterations=settings.max_iterations, codes_of=codes)
+            both = inner.demean(both).values
+        self.within = np.ascontiguousarray(both[:, : raw.shape[1]])
+        self.dummies = np.ascontiguousarray(both[:, raw.shape[1]:])
+        self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
+
+    def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
+        n = int(codes.max()) + 1 if len(codes) else 0
+        if not self.copied.intersection(columns):
+            return _Dim(codes, n, False)
+        pair = levels.astype(np.int64) * max(n, 1) + codes
+        uniq, inverse = np.unique(pair, return_inverse=True)
+        first_of_level = np.searchsorted(uniq // max(n, 1), np.arange(self.n_levels))
+        local = inverse - first_of_level[levels]
+        per_level = np.bincount(uniq // max(n, 1), minlength=self.n_levels)
+        return _Dim(codes, n, True, local.astype(np.int64), per_level)
+
+    def _singletons_agree(self, draw: Draw) -> bool:
+        """Whether the stacked draw drops exactly the copies of the rows the original design drops."""
+        if not self.check_singletons:
+            return True
+        cc = self.cc_index[draw.rows]
+        on = cc >= 0
+        rows, position = cc[on], draw.position[on]
+        codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self._cc_dims.items()}
+        frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
+        keep = drop_singletons(frame, self.settings.absorb, codes_of=lambda g: codes[g])
+        return bool(np.array_equal(keep, self.cc_keep[rows]))
+
+    def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
+        """``(spec_id, estimate, std_error, df)`` per specification, or ``None`` to take the stacked refit."""
+        if not self._singletons_agree(draw):
+            return None
+        b = self.base_index[draw.rows]
+        on = b >= 0
+        rows, position = b[on], draw.position[on]
+        w = self.w[rows]
+        sw = np.sqrt(w)
+        z0 = self.within[rows]
+        if self.dummies.shape[1]:
+            d = self.dummies[rows] * sw[:, None]
+            dd = d.T @ d
+            eigval, eigvec = np.linalg.eigh((dd + dd.T) / 2)
+            ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+            inverse = (eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T
+            z = z0 * sw[:, None]
+            for _ in range(2):  # one refinement step recovers the digits the normal equations lose
+                z = z - d @ (inverse @ (d.T @ z))
+        else:
+            z = z0 * sw[:, None]
+        z = np.asfortranarray(z)
+        gram = z.T @ z
+        norm = np.sqrt(np.diag(gram))
+        raw = self.raw[rows]
+        centred = raw - (w @ raw) / w.sum()
+        raw_norm = np.sqrt(np.einsum("ij,ij->j", centred * w[:, None], centred))
+        scale = np.sqrt(len(rows)) * (1.0 + np.max(np.abs(raw), axis=0))
+        if np.any(raw_norm <= 1e-8 * scale):  # a (nearly) constant column: its rounding decides
+            return None
+        codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self.dims.items()}
+        absorber = Absorber(pd.DataFrame({"t": self.time[rows]}) if self.time is not None else
+                            pd.DataFrame(index=pd.RangeIndex(len(rows))),
+                            self.settings.absorb, weights=w if self.settings.weights else None,
+                            time="t" if self.time is not None else None, codes_of=lambda g: codes[g])
+        out = []
+        for spec in self.specs:
+            got = self._spec(spec, z, gram, norm, raw_norm, absorber, codes)
+            if got is None:
+                return None
+            out.append(got)
+        return out
+
+    def _absorbed(self, j: int, norm: np.ndarray, raw_norm: np.ndarray) -> bool | None:
+        ratio = norm[j] / raw_norm[j]
+        if self.ident_tol / MARGIN < ratio < self.ident_tol * MARGIN:
+            return None
+        return bool(ratio <= self.ident_tol)
+
+    def _collinear(self, j: int, kept: list[int], gram: np.ndarray, norm: np.ndarray) -> bool | None:
+        if not kept:
+            return False
+        gk = gram[np.ix_(kept, kept)]
+        r2 = gram[j, j] - gram[j, kept] @ np.linalg.solve(gk, gram[kept, j])
+        ratio = np.sqrt(max(r2, 0.0)) / norm[j]
+        return None if ratio < 1e-4 else False  # the engine's threshold is 1e-7: only clear cases here
+
+    def _spec(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
+              absorber: Absorber, codes: dict[tuple[str, ...], np.ndarray]) -> tuple[str, float, float, float] | None:
+        nan = float("nan")
+        kept: list[int] = []
+        for c in spec.controls:
+            j = self.pos[c]
+            absorbed = self._absorbed(j, norm, raw_norm)
+            if absorbed is None:
+                return None
+            if absorbed:
+                continue
+            collinear = self._collinear(j, kept, gram, norm)
+            if collinear is None:
+                return None
+            kept.append(j)
+        j = self.pos[spec.focal]
+        absorbed = self._absorbed(j, norm, raw_norm)
+        if absorbed is None:
+            return None
+        if absorbed:
+            return spec.spec_id, nan, nan, nan  # not identified in this draw
+        if self._collinear(j, kept, gram, norm) is None:
+            return None
+        idx = [j, *kept]
+        y = self.pos[spec.outcome]
+        bread = np.linalg.inv(gram[np.ix_(idx, idx)])
+        beta = bread @ gram[idx, y]
+        e = z[:, y] - z[:, idx] @ beta
+        h = z[:, idx] @ bread[:, 0]
+        pieces = FitPieces(estimate=float(beta[0]), e=e, h=h, rss=float(e @ e), bread=bread, within_r2=nan,
+                           scores=lambda: np.asfortranarray(z[:, idx] * e[:, None]), coefficients=beta)
+        by = spec.inference.by
+        clusters = _covariance_codes(spec.request(), [codes[d] for d in by], lambda d: codes[d])
+        nested_df = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
+        try:
+            cov = covariance_kind(spec.inference.kind)(pieces, n_params=len(idx), absorbed_df=absorber.absorbed_df,
+                                                       nested_df=nested_df, clusters=clusters)
+        except EstimationError:
+            return spec.spec_id, float(beta[0]), nan, nan
+        se = float(np.sqrt(cov.variance))
+        if not (np.isfinite(beta[0]) and np.isfinite(se)):
+            return spec.spec_id, nan, nan, nan
+        return spec.spec_id, float(beta[0]), se, float(cov.df)
+
+
+class ReweightedBlock:
+    """The least-squares specifications of one block (sample, absorbed effects, weights), prepared
+    once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the stacked refit."""
+
+    def __init__(self, grid: Grid, frame: pd.DataFrame, specs: list[Spec], levels: np.ndarray, n_levels: int,
+                 column: str) -> None:
+        self.specs = specs
+        settings = grid.block_settings(specs[0])
+        positions = _sample_rows(frame, specs[0].sample, grid.panel)
+        self.levels_in_sample = np.unique(levels[positions])
+        part = frame.iloc[positions]
+        groups: dict[bytes, tuple[np.ndarray, list[Spec]]] = {}
+        notna: dict[str, np.ndarray] = {}
+        for spec in specs:
+            mask = np.ones(len(part), dtype=bool)
+            for col in _needed(spec.request(), settings):
+                if col not in notna:
+                    notna[col] = part[col].notna().to_numpy()
+                mask &= notna[col]
+            groups.setdefault(np.packbits(mask).tobytes(), (mask, []))[1].append(spec)
+        copied = {grid.panel.unit, column}
+        self.designs = [_Design(frame, positions, mask, members, settings, levels, n_levels, copied)
+                        for mask, members in groups.values() if mask.any()]
+        if len(self.designs) != len(groups):
+            raise _Unsupported("a design without rows")
+
+    def refit(self, draw: Draw) -> list[dict[str, Any]] | None:
+        if not draw.counts[self.levels_in_sample].any():
+            return None  # the draw holds none of the sample's rows
+        rows: list[dict[str, Any]] = []
+        for design in self.designs:
+            got = design.refit(draw)
+            if got is None:
+                return None
+            rows.extend({"spec_id": s, "estimate": b, "std_error": se, "df_inference": df} for s, b, se, df in got)
+        return rows
+
+
+def prepare_blocks(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], levels: np.ndarray, n_levels: int,
+                   column: str) -> tuple[list[ReweightedBlock], list[Spec]]:
+    """The blocks that draws can refit by reweighting, and the specifications that take the stacked path."""
+    fast, rest = fast_specs(specs)
+    by_block: dict[str, list[Spec]] = {}
+    for spec in fast:
+        by_block.setdefault(spec.block_key, []).append(spec)
+    blocks: list[ReweightedBlock] = []
+    for key in sorted(by_block):
+        try:
+            blocks.append(ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column))
+        except (_Unsupported, FegridError, np.linalg.LinAlgError):
+            rest.extend(by_block[key])
+    return blocks, rest

@@ -76,6 +76,27 @@ def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path
     assert "warning: 32 specifications, more than jobs.warn_above (10)" in capsys.readouterr().err
 
 
+def test_the_first_chunk_of_draws_is_paced_from_the_first_draw_job_start(tmp_path: Path) -> None:
+    """The draws wait for the ledger, summary and figures: with one chunk done, its pace counts from
+    when the monitor saw the first draw job's log appear, not from the run's start (before, the
+    first line said about 3 min 20 s left here, for 40 s of work)."""
+    now = [1000.0]
+    draws = [tmp_path / f"joint/{i}.parquet" for i in range(5)]
+    logs = [tmp_path / f"logs/draw-{i}.log" for i in range(5)]
+    out = io.StringIO()
+    monitor = RunMonitor([Stage("bootstrap draws", draws, "draws", [50] * 5, fresh_only=True, logs=logs)],
+                         out=out, clock=lambda: now[0])
+    now[0] = 1040.0
+    monitor.update()  # the report stages run: no draw job has started
+    now[0] = 1041.0
+    _touch(logs[0], 1040.5)
+    monitor.update()
+    now[0] = 1051.0
+    _touch(draws[0], 1050.5)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 50 of 250 draws, about 40 s left"
+
+
 def test_a_report_stage_with_few_files_gives_no_time_left(tmp_path: Path) -> None:
     """The appendix's .tex, then its .pdf: one file written says nothing about the time left."""
     now = [100.0]

@@ -454,3 +454,24 @@ def test_group_time_refuses_clusters_that_vary_within_units():
                        parse_estimator("e", {"method": "group_time", "uniform_band_draws": 0}))
     result = fit_block(df, settings, [spec]).results[0]
     assert result.status == "not_identified" and "constant within units" in result.message
+
+
+@pytest.mark.parametrize("kind", ["homoskedastic", "hc1", "clustered", "two_way_clustered"])
+def test_event_study_standard_error_is_the_combination_of_its_indicators(jobtraining, kind):
+    """The reported event-study estimate is the average of the post-period indicators' coefficients, so
+    its variance is ``a'Va`` with ``V`` the indicators' covariance (the variance of a linear
+    combination) under every covariance kind; linearmodels' jobtraining panel. Before, the
+    homoskedastic and two-way kinds gave the first indicator's variance (they read element [0, 0] of
+    the coefficients' matrix): 0.25 against 0.24 under two-way clustering on the invented demo data."""
+    settings = BlockSettings(absorb=parse_absorb(["unit", "period"]), unit="unit", time="period", treatment="d")
+    by = {"homoskedastic": (), "hc1": (), "clustered": (("unit",),),
+          "two_way_clustered": (("unit",), ("period",))}[kind]
+    est = parse_estimator("e", {"method": "event_study", "window": [-2, 1], "reference": -1})
+    fit = fit_block(jobtraining, settings, [SpecRequest("s", "y", "d", (), Inference(kind, by), est)])
+    result, coefs = fit.results[0], fit.coefficients["s"]
+    rows = [j for j, t in enumerate(coefs.terms) if t.startswith("rel=")]
+    a = np.array([1.0 if coefs.terms[j].startswith("rel=+") else 0.0 for j in rows])
+    a /= a.sum()
+    v = coefs.covariance[np.ix_(rows, rows)]
+    assert result.estimate == pytest.approx(float(a @ coefs.estimates[rows]), abs=1e-12)
+    assert result.std_error == pytest.approx(float(np.sqrt(a @ v @ a)), rel=1e-10)

@@ -95,15 +95,22 @@ def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column
                                                                          wage_panel: pd.DataFrame) -> None:
     """Resampling groups of workers (here workers grouped by the remainder of their id, a coarser
     column fixed within workers): clusters on workers and on the groups are per copy, the year
-    effects shared; the reweighted draws equal the stacked refits (linearmodels' wage_panel)."""
+    effects shared; group-by-year effects, too many for dummy columns, are demeaned on each draw's rows
+    weighted by their copies; the reweighted draws equal the stacked refits (linearmodels' wage_panel)."""
     frame = wage_panel.assign(occupation_block=wage_panel["nr"] % 97)
     raw = wage_grid(tmp_path, frame)
     raw["clustering"] = {**raw["clustering"], "blocks": {"kind": "clustered", "by": "occupation_block"}}
     raw["samples"] = {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}}}
     raw["control_sets"] = {"combinations_of": ["expersq"]}
-    raw["absorb"] = {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": []}
+    raw["absorb"] = {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": [],
+                     # 776 group-by-year levels: each draw demeans its rows, weighted by their copies
+                     "worker_group_year": ["nr", "occupation_block x year"]}
     grid = load_config(raw)
     specs = grid.expand()
+    codes, levels = pd.factorize(frame[column], sort=True)
+    blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), column)
+    # resampling workers, the group-by-year effects cross the copies; resampling groups, they are nested
+    assert not rest and any(design.reweighted for block in blocks for design in block.designs) == (column == "nr")
     fast = draw_curves(grid, frame, specs, range(3), seed=9, column=column).sort_values(KEY, ignore_index=True)
     slow = draw_curves(grid, frame, specs, range(3), seed=9, column=column, reweight=False).sort_values(
         KEY, ignore_index=True)

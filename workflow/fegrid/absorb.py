@@ -12,11 +12,12 @@ A choice of absorbed effects is a tuple of *terms*. Two kinds of term exist, hel
 
 Terms are compiled on a fixed set of rows into projections; their joint residual maker is computed
 by alternating projections (Gaure 2013) with the line-search acceleration of Gearhart & Koshy
-(1989). One term alone is projected out exactly in one sweep. Two terms of which the smaller is a
-categorical effect with few levels (unit and period effects, the commonest case) are projected out
-directly: the large term's residuals, less their projection on the small term's dummies made
-orthogonal to the large term (Frisch-Waugh-Lovell), from a small dense system; the alternating
-projections then only confirm the tolerance, starting from that solution.
+(1989). One term alone is projected out exactly in one sweep. When two terms converge slowly and
+the smaller is a categorical effect with few levels in each connected part of the two (unit and
+period effects, the commonest case, or unit and region-by-period effects), the iterations jump to
+the direct solution: the large term's residuals, less their projection on the small term's dummies
+made orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; one more sweep
+confirms the tolerance.
 """
 
 from __future__ import annotations
@@ -313,10 +314,14 @@ class _Projection:
         return out
 
 
-#: Largest number of levels of the small term that :class:`_TwoTerms` solves directly, and largest
-#: size of its (large-term levels x small-term levels) table; beyond, alternating projections alone.
+#: Largest number of levels of the small term, within one connected part of the two terms' graph,
+#: that :class:`_TwoTerms` solves directly; beyond, alternating projections alone.
 DIRECT_MAX_LEVELS = 128
-DIRECT_MAX_CELLS = 20_000_000
+
+#: Sweeps of alternating projections before a column still moving jumps to the direct solution
+#: (building the direct solver costs about as much as a few sweeps; most balanced panels converge
+#: in fewer, unbalanced ones and unit trends can take hundreds).
+DIRECT_AFTER = 10
 
 
 class _TwoTerms:
@@ -328,29 +333,48 @@ class _TwoTerms:
     a dummy is the group's (weighted) share of the level (plus, for a trend, the slope term), so
     ``D'W M_P D = diag(W_t) - sum_g (c_g c_g' / W_g + e_g e_g' / S_g)`` with ``c_g`` the weighted
     counts of the levels in group ``g``, ``e_g`` the same weighted by the centred time and ``S_g``
-    its sum of squares. The system is solved by a pseudo-inverse (the dummies sum to the constant,
-    which ``P`` absorbs).
+    its sum of squares. The system splits into the connected parts of the graph that links each
+    group of ``P`` to the levels it holds (period effects within regions: one part per region),
+    each solved by a pseudo-inverse (its dummies sum to a constant, which ``P`` absorbs).
     """
 
-    def __init__(self, large: _Projection, small: np.ndarray, n_small: int, w: np.ndarray) -> None:
+    def __init__(self, large: _Projection, small: np.ndarray, n_small: int, w: np.ndarray,
+                 parts: np.ndarray) -> None:
         self.large = large
         self.small = small
         self.n_small = n_small
         self.w = w
         n_groups = len(large.inv_wsum)
-        cells = large.codes * n_small + small
-        counts = np.bincount(cells, w, minlength=n_groups * n_small).reshape(n_groups, n_small)
-        self.shares = counts * large.inv_wsum[:, None]
-        gram = np.diag(np.bincount(small, w, minlength=n_small)) - self.shares.T @ counts
+        cells = np.unique(large.codes * n_small + small)
+        group, level = cells // n_small, cells % n_small
+        inverse = np.searchsorted(cells, large.codes * n_small + small)
+        counts = np.bincount(inverse, w, minlength=len(cells))
+        shape = (n_groups, n_small)
+        self.shares = sp.csr_array((counts * large.inv_wsum[group], (group, level)), shape=shape)
+        gram = (sp.diags_array(np.bincount(small, w, minlength=n_small))
+                - self.shares.T @ sp.csr_array((counts, (group, level)), shape=shape))
         self.slopes = None
         if large.slope is not None:
-            timed = np.bincount(cells, w * large.slope, minlength=n_groups * n_small).reshape(n_groups, n_small)
-            self.slopes = timed * large.inv_ss[:, None]
-            gram -= self.slopes.T @ timed
-        gram = (gram + gram.T) / 2
-        eigval, eigvec = np.linalg.eigh(gram)
-        keep = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
-        self.inverse = (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T
+            timed = np.bincount(inverse, w * large.slope, minlength=len(cells))
+            self.slopes = sp.csr_array((timed * large.inv_ss[group], (group, level)), shape=shape)
+            gram = gram - self.slopes.T @ sp.csr_array((timed, (group, level)), shape=shape)
+        # the dense block of each connected part, filled at once from the sparse matrix's entries
+        gram = sp.coo_array(gram)
+        n_parts = int(parts.max()) + 1 if len(parts) else 0
+        sizes = np.bincount(parts, minlength=n_parts)
+        local = np.empty(n_small, dtype=np.int64)
+        order = np.argsort(parts, kind="stable")
+        local[order] = np.arange(n_small) - np.repeat(np.concatenate([[0], np.cumsum(sizes)[:-1]]), sizes)
+        offsets = np.concatenate([[0], np.cumsum(sizes * sizes)[:-1]])
+        flat = offsets[parts[gram.row]] + local[gram.row] * sizes[parts[gram.row]] + local[gram.col]
+        blocks = np.bincount(flat, gram.data, minlength=int((sizes * sizes).sum()))
+        self.parts: list[tuple[np.ndarray, np.ndarray]] = []
+        members_of = np.split(order, np.cumsum(sizes)[:-1])
+        for k in range(n_parts):
+            block = blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])
+            eigval, eigvec = np.linalg.eigh((block + block.T) / 2)
+            keep = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+            self.parts.append((members_of[k], (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T))
 
     def apply(self, x: np.ndarray) -> np.ndarray:
         """Residuals of the columns of ``x`` (Fortran order) on both terms, column by column (so that
@@ -358,8 +382,10 @@ class _TwoTerms:
         xt = self.large.apply(x)
         for j in range(x.shape[1]):
             col = xt[:, j]
-            g = self.inverse @ np.bincount(self.small, col if self.large.unweighted else col * self.w,
-                                           minlength=self.n_small)
+            rhs = np.bincount(self.small, col if self.large.unweighted else col * self.w, minlength=self.n_small)
+            g = np.zeros(self.n_small)
+            for members, inverse in self.parts:
+                g[members] = inverse @ rhs[members]
             col -= g.take(self.small)
             col += (self.shares @ g).take(self.large.codes)
             if self.slopes is not None:
@@ -481,16 +507,20 @@ class Absorber:
     @cached_property
     def _direct(self) -> _TwoTerms | None:
         """The direct solver, when there are two active terms and the smaller is a categorical effect
-        with few levels (see :class:`_TwoTerms`)."""
+        with few levels in each connected part of the two (see :class:`_TwoTerms`)."""
         if len(self._projections) != 2:
             return None
         a, b = sorted(range(2), key=lambda j: (self._projections[j].slope is None, -self._nlev[self._active[j]]))
         large, small = self._projections[a], self._projections[b]
-        n_small = self._nlev[self._active[b]]
-        if (small.slope is not None or n_small > DIRECT_MAX_LEVELS
-                or len(large.inv_wsum) * n_small > DIRECT_MAX_CELLS):
+        if small.slope is not None:
             return None
-        return _TwoTerms(large, small.codes, n_small, self.w)
+        n_large, n_small = len(large.inv_wsum), self._nlev[self._active[b]]
+        graph = sp.coo_array((np.ones(len(small.codes)), (large.codes, small.codes + n_large)),
+                             shape=(n_large + n_small, n_large + n_small))
+        parts = connected_components(graph, directed=False)[1][n_large:]
+        if np.bincount(parts).max() > DIRECT_MAX_LEVELS:
+            return None
+        return _TwoTerms(large, small.codes, n_small, self.w, np.unique(parts, return_inverse=True)[1])
     @cached_property
     def absorbed_df(self) -> int:
         """Degrees of freedom taken by the absorbed terms (see the Notes); counted when first asked
@@ -547,10 +577,11 @@ class Absorber:
     def demean(self, x: np.ndarray) -> DemeanOutcome:
         """Residuals of the columns of ``x`` (n, k) on all absorbed terms.
 
-        One projection is exact in one sweep; two that :class:`_TwoTerms` solves directly start from
-        its solution. Several are iterated: ``x <- x - t (x - T x)`` with
+        One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
-        products), which minimises the distance to the solution along the sweep's direction.
+        products), which minimises the distance to the solution along the sweep's direction. Columns
+        not converged after :data:`DIRECT_AFTER` sweeps jump to the direct solution of two terms
+        (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
         """
         x = np.array(x, dtype=float, order="F")
         if x.ndim == 1:
@@ -578,10 +609,12 @@ class Absorber:
         scale[scale == 0] = 1.0
         active = np.arange(k)
         converged[:] = False
-        if self._direct is not None:  # start from the direct solution: the first sweep then confirms it
-            x = self._direct.apply(x)
         cur = x
         for it in range(1, self.max_iterations + 1):
+            if it == DIRECT_AFTER + 1 and self._direct is not None:
+                # slow to converge: jump to the direct solution (a projection of the column, wherever
+                # the iterations left it), which the next sweep confirms
+                cur = self._direct.apply(np.asfortranarray(cur))
             tx = self._sweep(cur)
             d = cur - tx
             dd = wdot(d, d)

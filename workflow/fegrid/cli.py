@@ -119,13 +119,15 @@ def _stages(plan) -> list[Stage]:
     tables = [files["md"] for files in plan.table_paths().values()]
     appendix = [paths.file("appendix.tex")] + ([paths.file("appendix.pdf")] if pdflatex() else [])
     return [
-        Stage("fits", plan.fit_paths(), "specifications", list(plan.job_sizes.values()), fresh_only=True),
+        Stage("fits", plan.fit_paths(), "specifications", list(plan.job_sizes.values()), fresh_only=True,
+              logs=[paths.log("fit_job", job.key) for job in plan.jobs]),
         Stage("ledger", [paths.ledger_csv], "specifications", [plan.n_specs],
               done_note=f"written: {paths.ledger_csv} (summary and figures next, then the bootstrap draws)"),
         Stage("summary", [paths.file("summary.md")], "files", [1], done_note=f"{paths.file('summary.md')}"),
         Stage("figures", figures, "figures", [1] * len(figures), done_note=f"in {paths.run / 'figures'}"),
         Stage("tables", tables, "tables", [1] * len(tables), done_note=f"in {paths.run / 'tables'}"),
-        Stage("bootstrap draws", plan.joint_paths(), "draws", draws, fresh_only=True),
+        Stage("bootstrap draws", plan.joint_paths(), "draws", draws, fresh_only=True,
+              logs=[paths.log("draw_null_curves", f"{plan.joint_key}-{i:04d}") for i in range(len(draws))]),
         Stage("joint tests", [paths.file("joint_tests.csv")], "files", [1],
               done_note=str(paths.file("joint_tests.md"))),
         Stage("appendix", appendix, "files", [1] * len(appendix), done_note=str(appendix[-1])),

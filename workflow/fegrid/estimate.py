@@ -1202,12 +1202,14 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
         n_agg, share_cov = fit.shares
         dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (design.settings.unit,)
         cov[:n_agg, :n_agg] += share_cov(cluster_of(dim))  # type: ignore[arg-type]
-        se = float(np.sqrt(cov[0, 0]))
-        crit = float(stdtrit(kept.df, 0.5 + design.settings.level / 2))
-        t = values[0] / se if se > 0 else float("nan")
-        result = replace(result, std_error=se, t_stat=t,
-                         p_value=float(2 * stdtr(kept.df, -abs(t))) if se > 0 else float("nan"),
-                         ci_low=values[0] - crit * se, ci_high=values[0] + crit * se)
+    # the reported estimate is a combination of the coefficients: its variance is the combination's
+    # (a two-way matrix, made positive semi-definite as a whole, is not a sum over h e)
+    se = float(np.sqrt(cov[0, 0]))
+    crit = float(stdtrit(kept.df, 0.5 + design.settings.level / 2))
+    t = values[0] / se if se > 0 else float("nan")
+    result = replace(result, std_error=se, t_stat=t,
+                     p_value=float(2 * stdtr(kept.df, -abs(t))) if se > 0 else float("nan"),
+                     ci_low=values[0] - crit * se, ci_high=values[0] + crit * se)
     pre = [j for j, n in enumerate(fit.reported) if n.startswith("rel=-")]
     result = replace(result, pretrend_p_value=wald_p_value(values[pre], cov[np.ix_(pre, pre)], kept.df))
     if spec.inference.bootstrap is not None:

@@ -7,8 +7,8 @@ of the time left (from the pace so far); the moment the ledger exists, it says s
 draws that follow can take much longer than the fits. On a terminal a stage's line is rewritten
 in place; in a log, a new line is written at most every :data:`LOG_EVERY` seconds per stage.
 
-It also estimates a grid's cost before it runs (:func:`estimate_costs`), from one block fitted in
-the process: what ``fegrid plan`` prints.
+It also estimates a grid's cost before it runs (:func:`estimate_costs`), from a few blocks of each
+estimation method fitted and drawn in the process: what ``fegrid plan`` prints.
 """
 
 from __future__ import annotations
@@ -49,6 +49,8 @@ class Stage:
     units: Sequence[int]
     done_note: str = ""
     fresh_only: bool = False
+    logs: Sequence[Path] = ()  # the jobs' logs, which appear when a job starts
+    started: float | None = None  # when the monitor first saw one of them
     done: int = -1
     last_line: float = 0.0
     finished: bool = False
@@ -84,6 +86,8 @@ class RunMonitor:
         for stage in self.stages:
             if stage.finished or not stage.todo:
                 continue
+            if stage.started is None and any(self._is_written(log) for log in stage.logs):
+                stage.started = now
             written = [i for i in stage.todo if self._is_written(stage.files[i])]
             if len(written) == stage.done or not written:
                 continue
@@ -101,8 +105,9 @@ class RunMonitor:
             times = sorted(stage.files[i].stat().st_mtime for i in written)
             if len(times) > 1 and times[-1] > times[0]:
                 pace: float | None = (times[-1] - times[0]) / (len(times) - 1)
-            else:  # content-named jobs (fits, draws) start with the run; a few report files say nothing
-                pace = (now - self.start) / stage.done if stage.fresh_only else None
+            else:  # content-named jobs (fits, draws): from their first job's start (or the run's, without
+                # logs to watch); a few report files say nothing
+                pace = (now - (stage.started or self.start)) / stage.done if stage.fresh_only else None
             left = "" if pace is None else f", about {duration(pace * (len(stage.todo) - stage.done))} left"
             if self.tty or now - stage.last_line >= LOG_EVERY:
                 self._print(stage.name, f"{stage.name}: {units_done} of {units_total} {stage.unit}{left}",
@@ -139,7 +144,7 @@ class RunMonitor:
 
 @dataclass(frozen=True)
 class Costs:
-    """A grid's estimated cost from one block fitted in the process."""
+    """A grid's estimated cost from a few blocks fitted, and drawn, in the process."""
 
     probe_specs: int
     probe_seconds: float
@@ -151,31 +156,55 @@ class Costs:
         wall = (self.fit_cpu_seconds + self.draws_cpu_seconds) / max(self.cores, 1)
         return (f"estimated cost: fits ~{duration(self.fit_cpu_seconds)} of CPU, bootstrap draws "
                 f"~{duration(self.draws_cpu_seconds)}; about {duration(wall)} on {self.cores} "
-                f"core{'s' if self.cores != 1 else ''} (from one block of {self.probe_specs} specifications fitted "
-                f"in {self.probe_seconds:.2f} s; start-up and Snakemake's own time not counted)")
+                f"core{'s' if self.cores != 1 else ''} (from {self.probe_specs} specifications fitted and drawn "
+                f"in {self.probe_seconds:.2f} CPU s; start-up and Snakemake's own time not counted)")
+
+
+#: Blocks of each estimation method that :func:`estimate_costs` fits and draws (the smallest, the
+#: median and the largest).
+PROBE_BLOCKS = 3
 
 
 def estimate_costs(plan, frame, *, cores: int) -> Costs:
-    """Fit the plan's largest block once as the fit jobs do and once as a bootstrap draw does (no
-    wild bootstrap), and scale by the grid's specifications and draws."""
+    """Fit a few blocks of each estimation method as the fit jobs do, and draw them twice as a chunk of
+    bootstrap draws does (:func:`fegrid.joint.draw_curves`, reweighting included), and scale each
+    method's time by its number of specifications in the grid."""
     from .estimate import fit_block
-    from .joint import without_wild
+    from .joint import draw_curves
     from .pipeline import ContentKeys
 
-    by_block: dict[str, list] = {}
+    grid = plan.grid
+    by_method: dict[str, dict[str, list]] = {}
     for spec in plan.specs:
-        by_block.setdefault(spec.block_key, []).append(spec)
-    block = max(by_block.values(), key=len)
-    sample = ContentKeys(plan.grid, frame).sample(block[0])
-    settings = plan.grid.block_settings(block[0])
-    requests = [s.request() for s in block]
-    plain = [without_wild(r) for r in requests]
-    started = time.perf_counter()
-    fit_block(sample, settings, requests)
-    fit_seconds = time.perf_counter() - started
-    started = time.perf_counter()
-    fit_block(sample, settings, plain)
-    draw_seconds = time.perf_counter() - started
-    n = len(plan.specs)
-    return Costs(probe_specs=len(block), probe_seconds=fit_seconds, fit_cpu_seconds=fit_seconds / len(block) * n,
-                 draws_cpu_seconds=draw_seconds / len(block) * n * plan.grid.draws, cores=cores)
+        by_method.setdefault(spec.estimator.method, {}).setdefault(spec.block_key, []).append(spec)
+    content = ContentKeys(grid, frame)
+    fit_cpu = draw_cpu = probe_seconds = 0.0
+    probe_specs = 0
+    for blocks in by_method.values():
+        ordered = sorted(blocks.values(), key=len)
+        picks = sorted({round(i * (len(ordered) - 1) / max(PROBE_BLOCKS - 1, 1)) for i in range(PROBE_BLOCKS)})
+        chosen = [ordered[i] for i in picks]
+        n_chosen = sum(len(b) for b in chosen)
+        scale = sum(len(b) for b in ordered) / n_chosen
+        started = time.process_time()
+        for block in chosen:
+            fit_block(content.sample(block[0]), grid.block_settings(block[0]), [s.request() for s in block])
+        fit_seconds = time.process_time() - started
+        drawn = 0.0
+        if grid.draws:  # one draw, then three: a draw's own cost, and a chunk's set-up (paid once per job)
+            specs = [s for b in chosen for s in b]
+            seconds = []
+            for n_draws in (1, 3):
+                started = time.process_time()
+                draw_curves(grid, frame, specs, range(n_draws), seed=grid.seed, column=grid.resample)
+                seconds.append(time.process_time() - started)
+            per_draw = max(seconds[1] - seconds[0], 0.0) / 2
+            set_up = max(seconds[0] - per_draw, 0.0)
+            chunks = -(-grid.draws // grid.draws_per_job)
+            draw_cpu += (per_draw * grid.draws + set_up * chunks) * scale
+            drawn = sum(seconds)
+        fit_cpu += fit_seconds * scale
+        probe_seconds += fit_seconds + drawn
+        probe_specs += n_chosen
+    return Costs(probe_specs=probe_specs, probe_seconds=probe_seconds, fit_cpu_seconds=fit_cpu,
+                 draws_cpu_seconds=draw_cpu, cores=cores)

@@ -141,7 +141,12 @@ class _Design:
         self.n_levels = n_levels
         self.copied = copied
         cc_codes = LevelCodes(sub)
-        self._cc_dims = {t.groups: self._dim(cc_codes(t.groups), levels[cc_pos], t.groups) for t in settings.absorb}
+        self.cc_levels = levels[cc_pos]
+        self._cc_dims = {t.groups: self._dim(cc_codes(t.groups), self.cc_levels, t.groups) for t in settings.absorb}
+        # a design without singletons whose copied terms lie within resampling levels keeps each copy's
+        # counts: only the levels of terms shared by the copies can be left alone in a draw
+        self.quick_singletons = bool(keep.all()) and all(
+            _nested(dim.codes, self.cc_levels) for dim in self._cc_dims.values() if dim.copied)
         codes = LevelCodes(rows)
         dims = {t.groups for t in settings.absorb}
         for s in specs:
@@ -158,6 +163,9 @@ class _Design:
         if not np.all(np.isfinite(raw)) or not np.all(np.isfinite(raw @ np.ones(raw.shape[1]))):
             raise _Unsupported("infinite values")
         self.raw = raw
+        self.raw_centred = raw - raw.mean(axis=0)
+        self.raw_squared = self.raw_centred**2
+        self.raw_scale = 1.0 + np.max(np.abs(self.raw_centred), axis=0)
         # nested terms are projected out once; the others become dummy columns partialled per draw
         absorber = Absorber(rows, settings.absorb, weights=self.w if settings.weights else None, time=settings.time,
                             tolerance=settings.tolerance, max_iterations=settings.max_iterations, codes_of=codes)
@@ -167,23 +175,28 @@ class _Design:
         dummies = [] if nested else [np.ones((len(rows), 1))]
         for i in others:
             if settings.absorb[i].has_slope:
-                raise _Unsupported("a trend term not nested in the resampling column")
+                dummies = None  # a trend across copies: no dummy columns for it
+                break
             c, n = absorber._codes[i], absorber._nlev[i]
             block = np.zeros((len(rows), n - 1))
             hit = c > 0
             block[np.flatnonzero(hit), c[hit] - 1] = 1.0
             dummies.append(block)
-        d = np.hstack(dummies) if dummies else np.zeros((len(rows), 0))
-        if d.shape[1] > MAX_DUMMIES:
-            raise _Unsupported("too many dummy columns")
-        both = np.asfortranarray(np.hstack([raw, d]))
-        if nested:
-            inner = Absorber(rows, tuple(settings.absorb[i] for i in nested),
-                             weights=self.w if settings.weights else None, time=settings.time,
-                             tolerance=settings.tolerance, max_iterations=settings.max_iterations, codes_of=codes)
-            both = inner.demean(both).values
-        self.within = np.ascontiguousarray(both[:, : raw.shape[1]])
-        self.dummies = np.ascontiguousarray(both[:, raw.shape[1]:])
+        d = None if dummies is None else np.hstack(dummies) if dummies else np.zeros((len(rows), 0))
+        # with many dummy columns, each draw demeans the drawn rows, weighted by their copies, instead
+        self.reweighted = d is None or d.shape[1] > MAX_DUMMIES
+        if self.reweighted:
+            self.term_codes = {t.groups: codes(t.groups) for t in settings.absorb}
+            self.within = self.dummies = np.zeros((len(rows), 0))
+        else:
+            both = np.asfortranarray(np.hstack([raw, d]))
+            if nested:
+                inner = Absorber(rows, tuple(settings.absorb[i] for i in nested),
+                                 weights=self.w if settings.weights else None, time=settings.time,
+                                 tolerance=settings.tolerance, max_iterations=settings.max_iterations, codes_of=codes)
+                both = inner.demean(both).values
+            self.within = np.ascontiguousarray(both[:, : raw.shape[1]])
+            self.dummies = np.ascontiguousarray(both[:, raw.shape[1]:])
         self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
 
     def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
@@ -201,6 +214,11 @@ class _Design:
         """Whether the stacked draw drops exactly the copies of the rows the original design drops."""
         if not self.check_singletons:
             return True
+        if self.quick_singletons:  # no level of a term shared by the copies is left alone: nothing changes
+            copies = draw.counts[self.cc_levels]
+            if all(not np.any(np.bincount(dim.codes, copies, minlength=dim.n) == 1)
+                   for dim in self._cc_dims.values() if not dim.copied):
+                return True
         cc = self.cc_index[draw.rows]
         on = cc >= 0
         rows, position = cc[on], draw.position[on]
@@ -218,26 +236,32 @@ class _Design:
         rows, position = b[on], draw.position[on]
         w = self.w[rows]
         sw = np.sqrt(w)
-        z0 = self.within[rows]
-        if self.dummies.shape[1]:
+        if self.reweighted:
+            try:
+                z = self._demean_drawn(draw, rows) * sw[:, None]
+            except _Unsupported:
+                return None
+        elif self.dummies.shape[1]:
             d = self.dummies[rows] * sw[:, None]
             dd = d.T @ d
             eigval, eigvec = np.linalg.eigh((dd + dd.T) / 2)
             ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
             inverse = (eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T
-            z = z0 * sw[:, None]
+            z = self.within[rows] * sw[:, None]
             for _ in range(2):  # one refinement step recovers the digits the normal equations lose
                 z = z - d @ (inverse @ (d.T @ z))
         else:
-            z = z0 * sw[:, None]
+            z = self.within[rows] * sw[:, None]
         z = np.asfortranarray(z)
         gram = z.T @ z
         norm = np.sqrt(np.diag(gram))
-        raw = self.raw[rows]
-        centred = raw - (w @ raw) / w.sum()
-        raw_norm = np.sqrt(np.einsum("ij,ij->j", centred * w[:, None], centred))
-        scale = np.sqrt(len(rows)) * (1.0 + np.max(np.abs(raw), axis=0))
-        if np.any(raw_norm <= 1e-8 * scale):  # a (nearly) constant column: its rounding decides
+        # the raw columns' weighted spread on the draw: sums over the stacked rows are the base rows'
+        # sums weighted by their copies (the columns centred on their base means, against cancellation)
+        copies = draw.counts[self.levels] * self.w
+        total = copies.sum()
+        first = copies @ self.raw_centred
+        raw_norm = np.sqrt(np.maximum(copies @ self.raw_squared - first * first / total, 0.0))
+        if np.any(raw_norm <= 1e-6 * np.sqrt(total) * self.raw_scale):  # (nearly) constant: rounding decides
             return None
         codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self.dims.items()}
         absorber = Absorber(pd.DataFrame({"t": self.time[rows]}) if self.time is not None else
@@ -245,12 +269,37 @@ class _Design:
                             self.settings.absorb, weights=w if self.settings.weights else None,
                             time="t" if self.time is not None else None, codes_of=lambda g: codes[g])
         out = []
+        fits: dict[tuple[str, str, tuple[str, ...]], tuple[list[int], np.ndarray, np.ndarray, np.ndarray] | None] = {}
+        nested: dict[tuple[tuple[str, ...], ...], int] = {}
         for spec in self.specs:
-            got = self._spec(spec, z, gram, norm, raw_norm, absorber, codes)
-            if got is None:
-                return None
-            out.append(got)
+            key = (spec.outcome, spec.focal, spec.controls)
+            if key not in fits:  # one regression, whatever the covariance choice
+                fits[key] = self._regression(spec, z, gram, norm, raw_norm)
+                if fits[key] is None:
+                    return None
+            by = spec.inference.by
+            if by not in nested:
+                nested[by] = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
+            out.append(self._inference(spec, fits[key], z, absorber, nested[by], codes))
         return out
+
+    def _demean_drawn(self, draw: Draw, rows: np.ndarray) -> np.ndarray:
+        """The design's columns demeaned on the drawn rows, each weighted by its copies (and its weight),
+        on the stacked rows ``rows``."""
+        drawn = np.flatnonzero(draw.counts[self.levels] > 0)
+        where = np.full(len(self.levels), -1, dtype=np.int64)
+        where[drawn] = np.arange(len(drawn))
+        copies = draw.counts[self.levels[drawn]].astype(float)
+        codes = {g: _dense(c[drawn], int(c.max()) + 1) for g, c in self.term_codes.items()}
+        frame = (pd.DataFrame({"t": self.time[drawn]}) if self.time is not None
+                 else pd.DataFrame(index=pd.RangeIndex(len(drawn))))
+        absorber = Absorber(frame, self.settings.absorb, weights=copies * self.w[drawn],
+                            time="t" if self.time is not None else None, tolerance=self.settings.tolerance,
+                            max_iterations=self.settings.max_iterations, codes_of=lambda g: codes[g])
+        out = absorber.demean(self.raw[drawn])
+        if not out.converged.all():
+            raise _Unsupported("not converged")
+        return out.values[where[rows]]
 
     def _absorbed(self, j: int, norm: np.ndarray, raw_norm: np.ndarray) -> bool | None:
         ratio = norm[j] / raw_norm[j]
@@ -266,9 +315,10 @@ class _Design:
         ratio = np.sqrt(max(r2, 0.0)) / norm[j]
         return None if ratio < 1e-4 else False  # the engine's threshold is 1e-7: only clear cases here
 
-    def _spec(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
-              absorber: Absorber, codes: dict[tuple[str, ...], np.ndarray]) -> tuple[str, float, float, float] | None:
-        nan = float("nan")
+    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
+                    ) -> tuple[list[int], np.ndarray, np.ndarray, np.ndarray] | None:
+        """The kept columns, ``(X'X)^{-1}``, coefficients and residuals of one regression (no columns:
+        the focal regressor is absorbed in this draw); ``None`` when a decision is near its threshold."""
         kept: list[int] = []
         for c in spec.controls:
             j = self.pos[c]
@@ -277,8 +327,7 @@ class _Design:
                 return None
             if absorbed:
                 continue
-            collinear = self._collinear(j, kept, gram, norm)
-            if collinear is None:
+            if self._collinear(j, kept, gram, norm) is None:
                 return None
             kept.append(j)
         j = self.pos[spec.focal]
@@ -286,20 +335,28 @@ class _Design:
         if absorbed is None:
             return None
         if absorbed:
-            return spec.spec_id, nan, nan, nan  # not identified in this draw
+            return [], np.empty((0, 0)), np.empty(0), np.empty(0)
         if self._collinear(j, kept, gram, norm) is None:
             return None
         idx = [j, *kept]
         y = self.pos[spec.outcome]
         bread = np.linalg.inv(gram[np.ix_(idx, idx)])
         beta = bread @ gram[idx, y]
-        e = z[:, y] - z[:, idx] @ beta
+        return idx, bread, beta, z[:, y] - z[:, idx] @ beta
+
+    def _inference(self, spec: Spec, fit: tuple[list[int], np.ndarray, np.ndarray, np.ndarray], z: np.ndarray,
+                   absorber: Absorber, nested_df: int, codes: dict[tuple[str, ...], np.ndarray]
+                   ) -> tuple[str, float, float, float]:
+        """One covariance choice of a regression, by the engine's covariance kind."""
+        nan = float("nan")
+        idx, bread, beta, e = fit
+        if not idx:
+            return spec.spec_id, nan, nan, nan  # not identified in this draw
         h = z[:, idx] @ bread[:, 0]
         pieces = FitPieces(estimate=float(beta[0]), e=e, h=h, rss=float(e @ e), bread=bread, within_r2=nan,
                            scores=lambda: np.asfortranarray(z[:, idx] * e[:, None]), coefficients=beta)
         by = spec.inference.by
         clusters = _covariance_codes(spec.request(), [codes[d] for d in by], lambda d: codes[d])
-        nested_df = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
         try:
             cov = covariance_kind(spec.inference.kind)(pieces, n_params=len(idx), absorbed_df=absorber.absorbed_df,
                                                        nested_df=nested_df, clusters=clusters)

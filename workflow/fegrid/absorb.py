@@ -318,10 +318,24 @@ class _Projection:
 #: that :class:`_TwoTerms` solves directly; beyond, alternating projections alone.
 DIRECT_MAX_LEVELS = 128
 
-#: Sweeps of alternating projections before a column still moving jumps to the direct solution
-#: (building the direct solver costs about as much as a few sweeps; most balanced panels converge
-#: in fewer, unbalanced ones and unit trends can take hundreds).
+#: Largest (large-term groups x small-term levels) table that :class:`_TwoTerms` holds densely when
+#: the two terms form one connected system.
+DENSE_CELLS = 4_000_000
+
+#: Sweeps of alternating projections before a column still moving jumps to the direct solution: one
+#: when the two terms form one system held densely (building it costs about a sweep), ten when it
+#: splits into many parts (building those costs about as much as ten sweeps; unbalanced panels and
+#: unit trends can take hundreds).
+DIRECT_AFTER_DENSE = 1
 DIRECT_AFTER = 10
+
+
+def _pinv(gram: np.ndarray) -> np.ndarray:
+    """Pseudo-inverse of a symmetric positive semi-definite matrix (eigenvalues below 1e-12 of the
+    largest count as zero)."""
+    eigval, eigvec = np.linalg.eigh((gram + gram.T) / 2)
+    keep = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+    return (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T
 
 
 class _TwoTerms:
@@ -345,6 +359,19 @@ class _TwoTerms:
         self.n_small = n_small
         self.w = w
         n_groups = len(large.inv_wsum)
+        self.slopes: np.ndarray | sp.csr_array | None = None
+        self.shares: np.ndarray | sp.csr_array
+        if parts.max(initial=0) == 0 and n_groups * n_small <= DENSE_CELLS:  # one system: dense tables
+            cells = large.codes * n_small + small
+            counts = np.bincount(cells, w, minlength=n_groups * n_small).reshape(n_groups, n_small)
+            self.shares = counts * large.inv_wsum[:, None]
+            gram = np.diag(np.bincount(small, w, minlength=n_small)) - self.shares.T @ counts
+            if large.slope is not None:
+                timed = np.bincount(cells, w * large.slope, minlength=n_groups * n_small).reshape(n_groups, n_small)
+                self.slopes = timed * large.inv_ss[:, None]
+                gram -= self.slopes.T @ timed
+            self.parts = [(np.arange(n_small), _pinv(gram))]
+            return
         cells = np.unique(large.codes * n_small + small)
         group, level = cells // n_small, cells % n_small
         inverse = np.searchsorted(cells, large.codes * n_small + small)
@@ -353,7 +380,6 @@ class _TwoTerms:
         self.shares = sp.csr_array((counts * large.inv_wsum[group], (group, level)), shape=shape)
         gram = (sp.diags_array(np.bincount(small, w, minlength=n_small))
                 - self.shares.T @ sp.csr_array((counts, (group, level)), shape=shape))
-        self.slopes = None
         if large.slope is not None:
             timed = np.bincount(inverse, w * large.slope, minlength=len(cells))
             self.slopes = sp.csr_array((timed * large.inv_ss[group], (group, level)), shape=shape)
@@ -368,13 +394,9 @@ class _TwoTerms:
         offsets = np.concatenate([[0], np.cumsum(sizes * sizes)[:-1]])
         flat = offsets[parts[gram.row]] + local[gram.row] * sizes[parts[gram.row]] + local[gram.col]
         blocks = np.bincount(flat, gram.data, minlength=int((sizes * sizes).sum()))
-        self.parts: list[tuple[np.ndarray, np.ndarray]] = []
         members_of = np.split(order, np.cumsum(sizes)[:-1])
-        for k in range(n_parts):
-            block = blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])
-            eigval, eigvec = np.linalg.eigh((block + block.T) / 2)
-            keep = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
-            self.parts.append((members_of[k], (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T))
+        self.parts = [(members_of[k], _pinv(blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])))
+                      for k in range(n_parts)]
 
     def apply(self, x: np.ndarray) -> np.ndarray:
         """Residuals of the columns of ``x`` (Fortran order) on both terms, column by column (so that
@@ -505,9 +527,10 @@ class Absorber:
             ]
 
     @cached_property
-    def _direct(self) -> _TwoTerms | None:
-        """The direct solver, when there are two active terms and the smaller is a categorical effect
-        with few levels in each connected part of the two (see :class:`_TwoTerms`)."""
+    def _direct_setup(self) -> tuple[int, int, int, np.ndarray] | None:
+        """Whether the direct solver applies (two active terms, the smaller a categorical effect with few
+        levels in each connected part of the two; see :class:`_TwoTerms`): the positions of the large and
+        the small projection, the sweeps before the jump and each small level's connected part."""
         if len(self._projections) != 2:
             return None
         a, b = sorted(range(2), key=lambda j: (self._projections[j].slope is None, -self._nlev[self._active[j]]))
@@ -515,12 +538,23 @@ class Absorber:
         if small.slope is not None:
             return None
         n_large, n_small = len(large.inv_wsum), self._nlev[self._active[b]]
+        if n_small <= DIRECT_MAX_LEVELS and n_large * n_small <= DENSE_CELLS:
+            return a, b, DIRECT_AFTER_DENSE, np.zeros(n_small, dtype=np.int64)
         graph = sp.coo_array((np.ones(len(small.codes)), (large.codes, small.codes + n_large)),
                              shape=(n_large + n_small, n_large + n_small))
         parts = connected_components(graph, directed=False)[1][n_large:]
         if np.bincount(parts).max() > DIRECT_MAX_LEVELS:
             return None
-        return _TwoTerms(large, small.codes, n_small, self.w, np.unique(parts, return_inverse=True)[1])
+        return a, b, DIRECT_AFTER, np.unique(parts, return_inverse=True)[1]
+
+    @cached_property
+    def _direct(self) -> _TwoTerms | None:
+        """The direct solver of the two terms, built when first needed."""
+        if self._direct_setup is None:
+            return None
+        a, b, _, parts = self._direct_setup
+        return _TwoTerms(self._projections[a], self._projections[b].codes, self._nlev[self._active[b]], self.w,
+                         parts)
     @cached_property
     def absorbed_df(self) -> int:
         """Degrees of freedom taken by the absorbed terms (see the Notes); counted when first asked
@@ -580,8 +614,8 @@ class Absorber:
         One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction. Columns
-        not converged after :data:`DIRECT_AFTER` sweeps jump to the direct solution of two terms
-        (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
+        not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps jump to the
+        direct solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
         """
         x = np.array(x, dtype=float, order="F")
         if x.ndim == 1:
@@ -610,8 +644,9 @@ class Absorber:
         active = np.arange(k)
         converged[:] = False
         cur = x
+        jump = self._direct_setup[2] + 1 if self._direct_setup is not None else 0
         for it in range(1, self.max_iterations + 1):
-            if it == DIRECT_AFTER + 1 and self._direct is not None:
+            if it == jump and self._direct is not None:
                 # slow to converge: jump to the direct solution (a projection of the column, wherever
                 # the iterations left it), which the next sweep confirms
                 cur = self._direct.apply(np.asfortranarray(cur))

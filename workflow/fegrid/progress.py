@@ -105,9 +105,13 @@ class RunMonitor:
             times = sorted(stage.files[i].stat().st_mtime for i in written)
             if len(times) > 1 and times[-1] > times[0]:
                 pace: float | None = (times[-1] - times[0]) / (len(times) - 1)
-            else:  # content-named jobs (fits, draws): from their first job's start (or the run's, without
-                # logs to watch); a few report files say nothing
-                pace = (now - (stage.started or self.start)) / stage.done if stage.fresh_only else None
+            elif stage.fresh_only:  # content-named jobs (fits, draws): from their first job's start (or the
+                # run's, without logs to watch), shared by the jobs running side by side (their logs
+                # have appeared, their results not yet)
+                running = sum(self._is_written(log) for log in stage.logs) - stage.done
+                pace = (now - (stage.started or self.start)) / stage.done / max(running, 1)
+            else:  # a few report files say nothing
+                pace = None
             left = "" if pace is None else f", about {duration(pace * (len(stage.todo) - stage.done))} left"
             if self.tty or now - stage.last_line >= LOG_EVERY:
                 self._print(stage.name, f"{stage.name}: {units_done} of {units_total} {stage.unit}{left}",

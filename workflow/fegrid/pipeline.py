@@ -200,7 +200,7 @@ class Plan:
         """The name of every job of each stage in this run (what its log and benchmark are called)."""
         names = {
             "snapshot_data": ["all"], "fit_job": [j.key for j in self.jobs], "gather_ledger": ["all"],
-            "draw_curve": [pair_slug(*pair) for pair in self.pairs], "summarise_curve": ["all"],
+            "draw_curve": ["all"] if self.pairs else [], "summarise_curve": ["all"],
             "draw_adoption": [pair_slug(*design) for design in self.adoption_designs],
             "draw_null_curves": [f"{self.joint_key}-{i:04d}" for i in range(len(self.joint_paths()))],
             "test_curve": ["all"], "render_appendix": ["all"], "compile_appendix": ["all"] if build_pdf else [],
@@ -649,15 +649,22 @@ def joint_key(grid: Grid, snapshot_key: str, specs: Sequence[Spec]) -> str:
                           [s.canonical for s in specs])
 
 
-def draw_figure(grid: Grid, ledger: str | Path, slug: str, png: str | Path, pdf: str | Path) -> None:
+def draw_figure(grid: Grid, ledger: str | Path | pd.DataFrame, slug: str, png: str | Path, pdf: str | Path) -> None:
     """The specification-curve figure of the outcome x focal pair named by ``slug``."""
     from .figures import draw_curve, save_curve  # matplotlib loads only in the jobs that draw
 
-    led = read_ledger(ledger)
+    led = ledger if isinstance(ledger, pd.DataFrame) else read_ledger(ledger)
     part = led[[pair_slug(o, f, c) == slug for o, f, c in zip(led["outcome"], led["focal"], led["curve"])]]
     if part.empty:
         raise FegridError(f"No specification of the ledger belongs to the pair '{slug}'.")
     save_curve(draw_curve(part, level=grid.level, labels=grid.raw.get("labels")), png, pdf)
+
+
+def draw_figures(grid: Grid, ledger: str | Path, pngs: Sequence[str | Path], pdfs: Sequence[str | Path]) -> None:
+    """Every specification-curve figure, in one job (the pair of each from its file name)."""
+    led = read_ledger(ledger)
+    for png, pdf in zip(pngs, pdfs):
+        draw_figure(grid, led, RunPaths.figure_slug(png), png, pdf)
 
 
 def draw_adoption(grid: Grid, ledger: str | Path, coefficients: str | Path, slug: str,

@@ -172,11 +172,12 @@ class _Design:
         nested, others = [], []
         for i in absorber._active if settings.absorb else []:
             (nested if _nested(absorber._codes[i], self.levels) else others).append(i)
-        dummies = [] if nested else [np.ones((len(rows), 1))]
+        dummies: list[np.ndarray] | None = [] if nested else [np.ones((len(rows), 1))]
+        if (any(settings.absorb[i].has_slope for i in others)  # a trend across copies: no dummy columns
+                or (0 if nested else 1) + sum(absorber._nlev[i] - 1 for i in others) > MAX_DUMMIES):
+            dummies, others = None, []
         for i in others:
-            if settings.absorb[i].has_slope:
-                dummies = None  # a trend across copies: no dummy columns for it
-                break
+            assert dummies is not None
             c, n = absorber._codes[i], absorber._nlev[i]
             block = np.zeros((len(rows), n - 1))
             hit = c > 0
@@ -184,7 +185,7 @@ class _Design:
             dummies.append(block)
         d = None if dummies is None else np.hstack(dummies) if dummies else np.zeros((len(rows), 0))
         # with many dummy columns, each draw demeans the drawn rows, weighted by their copies, instead
-        self.reweighted = d is None or d.shape[1] > MAX_DUMMIES
+        self.reweighted = d is None
         if self.reweighted:
             self.term_codes = {t.groups: codes(t.groups) for t in settings.absorb}
             self.within = self.dummies = np.zeros((len(rows), 0))

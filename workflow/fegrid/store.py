@@ -215,6 +215,11 @@ class RunPaths:
     def figure(self, slug: str, ext: str) -> Path:
         return self.run / "figures" / f"curve-{slug}.{ext}"
 
+    @staticmethod
+    def figure_slug(path: str | Path) -> str:
+        """The pair's slug of a curve figure written at :meth:`figure`."""
+        return Path(path).stem.removeprefix("curve-")
+
     def adoption_figure(self, kind: str, slug: str, ext: str) -> Path:
         """A staggered design's figure: ``kind`` is ``event`` (the event study) or ``decomposition``."""
         assert kind in ("event", "decomposition"), kind

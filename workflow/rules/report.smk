@@ -2,21 +2,19 @@
 
 
 rule draw_curve:
-    # the ledger, its summary and its figures come before any bootstrap draw
+    # the ledger, its summary and its figures come before any bootstrap draw; one job draws every
+    # curve (matplotlib loads once: a job per figure spent most of its time starting up)
     priority: 50
     input:
         ledger=str(PLAN.paths.ledger_parquet),
     output:
-        png=report(
-            str(PLAN.paths.figure("{pair}", "png")),
-            caption="../report/curve.rst",
-            category="Specification curves",
-        ),
-        pdf=str(PLAN.paths.figure("{pair}", "pdf")),
+        png=[report(str(p), caption="../report/curve.rst", category="Specification curves")
+             for p in PLAN.figure_paths("png")],
+        pdf=[str(p) for p in PLAN.figure_paths("pdf")],
     log:
-        log_of("draw_curve", "{pair}"),
+        log_of("draw_curve"),
     benchmark:
-        benchmark_of("draw_curve", "{pair}")
+        benchmark_of("draw_curve")
     conda:
         "../envs/fegrid.yaml"
     script:

@@ -76,16 +76,22 @@ def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path
     assert "warning: 32 specifications, more than jobs.warn_above (10)" in capsys.readouterr().err
 
 
-def test_the_first_chunk_of_draws_is_paced_from_the_first_draw_job_start(tmp_path: Path) -> None:
-    """The draws wait for the ledger, summary and figures: with one chunk done, its pace counts from
-    when the monitor saw the first draw job's log appear, not from the run's start (before, the
-    first line said about 3 min 20 s left here, for 40 s of work)."""
-    now = [1000.0]
+def _draws_watched(tmp_path: Path, now: list[float]) -> tuple[list[Path], list[Path], io.StringIO, RunMonitor]:
+    """Five chunks of draws, their jobs' logs, and a monitor on a clock the test moves."""
     draws = [tmp_path / f"joint/{i}.parquet" for i in range(5)]
     logs = [tmp_path / f"logs/draw-{i}.log" for i in range(5)]
     out = io.StringIO()
     monitor = RunMonitor([Stage("bootstrap draws", draws, "draws", [50] * 5, fresh_only=True, logs=logs)],
                          out=out, clock=lambda: now[0])
+    return draws, logs, out, monitor
+
+
+def test_the_first_chunk_of_draws_is_paced_from_the_first_draw_job_start(tmp_path: Path) -> None:
+    """The draws wait for the ledger, summary and figures: with one chunk done, its pace counts from
+    when the monitor saw the first draw job's log appear, not from the run's start (before, the
+    first line said about 3 min 20 s left here, for 40 s of work)."""
+    now = [1000.0]
+    draws, logs, out, monitor = _draws_watched(tmp_path, now)
     now[0] = 1040.0
     monitor.update()  # the report stages run: no draw job has started
     now[0] = 1041.0
@@ -98,21 +104,16 @@ def test_the_first_chunk_of_draws_is_paced_from_the_first_draw_job_start(tmp_pat
 
 
 def test_draw_jobs_side_by_side_share_the_pace(tmp_path: Path) -> None:
-    """Two draw jobs start together; when the first ends (10 s) the next starts: with two running,
-    the four chunks left take about 20 s, not 40 s (the demo's first line read 8 min 51 s for about 4 min)."""
+    """Two draw jobs start together; when the first ends (10 s), with two running side by side, the
+    four chunks left take about 20 s, not 40 s (the demo's first line read 8 min 51 s for about 4 min)."""
     now = [1000.0]
-    draws = [tmp_path / f"joint/{i}.parquet" for i in range(5)]
-    logs = [tmp_path / f"logs/draw-{i}.log" for i in range(5)]
-    out = io.StringIO()
-    monitor = RunMonitor([Stage("bootstrap draws", draws, "draws", [50] * 5, fresh_only=True, logs=logs)],
-                         out=out, clock=lambda: now[0])
+    draws, logs, out, monitor = _draws_watched(tmp_path, now)
     now[0] = 1041.0
     _touch(logs[0], 1040.5)
     _touch(logs[1], 1040.5)
     monitor.update()
     now[0] = 1051.0
-    _touch(draws[0], 1050.5)
-    _touch(logs[2], 1050.6)
+    _touch(draws[0], 1050.5)  # the next job has not started yet: one is running, but two ran side by side
     monitor.update()
     assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 50 of 250 draws, about 20 s left"
 

@@ -15,17 +15,21 @@ in <= 35 CPU s), from one run.
 from __future__ import annotations
 
 import argparse
+import os
 import tempfile
 import time
 from pathlib import Path
 
-import numpy as np
-import pandas as pd
+for _threads in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_threads, "1")  # CPU seconds of one thread, as in a draw job; set before numpy loads
 
-from fegrid.estimate import fit_block
-from fegrid.joint import draw_curves, resample_panel
-from fegrid.locations import DEMO_CONFIG
-from fegrid.pipeline import make_plan, snapshot_data
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+
+from fegrid.estimate import fit_block  # noqa: E402
+from fegrid.joint import draw_curves, resample_panel  # noqa: E402
+from fegrid.locations import DEMO_CONFIG  # noqa: E402
+from fegrid.pipeline import make_plan, snapshot_data  # noqa: E402
 
 
 def old_path(grid, frame, specs, draws, seed, column) -> pd.DataFrame:
@@ -51,8 +55,6 @@ def main() -> None:
     parser.add_argument("--draws", type=int, default=10)
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        import os
-
         os.chdir(tmp)
         plan = make_plan(DEMO_CONFIG, prepare=True)
         snapshot_data(plan.grid, Path(tmp) / "snap.parquet")

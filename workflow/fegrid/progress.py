@@ -51,6 +51,7 @@ class Stage:
     fresh_only: bool = False
     logs: Sequence[Path] = ()  # the jobs' logs, which appear when a job starts
     started: float | None = None  # when the monitor first saw one of them
+    side_by_side: int = 0  # the most of its jobs seen running at once
     done: int = -1
     last_line: float = 0.0
     finished: bool = False
@@ -86,9 +87,12 @@ class RunMonitor:
         for stage in self.stages:
             if stage.finished or not stage.todo:
                 continue
-            if stage.started is None and any(self._is_written(log) for log in stage.logs):
+            started = sum(self._is_written(log) for log in stage.logs)
+            if stage.started is None and started:
                 stage.started = now
             written = [i for i in stage.todo if self._is_written(stage.files[i])]
+            # the most jobs seen running side by side (started, no result yet)
+            stage.side_by_side = max(stage.side_by_side, started - len(written))
             if len(written) == stage.done or not written:
                 continue
             stage.done = len(written)
@@ -106,10 +110,8 @@ class RunMonitor:
             if len(times) > 1 and times[-1] > times[0]:
                 pace: float | None = (times[-1] - times[0]) / (len(times) - 1)
             elif stage.fresh_only:  # content-named jobs (fits, draws): from their first job's start (or the
-                # run's, without logs to watch), shared by the jobs running side by side (their logs
-                # have appeared, their results not yet)
-                running = sum(self._is_written(log) for log in stage.logs) - stage.done
-                pace = (now - (stage.started or self.start)) / stage.done / max(running, 1)
+                # run's, without logs to watch), shared by the jobs running side by side
+                pace = (now - (stage.started or self.start)) / stage.done / max(stage.side_by_side, 1)
             else:  # a few report files say nothing
                 pace = None
             left = "" if pace is None else f", about {duration(pace * (len(stage.todo) - stage.done))} left"

@@ -40,7 +40,7 @@ from .estimators import POISSON
 from .grid import Grid, Spec
 from .ledger import PAIR, STATUS_OK
 from .reweight import Draw, draw_levels, prepare_blocks
-from .samples import SampleDef, apply_sample
+from .samples import SampleDef, apply_sample, sample_rows
 
 __all__ = ["resample_panel", "stack_draw", "without_wild", "draw_curves", "curve_statistics", "joint_tests",
            "STATISTICS",
@@ -97,20 +97,20 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
             frame[col] = pd.Categorical(frame[col].astype(object),
                                         categories=sorted(frame[col].dropna().astype(object).unique(), key=str))
     codes, levels = pd.factorize(frame[column], sort=True)
-    sample_rows: dict[str, np.ndarray] = {}
+    masks: dict[str, np.ndarray] = {}
 
     def in_sample(sample: SampleDef) -> np.ndarray:
         """The rows of the data in ``sample``: a draw's sample is their copies (not the filters applied
         again to the stacked panel, whose unit and resampling labels are the copies' positions)."""
         skey = repr(sample.canonical())
-        if skey not in sample_rows:
+        if skey not in masks:
             mask = np.zeros(len(frame), dtype=bool)
             try:
-                mask[apply_sample(frame.assign(__row__=np.arange(len(frame))), sample, grid.panel)["__row__"]] = True
+                mask[sample_rows(frame, sample, grid.panel)] = True
             except FegridError:
                 pass
-            sample_rows[skey] = mask
-        return sample_rows[skey]
+            masks[skey] = mask
+        return masks[skey]
 
     blocks, stacked = (prepare_blocks(grid, frame, specs, codes, len(levels), column) if reweight
                        else ([], list(specs)))

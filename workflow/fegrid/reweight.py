@@ -42,7 +42,7 @@ from .errors import EstimationError, FegridError
 from .estimate import BlockSettings, _covariance_codes, _needed
 from .estimators import LEAST_SQUARES
 from .grid import Grid, Spec
-from .samples import Panel, SampleDef, apply_sample
+from .samples import sample_rows
 
 __all__ = ["Draw", "draw_levels", "fast_specs", "ReweightedBlock", "prepare_blocks"]
 
@@ -83,12 +83,6 @@ def fast_specs(specs: Sequence[Spec]) -> tuple[list[Spec], list[Spec]]:
 
 class _Unsupported(Exception):
     """A block or design that the reweighting does not handle: it takes the stacked refit."""
-
-
-def _sample_rows(frame: pd.DataFrame, sample: SampleDef, panel: Panel) -> np.ndarray:
-    """Positions of the sample's rows in the data."""
-    part = apply_sample(frame.assign(__row__=np.arange(len(frame))), sample, panel)
-    return part["__row__"].to_numpy()
 
 
 def _dense(codes: np.ndarray, n: int) -> np.ndarray:
@@ -377,7 +371,7 @@ class ReweightedBlock:
                  column: str) -> None:
         self.specs = specs
         settings = grid.block_settings(specs[0])
-        positions = _sample_rows(frame, specs[0].sample, grid.panel)
+        positions = sample_rows(frame, specs[0].sample, grid.panel)
         self.levels_in_sample = np.unique(levels[positions])
         part = frame.iloc[positions]
         groups: dict[bytes, tuple[np.ndarray, list[Spec]]] = {}

@@ -183,3 +183,9 @@ def apply_sample(frame: pd.DataFrame, sample: SampleDef, panel: Panel) -> pd.Dat
             f"{json.dumps(sample.canonical())} exclude every observation."
         )
     return out
+
+
+def sample_rows(frame: pd.DataFrame, sample: SampleDef, panel: Panel) -> np.ndarray:
+    """Positions (0, 1, ...) of ``frame``'s rows in ``sample``; an empty sample raises as in :func:`apply_sample`."""
+    part = apply_sample(frame.assign(__row__=np.arange(len(frame))), sample, panel)
+    return part["__row__"].to_numpy()

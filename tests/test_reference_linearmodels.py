@@ -18,6 +18,7 @@ from pathlib import Path
 
 import pytest
 
+from fegrid import estimate
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import Inference, fit_one
 from fegrid.renames import KIND_RENAMES
@@ -47,6 +48,20 @@ def test_matches_linearmodels(name: str, datasets: dict) -> None:
     n = res.n_obs
     ours = _counted(res, case)
     factor = math.sqrt((n - k - ours) / (n - k - case["effects_df_counted_by_linearmodels"]))
+    assert res.std_error * factor == pytest.approx(case["std_error"], rel=1e-6)
+
+
+@pytest.mark.parametrize("name", sorted(CASES))
+def test_matches_linearmodels_with_the_qr_in_chunks(name: str, datasets: dict, monkeypatch) -> None:
+    """Source: as above. The same cases with the R factor taken from row chunks of 64 (as on data of
+    more than 32,768 rows): the chunked (tall-and-skinny) QR gives the same estimates and SEs."""
+    monkeypatch.setattr(estimate, "QR_CHUNK", 64)
+    case = CASES[name]
+    res = _fit(case, datasets)
+    assert res.status == "ok", res.message
+    assert res.estimate == pytest.approx(case["estimate"], rel=1e-8)
+    k, n = 1 + len(case["spec"]["controls"]), res.n_obs
+    factor = math.sqrt((n - k - _counted(res, case)) / (n - k - case["effects_df_counted_by_linearmodels"]))
     assert res.std_error * factor == pytest.approx(case["std_error"], rel=1e-6)
 
 

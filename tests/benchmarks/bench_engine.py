@@ -30,6 +30,7 @@ import pandas as pd
 
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block
+from fegrid.memory import reuse_freed_memory
 
 PERIODS = 20
 CONTROLS = [f"c{i}" for i in range(1, 9)]
@@ -120,7 +121,9 @@ def linearmodels_fit(df: pd.DataFrame, sample: str, absorb: str, controls: str, 
 
 
 def child(rows: int) -> None:
-    """Run fegrid alone in this process and report its time and peak memory."""
+    """Run fegrid alone in this process, set up as a fit job's (fegrid.memory), and report its time
+    and peak memory."""
+    reuse_freed_memory()
     df = make_panel(rows)
     seconds, out = run_fegrid(df)
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024

@@ -192,12 +192,38 @@ def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, 
     """
     codes = np.zeros(len(frame), dtype=np.int64)
     for col in columns:
-        c, uniques = pd.factorize(frame[col], sort=True)
-        codes = codes * max(len(uniques), 1) + c
+        series = frame[col]
+        got = _integer_codes(series.to_numpy()) if series.dtype.kind in "iu" else None
+        c, n_levels = got if got is not None else _sorted_factorize(series)
+        codes = codes * max(n_levels, 1) + c
     if len(columns) > 1:
-        codes, uniques = pd.factorize(codes, sort=True)
-        return codes.astype(np.int64), len(uniques)
+        got = _integer_codes(codes)
+        codes, n_levels = got if got is not None else _sorted_factorize(pd.Series(codes))
+        return codes, n_levels
     return codes, int(codes.max()) + 1 if len(codes) else 0
+
+
+def _sorted_factorize(series: pd.Series) -> tuple[np.ndarray, int]:
+    c, uniques = pd.factorize(series, sort=True)
+    return c.astype(np.int64, copy=False), len(uniques)
+
+
+def _integer_codes(values: np.ndarray) -> tuple[np.ndarray, int] | None:
+    """Codes of integers in sorted order by counting (no sort), when their range is at most a few
+    times their number; ``None`` otherwise."""
+    if len(values) == 0:
+        return None
+    low, high = int(values.min()), int(values.max())
+    if high - low > 4 * len(values) + 1024:
+        return None
+    if values.dtype.kind == "i":
+        shifted = values.astype(np.int64, copy=False) - low
+    else:  # unsigned: subtract in its own type (never below zero), then count in int64
+        shifted = (values - values.dtype.type(low)).astype(np.int64, copy=False)
+    present = np.zeros(high - low + 1, dtype=bool)
+    present[shifted] = True
+    rank = np.cumsum(present, dtype=np.int64) - 1
+    return rank[shifted], int(rank[-1]) + 1
 
 
 CodesOf = Callable[[tuple[str, ...]], np.ndarray]
@@ -298,18 +324,20 @@ class _Projection:
     def _group_sums(self, v: np.ndarray) -> np.ndarray:
         return np.bincount(self.codes, v if self.unweighted else v * self.w, minlength=len(self.inv_wsum))
 
-    def apply(self, x: np.ndarray) -> np.ndarray:
-        """Residuals of the columns of ``x`` (Fortran order); a new array, ``x`` is unchanged.
+    def apply(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Residuals of the columns of ``x`` (Fortran order), in ``out`` (which may be ``x``) or
+        a new array.
 
         Column by column with bincount: contiguous passes and no n x k temporaries.
         """
-        out = np.empty_like(x, order="F")
+        if out is None:
+            out = np.empty_like(x, order="F")
         for j in range(x.shape[1]):
             col = x[:, j]
             means = self._group_sums(col) * self.inv_wsum
+            slopes = None if self.slope is None else self._group_sums(self.slope * col) * self.inv_ss
             np.subtract(col, means.take(self.codes), out=out[:, j])
-            if self.slope is not None:
-                slopes = self._group_sums(self.slope * col) * self.inv_ss
+            if slopes is not None:
                 out[:, j] -= slopes.take(self.codes) * self.slope
         return out
 
@@ -629,43 +657,37 @@ class Absorber:
         k = x.shape[1]
         iterations = np.ones(k, dtype=np.int64)
         converged = np.ones(k, dtype=bool)
-        if len(self._projections) <= 1:
-            return DemeanOutcome(self._sweep(x), iterations, converged)
+        if len(self._projections) <= 1:  # exact in one projection, on our own copy
+            for proj in self._projections:
+                proj.apply(x, out=x)
+            return DemeanOutcome(x, iterations, converged)
         unweighted = bool(np.all(self.w == 1.0))
 
-        def wdot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-            """Column-wise weighted inner products, one column at a time."""
-            if unweighted:
-                return np.array([np.dot(a[:, j], b[:, j]) for j in range(a.shape[1])])
-            return np.array([np.dot(self.w * a[:, j], b[:, j]) for j in range(a.shape[1])])
+        def wdot(a: np.ndarray, b: np.ndarray) -> float:
+            return float(np.dot(a, b)) if unweighted else float(np.dot(self.w * a, b))
 
-        scale = np.sqrt(wdot(x, x))
-        scale[scale == 0] = 1.0
-        active = np.arange(k)
-        converged[:] = False
-        cur = x
         jump = self._direct_setup[2] + 1 if self._direct_setup is not None else 0
-        for it in range(1, self.max_iterations + 1):
-            if it == jump and self._direct is not None:
-                # slow to converge: jump to the direct solution (a projection of the column, wherever
-                # the iterations left it), which the next sweep confirms
-                cur = self._direct.apply(np.asfortranarray(cur))
-            tx = self._sweep(cur)
-            d = cur - tx
-            dd = wdot(d, d)
-            done = np.sqrt(dd) <= self.tolerance * scale[active]
-            if done.any():
-                x[:, active[done]] = tx[:, done]
-                iterations[active[done]] = it
-                converged[active[done]] = True
-            keep = ~done
-            if not keep.any():
-                break
-            d, dd, cur = d[:, keep], dd[keep], cur[:, keep]
-            active = active[keep]
-            step = wdot(cur, d) / dd
-            step = np.where(np.isfinite(step) & (step > 0), step, 1.0)
-            cur = cur - d * step
-            x[:, active] = cur
-            iterations[active] = it
+        converged[:] = False
+        # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
+        for j in range(k):
+            cur = x[:, j].copy()
+            scale = np.sqrt(wdot(cur, cur)) or 1.0
+            for it in range(1, self.max_iterations + 1):
+                if it == jump and self._direct is not None:
+                    # slow to converge: jump to the direct solution (a projection of the column,
+                    # wherever the iterations left it), which the next sweep confirms
+                    cur = self._direct.apply(cur[:, None])[:, 0]
+                tx = self._sweep(cur[:, None])[:, 0]
+                d = cur - tx
+                dd = wdot(d, d)
+                iterations[j] = it
+                if np.sqrt(dd) <= self.tolerance * scale:
+                    x[:, j] = tx
+                    converged[j] = True
+                    break
+                step = wdot(cur, d) / dd
+                step = step if np.isfinite(step) and step > 0 else 1.0
+                cur -= d * step
+            else:
+                x[:, j] = cur
         return DemeanOutcome(x, iterations, converged)

@@ -75,6 +75,10 @@ def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int
     n_groups = int(codes.max()) + 1
     if n_groups == len(codes):  # one observation per cluster (e.g. unit x period): the sums are the rows
         return values, n_groups
+    if len(codes) > 1 and bool(np.all(codes[1:] >= codes[:-1])):  # sorted (a panel sorted by unit): runs
+        starts = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
+        if len(starts) == n_groups:  # every code present, in order: one sum per run
+            return np.add.reduceat(values, starts, axis=0), n_groups
     if values.ndim == 1:
         return np.bincount(codes, values, minlength=n_groups), n_groups
     return np.column_stack([np.bincount(codes, values[:, j], minlength=n_groups)
@@ -115,6 +119,12 @@ class _Kind:
         """The scaled middle ``M`` of the sandwich ``B M B`` for scores ``X * e`` (n, k), with the
         kind's small-sample factors (the homoskedastic kind has none: see :meth:`matrix`)."""
         raise NotImplementedError
+
+    def with_matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
+                    clusters: Sequence[np.ndarray]) -> tuple[CovarianceOutcome, np.ndarray]:
+        """The focal coefficient's outcome and the whole matrix, computed together."""
+        args = dict(n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df, clusters=clusters)
+        return self(fit, **args), self.matrix(fit, **args)  # type: ignore[arg-type]
 
     def matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
                clusters: Sequence[np.ndarray], psd: bool = True) -> np.ndarray:
@@ -196,6 +206,11 @@ class TwoWay(_Kind):
     dimensions = 2
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        return self.with_matrix(fit, n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
+                                clusters=clusters)[0]
+
+    def with_matrix(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        """The focal variance is the clipped matrix's first element: one meat for both."""
         counts = [int(c.max()) + 1 if len(c) else 0 for c in clusters]
         meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
                          clusters=clusters)
@@ -206,7 +221,7 @@ class TwoWay(_Kind):
         if adjusted:
             v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
         return CovarianceOutcome(float(v[0, 0]), min(counts[0], counts[1]) - 1, (counts[0], counts[1]),
-                                 adjusted)
+                                 adjusted), v
 
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = scores.shape[0]

@@ -16,6 +16,7 @@ weights. :func:`fit_block` evaluates all of them with as little repeated work as
 
 from __future__ import annotations
 
+import functools
 import json
 import zlib
 from collections.abc import Callable, Collection, Sequence
@@ -372,7 +373,7 @@ class _Design:
             raw = self.frame[c].to_numpy(dtype=float)
             centred = raw - np.dot(self.w, raw) / self.w.sum()
             self.raw_norm[j] = np.sqrt(np.dot(self.w * centred, centred)) if not unweighted else np.linalg.norm(centred)
-        self.R = np.linalg.qr(self.Z, mode="r")
+        self.R = tall_r(self.Z)
         self.norm = np.linalg.norm(self.R, axis=0)
 
     def _absorbed(self, j: int) -> bool:
@@ -500,11 +501,6 @@ class _Design:
         scale = self.sqrt_w[:, None]
         return self.absorber.demean(columns / scale).values * scale
 
-    def _scores(self, idx: list[int], e: np.ndarray) -> np.ndarray:
-        out = np.empty((len(e), len(idx)), order="F")
-        for c, j in enumerate(idx):
-            np.multiply(self.Z[:, j], e, out=out[:, c])
-        return out
 
     def fit(self, outcome: str, focal: str, controls: tuple[str, ...]) -> FitPieces:
         key = (outcome, focal, controls)
@@ -526,7 +522,8 @@ class _Design:
             self._fits[key] = FitPieces(
                 estimate=float(beta[0]), e=eh[:, 0], h=eh[:, 1], rss=rss, bread=bread,
                 within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
-                scores=lambda idx=idx, e=eh[:, 0]: self._scores(idx, e), coefficients=beta)
+                # cached for the regression's covariance choices; no reference back to the design
+                scores=functools.cache(lambda z=self.Z, idx=idx, e=eh[:, 0]: _scores(z, idx, e)), coefficients=beta)
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> _FocalDiagnostics:
@@ -554,6 +551,30 @@ class _Design:
             sd_within=float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
             variance_share=float(np.sum(self.w * xt * xt)) / raw**2 if raw > 0 else 0.0,
             units_with_variation=with_variation)
+
+
+def _scores(z: np.ndarray, idx: list[int], e: np.ndarray) -> np.ndarray:
+    """``X * e`` for the columns ``idx`` of ``z`` (Fortran order)."""
+    out = np.empty((len(e), len(idx)), order="F")
+    for c, j in enumerate(idx):
+        np.multiply(z[:, j], e, out=out[:, c])
+    return out
+
+
+#: Rows per chunk of :func:`tall_r`: a chunk's columns stay in cache while it is factorized.
+QR_CHUNK = 16384
+
+
+def tall_r(z: np.ndarray) -> np.ndarray:
+    """The R factor of ``z = QR`` (m x m, ``z`` with at least as many rows as columns), by
+    Householder QR of row chunks and then of their stacked R factors: the same backward-stable
+    factorization in another order (tall-and-skinny QR; Demmel, Grigori, Hoemmen & Langou 2012),
+    without a copy of the whole matrix."""
+    n, m = z.shape
+    if n <= 2 * QR_CHUNK:
+        return np.linalg.qr(z, mode="r")
+    parts = [np.linalg.qr(z[i: i + QR_CHUNK], mode="r") for i in range(0, n, QR_CHUNK)]
+    return np.linalg.qr(np.vstack(parts), mode="r")[:m]
 
 
 def _design_columns(settings: BlockSettings) -> list[str]:
@@ -767,8 +788,9 @@ def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber:
     kind = covariance_kind(spec.inference.kind)
     args = dict(n_params=pieces.bread.shape[0], absorbed_df=absorber.absorbed_df, nested_df=nested_df,
                 clusters=all_codes)
+    whole = keep and pieces.coefficients is not None
     try:
-        cov = kind(pieces, **args)
+        cov, matrix = kind.with_matrix(pieces, **args) if whole else (kind(pieces, **args), None)
     except EstimationError as exc:
         return replace(base, message=str(exc), estimate=beta, within_r2=r2), None
     se = float(np.sqrt(cov.variance))
@@ -791,9 +813,8 @@ def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber:
         within_r2=r2, psd_adjusted=cov.psd_adjusted)
     result = _cluster_checks(spec, frame, s, codes, result)
     kept = None
-    if keep and pieces.coefficients is not None:
-        kept = Coefficients(tuple(terms), np.asarray(pieces.coefficients, dtype=float),
-                            kind.matrix(pieces, **args), float(cov.df))
+    if matrix is not None:
+        kept = Coefficients(tuple(terms), np.asarray(pieces.coefficients, dtype=float), matrix, float(cov.df))
     return result, kept
 
 

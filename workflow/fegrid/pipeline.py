@@ -44,6 +44,7 @@ from .estimate import RESULT_COLUMNS, fit_block, read_columns
 from .grid import Grid, Job, Spec, load_config, plan_jobs, spec_table
 from .ledger import DEFAULT_CURVE, DIMENSIONS, LEDGER_COLUMNS, read_ledger
 from .locations import SOURCE_CHECKOUT
+from .memory import reuse_freed_memory
 from .periods import period_numbers
 from .samples import apply_sample
 from .store import (
@@ -626,6 +627,7 @@ def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
     A :class:`FegridError` (the user's mistake) is written as its one-paragraph message and ends
     the process with exit code 1; anything else keeps its traceback, since it is a bug.
     """
+    reuse_freed_memory()  # a job's own process: see fegrid.memory
     log = Path(log)
     log.parent.mkdir(parents=True, exist_ok=True)
     with open(log, "w") as fh, contextlib.redirect_stderr(fh), contextlib.redirect_stdout(fh):

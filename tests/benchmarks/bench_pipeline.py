@@ -6,7 +6,7 @@ regressors x 5 absorbed-effect choices x 5 covariance choices x 10 samples x 10 
 
 Printed, from one cold run of ``fegrid run -c CORES``: wall time; time inside fegrid's fit step
 (the jobs' own clocks); the jobs' wall time as Snakemake measured it (Python start-up included);
-the share of wall time in which no job ran, from the time stamps of Snakemake's log (Snakemake's own
+the share of wall time in which no job ran, from the jobs' benchmark files (Snakemake's own
 work: parsing, DAG, scheduling, and fegrid's checks before it starts); the share of the fit jobs'
 time spent outside the fit step (Python start-up, imports, reading the snapshot); peak memory of
 any process.
@@ -18,13 +18,11 @@ from __future__ import annotations
 
 import argparse
 import json
-import re
 import resource
 import subprocess
 import sys
 import tempfile
 import time
-from datetime import datetime
 from pathlib import Path
 
 import numpy as np
@@ -53,23 +51,14 @@ def make_data(rows: int, path: Path, seed: int = 2026) -> None:
     df.to_parquet(path, index=False)
 
 
-def busy_seconds(log: Path) -> float:
-    """Seconds in which at least one job ran, from the Snakemake log's time stamps (1 s resolution)."""
-    stamp = re.compile(r"^\[(\w{3} \w{3} +\d+ [\d:]+ \d{4})\]$")
-    now = None
-    starts: dict[str, float] = {}
+def busy_seconds(benchmarks: list[Path]) -> float:
+    """Seconds in which at least one job ran: each job's interval ends when Snakemake wrote its
+    benchmark file and lasts the wall time the file records (``fegrid run`` shows its own progress
+    lines, so Snakemake's log holds no time stamps to read)."""
     intervals = []
-    for line in log.read_text().splitlines():
-        m = stamp.match(line.strip())
-        if m:
-            now = datetime.strptime(m.group(1), "%a %b %d %H:%M:%S %Y").timestamp()
-            continue
-        jid = re.match(r"^\s+jobid: (\d+)$", line)
-        if jid and now is not None and jid.group(1) not in starts:
-            starts[jid.group(1)] = now
-        fin = re.match(r"^Finished jobid: (\d+)", line.strip())
-        if fin and now is not None and fin.group(1) in starts:
-            intervals.append((starts[fin.group(1)], now))
+    for p in benchmarks:
+        end = p.stat().st_mtime
+        intervals.append((end - float(pd.read_csv(p, sep="\t").iloc[0]["s"]), end))
     intervals.sort()
     total, end = 0.0, -1.0
     for a, b in intervals:
@@ -134,8 +123,7 @@ def main() -> None:
         entry["max_rss_mb"] = max(entry["max_rss_mb"], float(pd.to_numeric(row["max_rss"], errors="coerce") or 0))
     fit_inside = sum(log["seconds"] for log in logs)
     job_seconds = sum(b["seconds"] for b in bench.values())
-    logs_dir = sorted((folder / ".snakemake" / "log").glob("*.snakemake.log"))
-    busy = busy_seconds(logs_dir[-1]) if logs_dir else float("nan")
+    busy = busy_seconds(sorted((run / "benchmarks").glob("*/*.tsv")))
     peak_children_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     report = {
         "rows": args.rows,

@@ -308,12 +308,22 @@ class _Design:
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
         self._cohorts: Cohorts | None = None
         self._column_keys: dict[str, str] = {}
+        self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
+        self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
         """Absorbed df nested in every cluster dimension (memoised per clustering)."""
         if dims not in self._nested:
             self._nested[dims] = self.absorber.nested_df([self.cluster_codes(d) for d in dims])
         return self._nested[dims]
+
+    def outcome_moments(self, outcome: str) -> tuple[float, float]:
+        """Mean and standard deviation of an outcome on the design's rows."""
+        if outcome not in self._outcomes:
+            y = self.frame[outcome].to_numpy(dtype=float)
+            self._outcomes[outcome] = (float(y.mean()) if len(y) else float("nan"),
+                                       float(y.std(ddof=1)) if len(y) > 1 else float("nan"))
+        return self._outcomes[outcome]
 
     def column_key(self, column: str) -> str:
         """Key of a demeaned column in a store: the design and the column's values on its rows
@@ -718,10 +728,9 @@ def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> Spec
     """What every row of a design reports, whatever its status."""
     cols = (spec.outcome, spec.focal, *spec.controls)
     focal = design.focal_diagnostics(spec.focal)
-    y = design.frame[spec.outcome].to_numpy(dtype=float)
+    mean, sd = design.outcome_moments(spec.outcome)
     return SpecResult(
-        outcome_mean=float(y.mean()) if len(y) else float("nan"),
-        outcome_sd=float(y.std(ddof=1)) if len(y) > 1 else float("nan"),
+        outcome_mean=mean, outcome_sd=sd,
         spec_id=spec.spec_id, status=STATUS_FAILED, n_obs=len(design.frame), n_singletons=design.n_singletons,
         absorbed_df=design.absorber.absorbed_df, absorb_levels=_fmt_counts(design.absorber.levels),
         iterations=max(design.iterations[c] for c in cols), converged=all(design.converged[c] for c in cols),
@@ -751,7 +760,7 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
     all_codes = _covariance_codes(spec, codes, design.cluster_codes)
     terms = [design.columns[j] for j in regressors.columns]
     result, kept = _inference(base, spec, pieces, design.absorber, design.nested_df(spec.inference.by), codes,
-                              all_codes, design.frame, design.settings, terms, keep)
+                              all_codes, design.frame, design.settings, terms, keep, design.checks)
     if result.status != STATUS_OK:
         return result, kept
     if two_stage:
@@ -780,10 +789,11 @@ def _covariance_codes(spec: SpecRequest, codes: list[np.ndarray],
 
 def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber: Absorber, nested_df: int,
                codes: list[np.ndarray], all_codes: list[np.ndarray], frame: pd.DataFrame, s: BlockSettings,
-               terms: list[str], keep: bool) -> tuple[SpecResult, Coefficients | None]:
+               terms: list[str], keep: bool, checks: dict | None = None) -> tuple[SpecResult, Coefficients | None]:
     """The focal coefficient's inference (and every coefficient's, when ``keep``) under the
     specification's covariance kind; shared by every estimator. ``codes`` are the cluster
-    variables' codes, ``all_codes`` those with the intersection of two-way clustering."""
+    variables' codes, ``all_codes`` those with the intersection of two-way clustering; ``checks``
+    keeps the clusters' checks for other specifications on the same rows (see :func:`_cluster_checks`)."""
     beta, r2 = pieces.estimate, pieces.within_r2
     kind = covariance_kind(spec.inference.kind)
     args = dict(n_params=pieces.bread.shape[0], absorbed_df=absorber.absorbed_df, nested_df=nested_df,
@@ -811,7 +821,7 @@ def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber:
         ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
         within_r2=r2, psd_adjusted=cov.psd_adjusted)
-    result = _cluster_checks(spec, frame, s, codes, result)
+    result = _cluster_checks(spec, frame, s, codes, result, checks)
     kept = None
     if matrix is not None:
         kept = Coefficients(tuple(terms), np.asarray(pieces.coefficients, dtype=float), matrix, float(cov.df))
@@ -1255,14 +1265,26 @@ def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[
 
 
 def _cluster_checks(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, codes: Sequence[np.ndarray],
-                    result: SpecResult) -> SpecResult:
+                    result: SpecResult, cache: dict | None = None) -> SpecResult:
     """Warnings when clustered inference is fragile (MacKinnon & Webb 2017).
 
     Few clusters, one cluster holding a large share of the observations, or (for a 0/1 focal
     regressor) few clusters with any treated observation. Thresholds are the block settings'.
+    They depend on the rows, the focal regressor and the clustering only: ``cache`` (one per
+    design) keeps them for the design's other specifications.
     """
     if not codes:
         return result
+    cache = {} if cache is None else cache
+    key = (spec.focal, spec.inference.by)
+    if key not in cache:
+        cache[key] = _cluster_profile(spec, frame, s, codes)
+    notes, share, treated = cache[key]
+    return replace(result, inference_warning="; ".join(notes), largest_cluster_share=share, treated_clusters=treated)
+
+
+def _cluster_profile(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings,
+                     codes: Sequence[np.ndarray]) -> tuple[list[str], float, int]:
     notes = []
     shares, treated = [], []
     x = frame[spec.focal].to_numpy(dtype=float)
@@ -1282,8 +1304,7 @@ def _cluster_checks(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, co
             treated.append(n_treated)
             if n_treated < s.warn_min_treated_clusters:
                 notes.append(f"few treated clusters: {n_treated} {name} with any treated observation")
-    return replace(result, inference_warning="; ".join(notes), largest_cluster_share=max(shares),
-                   treated_clusters=min(treated) if treated else -1)
+    return notes, max(shares), min(treated) if treated else -1
 
 
 def fit_one(

@@ -350,6 +350,11 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
 #: process at parse time; its jobs inherit it and read the plan instead of expanding the grid).
 PLAN_ENV = "FEGRID_PLAN_FILE"
 
+#: Environment variables that size the linear-algebra libraries' thread pools. Every job declares one
+#: thread and Snakemake runs as many jobs side by side as it has cores, so each job's pool gets one
+#: thread (unless the user set them): a pool per job would spin on cores that other jobs use.
+JOB_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
 
 def save_plan(plan: Plan) -> Path:
     """Keep a resolved plan, its slim form for the rules and each job's specifications in the run's

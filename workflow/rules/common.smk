@@ -18,6 +18,10 @@ _MODERN = renames.modernise(config)
 config.clear()
 config.update(_MODERN)
 
+# one job, one declared thread, one thread in its linear algebra (see pipeline.JOB_THREAD_VARIABLES)
+for _variable in pipeline.JOB_THREAD_VARIABLES:
+    os.environ.setdefault(_variable, "1")
+
 try:
     if workflow.is_main_process:
         # plan once; the jobs read the saved plan (and their own specifications) instead of

@@ -217,7 +217,8 @@ def _integer_codes(values: np.ndarray) -> tuple[np.ndarray, int] | None:
     if high - low > 4 * len(values) + 1024:
         return None
     if values.dtype.kind == "i":
-        shifted = values.astype(np.int64, copy=False) - low
+        shifted = values.astype(np.int64, copy=False)
+        shifted = shifted - low if low else shifted  # codes already from zero (the usual ids): no copy
     else:  # unsigned: subtract in its own type (never below zero), then count in int64
         shifted = (values - values.dtype.type(low)).astype(np.int64, copy=False)
     present = np.zeros(high - low + 1, dtype=bool)

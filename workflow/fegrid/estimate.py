@@ -375,13 +375,14 @@ class _Design:
         unweighted = self.settings.weights is None
         self.Z = np.empty((n, m), order="F")
         self.raw_norm = np.empty(m)
+        wsum = self.w.sum()
         for j, c in enumerate(self.columns):
             if unweighted:
                 self.Z[:, j] = self.tilde[c]
             else:
                 np.multiply(self.tilde[c], self.sqrt_w, out=self.Z[:, j])
             raw = self.frame[c].to_numpy(dtype=float)
-            centred = raw - np.dot(self.w, raw) / self.w.sum()
+            centred = raw - (raw.mean() if unweighted else np.dot(self.w, raw) / wsum)
             self.raw_norm[j] = np.sqrt(np.dot(self.w * centred, centred)) if not unweighted else np.linalg.norm(centred)
         self.R = tall_r(self.Z)
         self.norm = np.linalg.norm(self.R, axis=0)

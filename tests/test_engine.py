@@ -414,7 +414,7 @@ def test_codes_by_counting_equal_pandas_sorted_factorize() -> None:
     """Source: pandas.factorize(sort=True) on the same columns (the general-purpose reference).
     Integer columns whose range is small are coded by counting, not sorting; the codes must be the
     sorted ones, for signed, unsigned and narrow integers near the ends of their range, text, and
-    combinations of columns."""
+    combinations of columns; nullable integers (missing values coded -1) take pandas' path."""
     rng = np.random.default_rng(20261202)
     for trial in range(60):
         n = int(rng.integers(1, 400))
@@ -425,8 +425,9 @@ def test_codes_by_counting_equal_pandas_sorted_factorize() -> None:
             "narrow": rng.integers(-100, 101, n).astype(np.int8),
             "low_end": np.int64(-2**63) + rng.integers(0, 50, n),
             "high_end": np.uint64(2**64 - 60) + rng.integers(0, 50, n).astype(np.uint64),
+            "nullable": pd.array(np.where(rng.random(n) < 0.1, None, rng.integers(0, 9, n)), dtype="Int64"),
         })
-        for columns in [("small",), ("wide",), ("text",), ("narrow",), ("low_end",), ("high_end",),
+        for columns in [("small",), ("wide",), ("text",), ("narrow",), ("low_end",), ("high_end",), ("nullable",),
                         ("small", "wide"), ("small", "text", "narrow"), ("low_end", "narrow")]:
             codes, n_levels = factorize(frame, columns)
             key = (frame[columns[0]] if len(columns) == 1

@@ -193,7 +193,8 @@ def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, 
     codes = np.zeros(len(frame), dtype=np.int64)
     for col in columns:
         series = frame[col]
-        got = _integer_codes(series.to_numpy()) if series.dtype.kind in "iu" else None
+        plain_integers = isinstance(series.dtype, np.dtype) and series.dtype.kind in "iu"  # not nullable Int64
+        got = _integer_codes(series.to_numpy()) if plain_integers else None
         c, n_levels = got if got is not None else _sorted_factorize(series)
         codes = codes * max(n_levels, 1) + c
     if len(columns) > 1:

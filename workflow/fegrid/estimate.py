@@ -512,7 +512,6 @@ class _Design:
         scale = self.sqrt_w[:, None]
         return self.absorber.demean(columns / scale).values * scale
 
-
     def fit(self, outcome: str, focal: str, controls: tuple[str, ...]) -> FitPieces:
         key = (outcome, focal, controls)
         if key not in self._fits:

@@ -307,6 +307,7 @@ class _Design:
         self._staggered: dict[tuple[object, ...], object] = {}
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
         self._cohorts: Cohorts | None = None
+        self._cohort_counts: dict[str, int] | None = None
         self._column_keys: dict[str, str] = {}
         self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
         self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
@@ -645,8 +646,10 @@ def fit_block(
         Ids of the specifications to evaluate (default: all). The others only shape the designs;
         designs holding none of them are skipped.
     coefficients
-        Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`); the
-        bootstrap draws of the joint tests need the focal estimate only.
+        Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`) and the
+        diagnostics only a ledger row reports (2SLS first stage and Anderson-Rubin set, adoption
+        diagnostics, the event study's multiplier band). The bootstrap draws of the joint tests
+        need the focal estimate, its SE and df only, and pass ``False``.
 
     Returns
     -------
@@ -763,7 +766,7 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
                               all_codes, design.frame, design.settings, terms, keep, design.checks)
     if result.status != STATUS_OK:
         return result, kept
-    if two_stage:
+    if two_stage and keep:  # the first-stage diagnostics are a ledger row's: not needed in the joint tests' draws
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
     elif keep and spec.focal == design.settings.treatment:
@@ -993,8 +996,11 @@ def _design_cohorts(design: _Design) -> Cohorts:
     return cohorts_of(f[s.unit].to_numpy(), f[s.time].to_numpy(), treatment=f[s.treatment].to_numpy(dtype=float))
 
 
-def _with_counts(result: SpecResult, cohorts: Cohorts) -> SpecResult:
-    counts = cohorts.counts()
+def _with_counts(result: SpecResult, design: _Design) -> SpecResult:
+    """``result`` with the design's cohort counts (counted once per design)."""
+    if design._cohort_counts is None:
+        design._cohort_counts = _cohorts(design).counts()
+    counts = design._cohort_counts
     return replace(result, cohorts=counts["cohorts"], never_treated_units=counts["never_treated_units"],
                    not_yet_treated_obs=counts["not_yet_treated_obs"])
 
@@ -1006,7 +1012,7 @@ def _with_adoption_diagnostics(design: _Design, spec: SpecRequest, pieces: FitPi
     controls or weights on a balanced panel, the decomposition of Goodman-Bacon (2021)."""
     s = design.settings
     cohorts = _cohorts(design)
-    result = _with_counts(result, cohorts)
+    result = _with_counts(result, design)
     contribution = pieces.h * design.sqrt_w  # the estimate is sum_i contribution_i y_i
     neg = negative_weights(contribution, cohorts.treated, result.estimate, design.w if s.weights else None)
     result = replace(result, negative_weights=neg.count, negative_weight_sum=neg.total, sign_flip_sd=neg.sign_flip_sd)
@@ -1063,7 +1069,7 @@ def _evaluate_staggered(design: _Design, spec: SpecRequest, keep: bool) -> tuple
     got = design._staggered[key]
     if isinstance(got, SpecResult):  # refused or failed: the same for every covariance choice
         return replace(got, spec_id=spec.spec_id), None
-    base = replace(_with_counts(_base_result(design, spec, []), _cohorts(design)), n_obs=len(design.frame))
+    base = replace(_with_counts(_base_result(design, spec, []), design), n_obs=len(design.frame))
     if isinstance(got, _IndicatorFit):
         return _indicator_result(design, spec, base, got, keep)
     assert isinstance(got, _LinearPieces)
@@ -1096,7 +1102,7 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
     options = spec.estimator.staggered
     assert options is not None
     cohorts = _cohorts(design)
-    base = _with_counts(_base_result(design, spec, []), cohorts)
+    base = _with_counts(_base_result(design, spec, []), design)
 
     def refuse(why: str) -> SpecResult:
         return replace(base, status=STATUS_NOT_IDENTIFIED, message=why)

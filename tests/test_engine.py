@@ -490,3 +490,25 @@ def test_job_processes_ask_the_allocator_to_reuse_freed_memory() -> None:
 
     applied = reuse_freed_memory()
     assert applied == (sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc")
+
+
+def test_a_reweighted_absorber_equals_a_new_one(wage_panel: pd.DataFrame) -> None:
+    """Absorber.reweighted (each IRLS step of Poisson PML) reuses what does not depend on the weights;
+    its demeaned columns and absorbed df are exactly those of a new absorber with the same weights,
+    for a trend term, a redundant term and two terms that take the direct solver (linearmodels'
+    wage_panel)."""
+    df = _unbalanced(wage_panel).assign(t=lambda d: d["year"] - 1980.0, group=lambda d: d["nr"] % 7)
+    x = df[["lwage", "hours", "union"]].to_numpy(dtype=float)
+    rng = np.random.default_rng(11)
+    for terms in [parse_absorb(["nr", "year"]), (TrendTerm("nr"), EffectTerm(("year",))),
+                  parse_absorb(["nr", "group", "year"])]:
+        first = Absorber(df, terms, weights=rng.uniform(0.5, 2.0, len(df)), time="t", tolerance=1e-12)
+        first.demean(x)  # caches the direct solver of the first weights, which the next must not reuse
+        for _ in range(2):
+            w = rng.uniform(0.5, 2.0, len(df))
+            again = first.reweighted(w)
+            fresh = Absorber(df, terms, weights=w, time="t", tolerance=1e-12)
+            got, want = again.demean(x), fresh.demean(x)
+            assert np.array_equal(got.values, want.values) and np.array_equal(got.iterations, want.iterations)
+            assert again.absorbed_df == fresh.absorbed_df
+            first = again

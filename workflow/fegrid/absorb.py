@@ -22,6 +22,7 @@ confirms the tolerance.
 
 from __future__ import annotations
 
+import copy
 import re
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -549,12 +550,24 @@ class Absorber:
             if not redundant:
                 active.append(i)
         self._active = active
+        self._slopes = slopes
+        self._projections = self._project()
+
+    def _project(self) -> list[_Projection]:
         if not self.terms:
-            self._projections = [_Projection(np.zeros(n, dtype=np.int64), 1, self.w, None)]
-        else:
-            self._projections = [
-                _Projection(self._codes[i], self._nlev[i], self.w, slopes[i]) for i in active
-            ]
+            return [_Projection(np.zeros(self.n_obs, dtype=np.int64), 1, self.w, None)]
+        return [_Projection(self._codes[i], self._nlev[i], self.w, self._slopes[i]) for i in self._active]
+
+    def reweighted(self, weights: np.ndarray) -> Absorber:
+        """The same terms on the same rows with other weights (each step of an iteratively reweighted
+        fit): the codes, the redundant terms and the direct solver's connected parts, which do not
+        depend on the weights, are reused; everything else is computed as a new absorber would."""
+        new = copy.copy(self)
+        new.w = np.asarray(weights, dtype=float)
+        for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
+            new.__dict__.pop(weighted, None)
+        new._projections = new._project()
+        return new
 
     @cached_property
     def _direct_setup(self) -> tuple[int, int, int, np.ndarray] | None:

@@ -162,12 +162,13 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
     converged = False
     steps = 0
     xt = x
+    absorber = Absorber(frame, terms, weights=w_user * mu, time=time, tolerance=tolerance,
+                        max_iterations=max_iterations, codes_of=codes_of)
     while steps < max_steps:
         steps += 1
         z = eta + (y - mu) / mu
         omega = w_user * mu
-        absorber = Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
-                            max_iterations=max_iterations, codes_of=codes_of)
+        absorber = absorber.reweighted(omega)
         start = np.column_stack([z, x]) - absorbed
         tilde = absorber.demean(start).values
         absorbed = np.column_stack([z, x]) - tilde
@@ -190,8 +191,6 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
             converged = True
             break
     # the regressors demeaned with the final weights (the scores' and bread's weights)
-    omega = w_user * mu
-    absorber = Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
-                        max_iterations=max_iterations, codes_of=codes_of)
+    absorber = absorber.reweighted(w_user * mu)
     xt = absorber.demean(xt).values if x.shape[1] else xt
     return PoissonFit(beta, mu, xt, absorber, steps, converged, dev_old)

@@ -169,24 +169,3 @@ def test_draws_of_2sls_and_poisson_pml_equal_brute_force_refits_under_the_impose
     assert sorted(tests["curve"].unique()) == ["least_squares", "poisson_pml", "two_stage_least_squares"]
     assert (tests["draws"] == 3).all()
 
-
-def test_draw_mode_fits_skip_only_what_a_ledger_row_reports(wage_panel: pd.DataFrame) -> None:
-    """``fit_block(..., coefficients=False)``, as the draws call it, leaves out the 2SLS first-stage
-    diagnostics (never read by the joint tests) and changes no estimate, SE or df (linearmodels'
-    wage_panel: union instrumented by marriage, worker effects, three covariance kinds)."""
-    from fegrid.absorb import parse_absorb
-    from fegrid.estimate import BlockSettings, Inference, SpecRequest
-    from fegrid.estimators import Estimator
-
-    iv = Estimator("two_stage_least_squares", instruments=("married",))
-    specs = [SpecRequest(f"iv_{kind}", "lwage", "union", ("hours",), Inference(kind, by), estimator=iv)
-             for kind, by in [("clustered", (("nr",),)), ("hc1", ()), ("two_way_clustered", (("nr",), ("year",)))]]
-    settings = BlockSettings(absorb=parse_absorb(["nr"]))
-    full = fit_block(wage_panel, settings, specs)
-    draw = fit_block(wage_panel, settings, specs, coefficients=False)
-    for a, b in zip(full.results, draw.results):
-        assert a.status == b.status == "ok"
-        assert (a.estimate, a.std_error, a.df_inference) == (b.estimate, b.std_error, b.df_inference)
-        assert np.isfinite(a.effective_f) and a.first_stage
-        assert np.isnan(b.effective_f) and not b.first_stage
-    assert full.coefficients and not draw.coefficients

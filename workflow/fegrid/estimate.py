@@ -646,10 +646,8 @@ def fit_block(
         Ids of the specifications to evaluate (default: all). The others only shape the designs;
         designs holding none of them are skipped.
     coefficients
-        Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`) and the
-        diagnostics only a ledger row reports (2SLS first stage and Anderson-Rubin set, adoption
-        diagnostics, the event study's multiplier band). The bootstrap draws of the joint tests
-        need the focal estimate, its SE and df only, and pass ``False``.
+        Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`); the
+        bootstrap draws of the joint tests need the focal estimate only.
 
     Returns
     -------
@@ -766,7 +764,7 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
                               all_codes, design.frame, design.settings, terms, keep, design.checks)
     if result.status != STATUS_OK:
         return result, kept
-    if two_stage and keep:  # the first-stage diagnostics are a ledger row's: not needed in the joint tests' draws
+    if two_stage:
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
     elif keep and spec.focal == design.settings.treatment:

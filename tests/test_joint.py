@@ -168,4 +168,3 @@ def test_draws_of_2sls_and_poisson_pml_equal_brute_force_refits_under_the_impose
     tests = joint_tests(ledger, draws, 0.95)
     assert sorted(tests["curve"].unique()) == ["least_squares", "poisson_pml", "two_stage_least_squares"]
     assert (tests["draws"] == 3).all()
-

@@ -162,13 +162,15 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
     converged = False
     steps = 0
     xt = x
-    absorber = Absorber(frame, terms, weights=w_user * mu, time=time, tolerance=tolerance,
+    omega = w_user * mu
+    absorber = Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
                         max_iterations=max_iterations, codes_of=codes_of)
     while steps < max_steps:
         steps += 1
         z = eta + (y - mu) / mu
-        omega = w_user * mu
-        absorber = absorber.reweighted(omega)
+        if steps > 1:  # the weights of this step's means
+            omega = w_user * mu
+            absorber = absorber.reweighted(omega)
         start = np.column_stack([z, x]) - absorbed
         tilde = absorber.demean(start).values
         absorbed = np.column_stack([z, x]) - tilde

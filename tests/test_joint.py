@@ -8,7 +8,7 @@ import pytest
 
 from fegrid.estimate import fit_block
 from fegrid.grid import load_config, spec_table
-from fegrid.joint import draw_curves, joint_tests, resample_panel
+from fegrid.joint import draw_curves, joint_tests, linearized_draws, resample_panel
 
 
 def _invented_panel(seed: int, effect: float, units: int = 30, periods: int = 5) -> pd.DataFrame:
@@ -43,12 +43,12 @@ def _observed(grid, frame, specs) -> pd.DataFrame:
     return table.merge(pd.DataFrame(rows), on="spec_id")
 
 
-def _joint_p(seed: int, effect: float, draws: int) -> pd.Series:
+def _joint_p(seed: int, effect: float, draws: int, linearized: bool = False) -> pd.Series:
     grid = load_config(MC_GRID)
     specs = grid.expand()
     frame = _invented_panel(seed, effect)
     ledger = _observed(grid, frame, specs)
-    boot = draw_curves(grid, frame, specs, range(draws), seed=seed, column="unit")
+    boot = (linearized_draws if linearized else draw_curves)(grid, frame, specs, range(draws), seed=seed, column="unit")
     tests = joint_tests(ledger, boot, 0.95)
     return tests.set_index("statistic")["p_value"]
 
@@ -71,6 +71,28 @@ def test_joint_tests_uniform_under_the_null_and_small_under_an_effect() -> None:
     for stat in ("median_estimate", "share_significant", "stouffer_z"):
         assert (null[stat] < 0.10).mean() <= 0.20, (stat, (null[stat] < 0.10).mean())
     strong = _joint_p(7, 0.5, 49)
+    assert (strong < 0.05).all(), strong
+
+
+@pytest.mark.slow
+def test_linearized_joint_tests_hold_the_size_of_the_refitted_ones() -> None:
+    """Monte Carlo of the linearized draws (``joint_inference.method: linearized``) against the refitted
+    draws on the same INVENTED panels and the same draws (30 units, 16 specifications: few resampled
+    units, where a first-order expansion is least accurate): 100 seeds, 99 draws each, under the null.
+    Per statistic the two methods' p-values correlate at >= 0.97 and differ by <= 0.04 on average,
+    and their rejection rates at 10% differ by <= 5 points. (In one run of 200 seeds x 199 draws:
+    correlations 0.998 to 0.9998, mean differences 0.0015 to 0.015, and rejection rates at 10% of
+    16.5-17.5% for both methods on the median and Stouffer's Z: with 30 units the bootstrap itself
+    rejects too often, and the linearization inherits that, no more.) With a strong effect every
+    linearized p-value is below 0.05."""
+    seeds = range(100)
+    lin = pd.DataFrame([_joint_p(seed, 0.0, 99, linearized=True) for seed in seeds])
+    fit = pd.DataFrame([_joint_p(seed, 0.0, 99) for seed in seeds])
+    for stat in ("median_estimate", "share_significant", "stouffer_z"):
+        assert np.corrcoef(lin[stat], fit[stat])[0, 1] >= 0.97, stat
+        assert (lin[stat] - fit[stat]).abs().mean() <= 0.04, stat
+        assert abs((lin[stat] < 0.10).mean() - (fit[stat] < 0.10).mean()) <= 0.05, stat
+    strong = _joint_p(7, 0.5, 199, linearized=True)
     assert (strong < 0.05).all(), strong
 
 

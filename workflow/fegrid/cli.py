@@ -113,8 +113,7 @@ def _warn_size(plan, frame, cores: int, costs: Costs | None = None) -> None:
 def _stages(plan) -> list[Stage]:
     """What the progress lines of ``fegrid run`` watch, in the order the stages finish."""
     paths = plan.paths
-    draws = [min(plan.grid.draws_per_job, plan.grid.draws - i * plan.grid.draws_per_job)
-             for i in range(len(plan.joint_paths()))]
+    draws = [len(chunk) for chunk in plan.grid.draw_chunks()]
     figures = plan.figure_paths("pdf") + plan.adoption_figure_paths("pdf")
     tables = [files["md"] for files in plan.table_paths().values()]
     appendix = [paths.file("appendix.tex")] + ([paths.file("appendix.pdf")] if pdflatex() else [])

@@ -49,6 +49,7 @@ from .staggered import (
     interaction_weights,
     negative_weights,
     share_covariance,
+    share_influence,
     wald_p_value,
 )
 from .wild import WildBootstrap, wild_cluster_test
@@ -240,6 +241,9 @@ class BlockFit:
     designs: int = 0
     columns_demeaned: int = 0
     columns_reused: int = 0
+    #: with ``influence=True``: per specification fitted, the positions of its rows in the frame
+    #: passed and the first-order influence of each row on the focal estimate (see :func:`fit_block`)
+    influence: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
 
 
 def _fmt_counts(pairs: dict[str, int]) -> str:
@@ -311,6 +315,8 @@ class _Design:
         self._column_keys: dict[str, str] = {}
         self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
         self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
+        self.positions = np.arange(len(frame))  # the rows' positions in the frame given to fit_block
+        self.influence: dict[str, tuple[np.ndarray, np.ndarray]] | None = None  # see fit_block(influence=True)
 
     def nested_df(self, dims: tuple[tuple[str, ...], ...]) -> int:
         """Absorbed df nested in every cluster dimension (memoised per clustering)."""
@@ -620,6 +626,7 @@ def fit_block(
     data_key: str = "",
     evaluate: Collection[str] | None = None,
     coefficients: bool = True,
+    influence: bool = False,
 ) -> BlockFit:
     """Fit every specification of a block (or those named in ``evaluate``).
 
@@ -648,6 +655,13 @@ def fit_block(
     coefficients
         Keep every coefficient with its covariance matrix (:attr:`BlockFit.coefficients`); the
         bootstrap draws of the joint tests need the focal estimate only.
+    influence
+        Also give, per specification fitted, each row's first-order influence on the focal estimate
+        (:attr:`BlockFit.influence`): ``psi_i`` such that the estimate with frequency weights ``c_i``
+        is ``b + sum_i (c_i - 1) psi_i`` to first order. It is the row's term of every cluster-robust
+        sandwich (``h_i e_i``, with the cohort shares' part for the interaction-weighted estimator,
+        and the influence functions of the imputation and group-time estimators); the linearized
+        joint tests (:func:`fegrid.joint.linearized_draws`) sum it by resampled level.
 
     Returns
     -------
@@ -688,6 +702,8 @@ def fit_block(
                                      {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
         design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
         design.keep_all = coefficients
+        design.positions = positions[keep]
+        design.influence = {} if influence else None
         fit.designs += 1
         cols = sorted({c for i in members for c in (specs[i].outcome, specs[i].focal, *specs[i].controls,
                                                       *specs[i].estimator.columns())})
@@ -709,11 +725,15 @@ def fit_block(
                 results[i], kept = _evaluate(design, specs[i], coefficients)
                 if kept is not None:
                     fit.coefficients[specs[i].spec_id] = kept
+                if design.influence is not None and results[i].status != STATUS_OK:
+                    design.influence.pop(specs[i].spec_id, None)
                 continue
             results[i] = SpecResult(
                 specs[i].spec_id, STATUS_FAILED, f"the column(s) {', '.join(bad)} hold infinite values, or values "
                 "too large to square without overflow (beyond about 1e154), in this sample", n_obs=len(design.frame),
                 n_singletons=design.n_singletons)
+        if design.influence is not None:
+            fit.influence.update(design.influence)
         del design
     fit.results = [r for r in results if r is not None]
     return fit
@@ -764,6 +784,7 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
                               all_codes, design.frame, design.settings, terms, keep, design.checks)
     if result.status != STATUS_OK:
         return result, kept
+    _record_influence(design, spec, None, pieces.h * pieces.e)
     if two_stage:
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
@@ -773,6 +794,14 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
         result = (_without_wild(result) if two_stage else
                   _with_wild(design, spec, pieces, regressors.columns, codes[0], result.n_clusters, result))
     return result, kept
+
+
+def _record_influence(design: _Design, spec: SpecRequest, rows: np.ndarray | None, values: np.ndarray | None) -> None:
+    """Keep a specification's first-order influence on ``rows`` of the design (all when ``None``)
+    when :func:`fit_block` is asked for it."""
+    if design.influence is not None and values is not None:
+        where = design.positions if rows is None else design.positions[rows]
+        design.influence[spec.spec_id] = (where, np.asarray(values, dtype=float))
 
 
 def _without_wild(result: SpecResult) -> SpecResult:
@@ -914,6 +943,8 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     nested = fit.absorber.nested_df(codes) if codes else 0  # type: ignore[attr-defined]
     result, kept = _inference(base, spec, got.pieces, fit.absorber, nested, codes,  # type: ignore[attr-defined]
                               _covariance_codes(spec, codes, cluster_of), sub, design.settings, list(got.names), keep)
+    if result.status == STATUS_OK:
+        _record_influence(design, spec, rows, got.pieces.h * got.pieces.e)
     if spec.inference.bootstrap is not None and result.status == STATUS_OK:
         result = _without_wild(result)
     return result, kept
@@ -1053,6 +1084,8 @@ class _IndicatorFit(NamedTuple):
     # the interaction-weighted estimator: the variance its estimated cohort shares add to the aggregates
     # (their number, and the function of the kept rows' clusters)
     shares: tuple[int, Callable[[np.ndarray], np.ndarray]] | None = None
+    # and the shares' first-order influence of each kept row on the aggregates (rows, aggregates)
+    share_influence: Callable[[], np.ndarray] | None = None
 
 
 def _evaluate_staggered(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
@@ -1076,7 +1109,10 @@ def _evaluate_staggered(design: _Design, spec: SpecRequest, keep: bool) -> tuple
         estimates = got.compute(clusters)
     except ValueError as exc:  # the design or the clusters do not suit the estimator: say why
         return replace(base, status=STATUS_NOT_IDENTIFIED, message=str(exc)), None
-    return _linear_result(base, spec, estimates, label, note, got.pretrend(estimates), s.level, keep)
+    result, kept = _linear_result(base, spec, estimates, label, note, got.pretrend(estimates), s.level, keep)
+    if result.status == STATUS_OK:
+        _record_influence(design, spec, None, estimates.influence)
+    return result, kept
 
 
 class _LinearPieces(NamedTuple):
@@ -1163,7 +1199,7 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
     s = design.settings
     options = spec.estimator.staggered
     assert options is not None
-    shares = None
+    shares = share_args = None
     if spec.estimator.method == EVENT_STUDY:
         rows = np.ones(len(design.frame), dtype=bool)
         x, names = event_indicators(cohorts, options)
@@ -1180,6 +1216,7 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
         combine = np.vstack([agg, np.eye(len(names))])
         reported = [spec.focal, *agg_names[1:], *names]
         shares = (len(agg), lambda clusters, beta: share_covariance(cells, agg, beta[: len(names)], clusters))
+        share_args = (cells, agg, len(names))
     whole = bool(rows.all())
     sub = design.frame if whole else design.frame.loc[rows]
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
@@ -1211,8 +1248,10 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
                        within_r2=1.0 - float(e @ e) / tss if tss > 0 else float("nan"),
                        scores=lambda: np.asfortranarray(xz * e[:, None]), coefficients=beta)
     share_part = None if shares is None else (shares[0], lambda clusters: shares[1](clusters, beta))
+    share_first = None if share_args is None else (
+        lambda: share_influence(share_args[0], share_args[1], beta[: share_args[2]]))
     return _IndicatorFit(rows, sub, absorber, pieces, [*names, *spec.controls], full,
-                         (*reported, *spec.controls), share_part)
+                         (*reported, *spec.controls), share_part, share_first)
 
 
 def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit: _IndicatorFit,
@@ -1249,6 +1288,10 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
     result = replace(result, pretrend_p_value=wald_p_value(values[pre], cov[np.ix_(pre, pre)], kept.df))
     if spec.inference.bootstrap is not None:
         result = _without_wild(result)
+    if design.influence is not None:
+        first = fit.pieces.h * fit.pieces.e
+        _record_influence(design, spec, rows, first if fit.share_influence is None
+                          else first + fit.share_influence()[:, 0])
     return result, (Coefficients(fit.reported, values, cov, kept.df) if keep else None)
 
 

@@ -178,6 +178,7 @@ class Grid:
     seed: int = DEFAULTS["joint_inference.seed"]
     resample: str = ""
     draws_per_job: int = DEFAULTS["joint_inference.draws_per_job"]
+    joint_method: str = DEFAULTS["joint_inference.method"]
     warnings: dict[str, Any] = field(default_factory=dict)
     csv: dict[str, str] = field(default_factory=dict)
     raw: dict[str, Any] = field(repr=False, compare=False, default_factory=dict)
@@ -373,6 +374,12 @@ class Grid:
             warn_min_first_stage_f=float(self.warnings["min_first_stage_f"]),
         )
 
+    def draw_chunks(self) -> list[range]:
+        """The draws of each draw job: ``draws_per_job`` at a time, or every draw in one job when they
+        are linearized (one fit of the grid serves them all)."""
+        size = self.draws if self.joint_method == "linearized" else self.draws_per_job
+        return [range(first, min(first + size, self.draws)) for first in range(0, max(self.draws, 0), max(size, 1))]
+
     def settings_key(self) -> str:
         """What, besides a job's specifications and the data, changes its results."""
         return json.dumps(
@@ -530,6 +537,7 @@ def load_config(source: str | Path | Mapping[str, Any]) -> Grid:
         seed=int(joint["seed"]),
         resample=str(joint.get("resample", panel.unit)),  # the unit: a default that depends on data.unit
         draws_per_job=int(joint["draws_per_job"]),
+        joint_method=str(joint["method"]),
         warnings=dict(warnings),
         csv=dict(data["csv"]),
         raw=raw,

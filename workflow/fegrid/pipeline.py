@@ -13,7 +13,6 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
-import math
 import os
 import pickle
 import time
@@ -159,8 +158,7 @@ class Plan:
                 for kind in ("event", "decomposition")]
 
     def joint_paths(self) -> list[Path]:
-        chunks = math.ceil(self.grid.draws / self.grid.draws_per_job) if self.grid.draws else 0
-        return [self.paths.joint_draws(self.joint_key, i) for i in range(chunks)]
+        return [self.paths.joint_draws(self.joint_key, i) for i in range(len(self.grid.draw_chunks()))]
 
     def fit_paths(self) -> list[Path]:
         return [self.paths.fit(j.key) for j in self.jobs]
@@ -652,7 +650,7 @@ def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:
 
 def joint_key(grid: Grid, snapshot_key: str, specs: Sequence[Spec]) -> str:
     """Key of a grid's bootstrap draws: data, settings, specifications and the draws' settings."""
-    return keys.joint_key(_salt(snapshot_key, grid), [grid.seed, grid.resample, grid.draws_per_job],
+    return keys.joint_key(_salt(snapshot_key, grid), [grid.seed, grid.resample, grid.draws_per_job, grid.joint_method],
                           [s.canonical for s in specs])
 
 
@@ -708,7 +706,7 @@ def summarise(grid: Grid, ledger: str | Path, out_dir: str | Path) -> None:
 
 def draw_null_chunk(grid: Grid, snapshot: str | Path, key: str, chunk: int, out: str | Path) -> dict[str, Any]:
     """Bootstrap draws ``chunk * draws_per_job ...`` of the whole grid (see :mod:`fegrid.joint`)."""
-    from .joint import draw_curves
+    from .joint import LINEARIZED, draw_curves, linearized_draws
 
     started = time.perf_counter()
     snapshot = Path(snapshot)
@@ -716,9 +714,9 @@ def draw_null_chunk(grid: Grid, snapshot: str | Path, key: str, chunk: int, out:
     specs = _specs_of(grid, snapshot, frame)
     if joint_key(grid, snapshot.stem, specs) != key:
         raise FegridError(f"The bootstrap draws {key} are not those of the current grid; run again.")
-    first = chunk * grid.draws_per_job
-    draws = range(first, min(first + grid.draws_per_job, grid.draws))
-    table = draw_curves(grid, frame, specs, draws, seed=grid.seed, column=grid.resample)
+    draws = grid.draw_chunks()[chunk]
+    method = linearized_draws if grid.joint_method == LINEARIZED else draw_curves
+    table = method(grid, frame, specs, draws, seed=grid.seed, column=grid.resample)
     write_parquet(out, table)
     return {"chunk": chunk, "draws": len(draws), "seconds": round(time.perf_counter() - started, 3)}
 
@@ -728,7 +726,7 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     """Joint tests of every outcome x focal pair from the ledger and the bootstrap draws."""
     from tabulate import tabulate
 
-    from .joint import DRAW_COLUMNS, joint_tests
+    from .joint import DRAW_COLUMNS, joint_tests, method_text
 
     led = read_ledger(ledger)
     draws = (pd.concat([pd.read_parquet(f) for f in draw_files], ignore_index=True) if draw_files
@@ -739,7 +737,8 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
                              for p, n in zip(table["p_value"], table["draws"])]
     write_csv(out_csv, table)
     md = ["# Joint tests across the specification curve", "",
-          f"{grid.draws} bootstrap draws under the null (seed {grid.seed}, resampling `{grid.resample}`).", ""]
+          f"{grid.draws} bootstrap draws under the null (seed {grid.seed}, resampling `{grid.resample}`): "
+          f"{method_text(grid.joint_method)}.", ""]
     shown = table.drop(columns=["p_value"]).rename(columns={"p_value_text": "p_value"})
     md.append(tabulate(shown, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g")
               if len(table) else "No joint tests were run.")

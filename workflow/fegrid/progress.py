@@ -176,7 +176,7 @@ def estimate_costs(plan, frame, *, cores: int) -> Costs:
     bootstrap draws does (:func:`fegrid.joint.draw_curves`, reweighting included), and scale each
     method's time by its number of specifications in the grid."""
     from .estimate import fit_block
-    from .joint import draw_curves
+    from .joint import LINEARIZED, draw_curves, linearized_draws
     from .pipeline import ContentKeys
 
     grid = plan.grid
@@ -197,7 +197,13 @@ def estimate_costs(plan, frame, *, cores: int) -> Costs:
             fit_block(content.sample(block[0]), grid.block_settings(block[0]), [s.request() for s in block])
         fit_seconds = time.process_time() - started
         drawn = 0.0
-        if grid.draws:  # one draw, then three: a draw's own cost, and a chunk's set-up (paid once per job)
+        if grid.draws and grid.joint_method == LINEARIZED:  # one fit of the grid and a matrix product
+            started = time.process_time()
+            linearized_draws(grid, frame, [s for b in chosen for s in b], range(grid.draws), seed=grid.seed,
+                             column=grid.resample)
+            drawn = time.process_time() - started
+            draw_cpu += drawn * scale
+        elif grid.draws:  # one draw, then three: a draw's own cost, and a chunk's set-up (paid once per job)
             specs = [s for b in chosen for s in b]
             seconds = []
             for n_draws in (1, 3):
@@ -206,7 +212,7 @@ def estimate_costs(plan, frame, *, cores: int) -> Costs:
                 seconds.append(time.process_time() - started)
             per_draw = max(seconds[1] - seconds[0], 0.0) / 2
             set_up = max(seconds[0] - per_draw, 0.0)
-            chunks = -(-grid.draws // grid.draws_per_job)
+            chunks = len(grid.draw_chunks())
             draw_cpu += (per_draw * grid.draws + set_up * chunks) * scale
             drawn = sum(seconds)
         fit_cpu += fit_seconds * scale

@@ -21,6 +21,7 @@ import pandas as pd
 from tabulate import tabulate
 
 from .grid import Grid
+from .joint import method_text
 from .ledger import DEFAULT_CURVE, DIMENSIONS, PAIR, STATUS_OK, sample_family
 from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
@@ -322,9 +323,9 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
         notes += (
             f"Joint tests (Simonsohn, Simmons \\& Nelson 2020) impose the null in each specification, draw "
             f"{draws} bootstrap samples of whole levels of \\texttt{{{latex_escape(resample)}}} (seed {seed}; the "
-            "same draws for every specification), refit the grid on each draw and report the share of draws "
+            "same draws for every specification) and report the share of draws "
             "whose median estimate, share of significant estimates with the dominant sign, and Stouffer's $Z$ "
-            "are at least as extreme as observed. "
+            f"are at least as extreme as observed; {latex_escape(method_text(grid.joint_method))}. "
         )
     wild = ledger[ledger["wild_draws"] > 0]
     if len(wild):

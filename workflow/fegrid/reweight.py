@@ -44,7 +44,7 @@ from .estimators import LEAST_SQUARES
 from .grid import Grid, Spec
 from .samples import sample_rows
 
-__all__ = ["Draw", "draw_levels", "fast_specs", "ReweightedBlock", "prepare_blocks"]
+__all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "ReweightedBlock", "prepare_blocks"]
 
 #: Most dummy columns of the non-nested absorbed terms a design partials out per draw.
 MAX_DUMMIES = 64
@@ -62,12 +62,17 @@ class Draw(NamedTuple):
     picks: np.ndarray  # the level drawn at each position
 
 
+def draw_picks(n_levels: int, rng: np.random.Generator) -> np.ndarray:
+    """The levels a draw takes, position by position (``n_levels`` draws with replacement)."""
+    return rng.integers(0, n_levels, size=n_levels)
+
+
 def draw_levels(codes: np.ndarray, n_levels: int, rng: np.random.Generator) -> Draw:
     """Draw ``n_levels`` levels with replacement; the stacked rows of their copies, in draw order."""
     order = np.argsort(codes, kind="stable")
     counts = np.bincount(codes, minlength=n_levels)
     starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
-    picks = rng.integers(0, n_levels, size=n_levels)
+    picks = draw_picks(n_levels, rng)
     lengths = counts[picks]
     offsets = np.repeat(starts[picks] - np.concatenate([[0], np.cumsum(lengths)[:-1]]), lengths)
     rows = order[offsets + np.arange(lengths.sum())]

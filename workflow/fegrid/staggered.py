@@ -64,6 +64,7 @@ __all__ = [
     "interaction_cells",
     "interaction_weights",
     "share_covariance",
+    "share_influence",
     "LinearEstimates",
     "imputation",
     "imputation_pieces",
@@ -375,19 +376,27 @@ def interaction_weights(cells: Cells, options: StaggeredOptions) -> tuple[np.nda
     return np.vstack(rows), names
 
 
-def share_covariance(cells: Cells, aggregation: np.ndarray, coefficients: np.ndarray,
-                     clusters: np.ndarray) -> np.ndarray:
-    """The variance the estimated cohort shares add to the interaction-weighted aggregates (Sun &
-    Abraham 2021 count it): aggregate ``a`` averages the cells of its support ``S_a`` weighted by their
-    observations, so its influence through the shares is ``sum_{c in S_a} U_ic (delta_c - theta_a) / M_a``
-    for a unit with ``U_ic`` observations in cell ``c`` (``M_a``: the observations in ``S_a``); summed
-    by cluster, with ``G/(G-1)``. It is uncorrelated with the coefficients' own error (a regression
-    score has mean zero given the cohort), so the two variances add."""
+def share_influence(cells: Cells, aggregation: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
+    """Each observation's first-order influence, through the estimated cohort shares, on the
+    interaction-weighted aggregates (Sun & Abraham 2021 count it), ``(observations, aggregates)``:
+    aggregate ``a`` averages the cells of its support ``S_a`` weighted by their observations, so an
+    observation in cell ``c`` moves it by ``(delta_c - theta_a) / M_a`` (``M_a``: the observations in
+    ``S_a``)."""
     theta = aggregation @ coefficients
     support = aggregation > 0
     total = (support * cells.counts).sum(axis=1)
     spread = support.T * (coefficients[:, None] - theta[None, :]) / np.maximum(total, 1)[None, :]
-    cov, _ = _cluster_covariance(cells.matrix @ spread, np.ones(len(cells.matrix)), clusters)
+    return cells.matrix @ spread
+
+
+def share_covariance(cells: Cells, aggregation: np.ndarray, coefficients: np.ndarray,
+                     clusters: np.ndarray) -> np.ndarray:
+    """The variance the estimated cohort shares add to the interaction-weighted aggregates: the
+    influence of :func:`share_influence` summed by cluster, with ``G/(G-1)``. It is uncorrelated with
+    the coefficients' own error (a regression score has mean zero given the cohort), so the two
+    variances add."""
+    first = share_influence(cells, aggregation, coefficients)
+    cov, _ = _cluster_covariance(first, np.ones(len(first)), clusters)
     return cov
 
 
@@ -406,6 +415,8 @@ class LinearEstimates:
     message: str = ""
     uniform_critical: float = float("nan")
     pretrend_p_value: float = float("nan")
+    #: each observation's first-order influence on the overall estimate (the order of the outcome given)
+    influence: np.ndarray | None = None
 
 
 def _cluster_covariance(v: np.ndarray, e: np.ndarray, clusters: np.ndarray) -> tuple[np.ndarray, int]:
@@ -508,12 +519,13 @@ class ImputationPieces:
     n_obs: int
     message: str
     pretrend: _PretrendPieces | None = None
+    influence: np.ndarray | None = None  # each observation's first-order influence on the overall estimate
 
     def with_clusters(self, clusters: np.ndarray) -> LinearEstimates:
         cov, g = _cluster_covariance(self.v, self.e, clusters)
         pre = self.pretrend.p_value(clusters) if self.pretrend is not None else float("nan")
         return LinearEstimates(self.names, self.estimates, cov, float(g - 1), g, self.n_obs, self.message,
-                               pretrend_p_value=pre)
+                               pretrend_p_value=pre, influence=self.influence)
 
 
 @dataclass(frozen=True)
@@ -601,11 +613,18 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     cell = pd.Series(tau).groupby([design.cohort[rows1], rel]).transform("mean").to_numpy()
     e[rows1] = tau - cell
     estimates = w1.T @ tau
+    # first order: an untreated row moves the imputed counterfactuals (v e), a treated one the average
+    # of the imputed effects (its effect less the estimate, weighted by v); Theorem 3's residuals on
+    # treated rows (less the cohort x period means) are a conservative variance's, not a derivative
+    first = np.zeros(n)
+    first[untreated] = v[untreated, 0] * e[untreated]
+    first[rows1] = w1[:, 0] * (tau - estimates[0])
     message = (f"{left_out} treated observation(s) have effect levels never seen untreated and are left out"
                if left_out else "")
     pretrend = _imputation_pretrend(y0, x0, codes0, sizes, design.relative[untreated], np.flatnonzero(untreated),
                                     options)
-    return ImputationPieces(tuple(names), estimates, v, e, int(untreated.sum() + len(rows1)), message, pretrend)
+    return ImputationPieces(tuple(names), estimates, v, e, int(untreated.sum() + len(rows1)), message, pretrend,
+                            first)
 
 
 def _imputation_pretrend(y0: np.ndarray, x0: np.ndarray, codes0: list[np.ndarray], sizes: list[int],
@@ -635,9 +654,9 @@ def _sums(codes: list[np.ndarray], sizes: list[int], values: np.ndarray) -> np.n
 
 
 def _balanced_units(design: Cohorts, y: np.ndarray,
-                    clusters: np.ndarray) -> tuple[Cohorts, np.ndarray, np.ndarray, int]:
-    """The rows of units observed once in every period of ``design`` (renumbered), and how many units
-    were left out; ``ValueError`` when none is left or a unit has a period twice."""
+                    clusters: np.ndarray) -> tuple[Cohorts, np.ndarray, np.ndarray, int, np.ndarray]:
+    """The rows of units observed once in every period of ``design`` (renumbered), how many units
+    were left out, and which rows are kept; ``ValueError`` when none is left or a unit has a period twice."""
     n_periods = int(design.period.max()) + 1
     if np.unique(design.unit * n_periods + design.period.astype(np.int64)).size != len(y):
         raise ValueError("group-time effects need each unit at most once per period")
@@ -647,10 +666,10 @@ def _balanced_units(design: Cohorts, y: np.ndarray,
     if not full.any():
         raise ValueError("group-time effects need units observed in every period; none is")
     if left_out == 0:
-        return design, y, clusters, 0
+        return design, y, clusters, 0, full
     unit = pd.factorize(design.unit[full], sort=True)[0].astype(np.int64)
     kept = Cohorts(unit, design.period[full], design.cohort[full], design.labels, design.treated[full])
-    return kept, y[full], clusters[full], left_out
+    return kept, y[full], clusters[full], left_out, full
 
 
 def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: StaggeredOptions,
@@ -676,7 +695,8 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
     """
     if covariates is not None:  # carried through the balancing with the outcome
         y = np.column_stack([y, covariates])
-    design, y, clusters, left_out = _balanced_units(design, y, clusters)
+    n_rows = len(y)
+    design, y, clusters, left_out, kept_rows = _balanced_units(design, y, clusters)
     y, covariates = (y[:, 0], y[:, 1:]) if covariates is not None else (y, None)
     u, t = design.unit, design.period.astype(np.int64)
     n_units, n_periods = int(u.max()) + 1, int(t.max()) + 1
@@ -790,6 +810,9 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
                           "estimate": att, "std_error": se_cells})
     message = (f"{left_out} unit(s) not observed in every period are left out (group-time effects use a "
                "balanced panel)" if left_out else "")
+    # each unit's influence on the overall estimate, spread evenly over its rows (one per period)
+    first = np.zeros(n_rows)
+    first[kept_rows] = infl_m[u, 0] / n_periods
     out = LinearEstimates(tuple(names), np.array(est), cov, float(n_cl - 1), n_cl, len(y), message,
-                          uniform_critical=critical)
+                          uniform_critical=critical, influence=first)
     return out, table

@@ -62,6 +62,18 @@ def test_durations_read_plainly() -> None:
     assert [duration(s) for s in (4, 200, 7400)] == ["4 s", "3 min 20 s", "2 h 03 min"]
 
 
+def test_the_estimate_points_to_linearized_draws_only_when_refits_dominate() -> None:
+    from fegrid.progress import Costs
+
+    heavy = Costs(probe_specs=10, probe_seconds=1.0, fit_cpu_seconds=20.0, draws_cpu_seconds=900.0, cores=2,
+                  refitted_draws=True)
+    assert "joint_inference.method: linearized" in heavy.text()
+    for light in (Costs(10, 1.0, 20.0, 100.0, 2, refitted_draws=True),  # under two minutes of draws
+                  Costs(10, 1.0, 200.0, 900.0, 2, refitted_draws=True),  # under ten times the fits
+                  Costs(10, 1.0, 20.0, 900.0, 2, refitted_draws=False)):  # already linearized
+        assert "linearized" not in light.text()
+
+
 def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path, monkeypatch, capsys) -> None:
     from fegrid.cli import main
 

@@ -157,13 +157,23 @@ class Costs:
     fit_cpu_seconds: float
     draws_cpu_seconds: float
     cores: int
+    refitted_draws: bool = False  # joint_inference.method is refit
 
     def text(self) -> str:
         wall = (self.fit_cpu_seconds + self.draws_cpu_seconds) / max(self.cores, 1)
+        hint = ""
+        if self.refitted_draws and self.draws_cpu_seconds > max(DRAWS_HINT_SECONDS, 10 * self.fit_cpu_seconds):
+            hint = ("; linearized draws (joint_inference.method: linearized, a first-order approximation, see the "
+                    "README) would cost about one fit of the grid")
         return (f"estimated cost: fits ~{duration(self.fit_cpu_seconds)} of CPU, bootstrap draws "
                 f"~{duration(self.draws_cpu_seconds)}; about {duration(wall)} on {self.cores} "
                 f"core{'s' if self.cores != 1 else ''} (from {self.probe_specs} specifications fitted and drawn "
-                f"in {self.probe_seconds:.2f} CPU s; start-up and Snakemake's own time not counted)")
+                f"in {self.probe_seconds:.2f} CPU s; start-up and Snakemake's own time not counted){hint}")
+
+
+#: Above this many CPU seconds of refitted draws (and ten times the fits'), the estimate says what the
+#: linearized draws would cost instead.
+DRAWS_HINT_SECONDS = 120.0
 
 
 #: Blocks of each estimation method that :func:`estimate_costs` fits and draws (the smallest, the
@@ -219,4 +229,5 @@ def estimate_costs(plan, frame, *, cores: int) -> Costs:
         probe_seconds += fit_seconds + drawn
         probe_specs += n_chosen
     return Costs(probe_specs=probe_specs, probe_seconds=probe_seconds, fit_cpu_seconds=fit_cpu,
-                 draws_cpu_seconds=draw_cpu, cores=cores)
+                 draws_cpu_seconds=draw_cpu, cores=cores,
+                 refitted_draws=bool(grid.draws) and grid.joint_method != LINEARIZED)

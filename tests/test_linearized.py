@@ -21,9 +21,9 @@ from fegrid.samples import sample_rows
 
 def _wage_grid(wage_panel: pd.DataFrame) -> tuple[object, pd.DataFrame]:
     """Least squares, 2SLS and Poisson PML on linearmodels' wage_panel (an open dataset), clustered
-    by worker: Poisson PML takes hours worked; the 2SLS instruments experience squared with
-    experience (a strong first stage: a linearization is no guide to a weakly identified 2SLS, whose
-    estimate is far from normal)."""
+    by worker; least squares also weighted by hours worked. Poisson PML takes hours worked; the 2SLS
+    instruments experience squared with experience (a strong first stage: a linearization is no
+    guide to a weakly identified 2SLS, whose estimate is far from normal)."""
     frame = wage_panel.reset_index(drop=True)
     raw = {"run_name": "lin", "data": {"path": "unused.csv", "unit": "nr", "time": "year"},
            "outcomes": ["lwage", "hours"], "focal_regressors": ["union", "expersq"],
@@ -31,13 +31,16 @@ def _wage_grid(wage_panel: pd.DataFrame) -> tuple[object, pd.DataFrame]:
            "clustering": {"worker": {"kind": "clustered", "by": "nr"}},
            "samples": {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}}},
            "control_sets": {"combinations_of": ["married"]},
+           "weights": {"unweighted": None, "by_hours": "hours"},
            "estimators": {"ols": {"method": "least_squares"},
                           "iv": {"method": "two_stage_least_squares", "instruments": ["exper"]},
                           "pml": {"method": "poisson_pml"}},
            "exclude": [{"outcome": "hours", "estimator": ["ols", "iv"]}, {"outcome": "lwage", "estimator": "pml"},
                        {"estimator": ["iv", "pml"], "sample": "after_1981"},
                        {"focal": "expersq", "estimator": ["ols", "pml"]}, {"focal": "union", "estimator": "iv"},
-                       {"estimator": "iv", "absorb": "worker_year"}]}
+                       {"estimator": "iv", "absorb": "worker_year"},
+                       {"weights": "by_hours", "estimator": {"not": ["ols"]}},
+                       {"weights": "by_hours", "sample": "after_1981"}]}
     return load_config(raw), frame
 
 
@@ -82,7 +85,8 @@ def _influence_by_unit(grid, frame: pd.DataFrame, unit: str) -> pd.DataFrame:
         where, psi = fit.influence[spec.spec_id]
         by_unit = np.bincount(codes[positions[where]], weights=psi)
         g = int(np.count_nonzero(np.bincount(codes[positions[where]])))
-        rows.append({"method": spec.estimator.method, "absorb": spec.name("absorb"), "se": result.std_error,
+        rows.append({"method": spec.estimator.method, "absorb": spec.name("absorb"), "weights": spec.name("weights"),
+                     "se": result.std_error,
                      "from_influence": float(np.sqrt(by_unit @ by_unit * g / (g - 1)))})
     return pd.DataFrame(rows)
 
@@ -94,6 +98,7 @@ def test_influence_gives_the_clustered_se_of_least_squares_2sls_and_poisson(wage
     grid, frame = _wage_grid(wage_panel)
     got = _influence_by_unit(grid, frame, "nr")
     assert set(got["method"]) == {"least_squares", "two_stage_least_squares", "poisson_pml"}
+    assert got["weights"].eq("by_hours").any()
     ratio = got["se"] / got["from_influence"]
     assert ((ratio >= 1.0 - 1e-9) & (ratio <= 1.001)).all(), got.assign(ratio=ratio)
 

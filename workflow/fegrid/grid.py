@@ -152,6 +152,11 @@ class Job:
     specs: tuple[Spec, ...]
 
 
+#: The values of ``joint_inference.method``: every draw refitted (the default), or linearized
+#: (:func:`fegrid.joint.linearized_draws`).
+REFIT, LINEARIZED = "refit", "linearized"
+
+
 @dataclass(frozen=True)
 class Grid:
     """A checked grid declaration."""
@@ -377,7 +382,7 @@ class Grid:
     def draw_chunks(self) -> list[range]:
         """The draws of each draw job: ``draws_per_job`` at a time, or every draw in one job when they
         are linearized (one fit of the grid serves them all)."""
-        size = self.draws if self.joint_method == "linearized" else self.draws_per_job
+        size = self.draws if self.joint_method == LINEARIZED else self.draws_per_job
         return [range(first, min(first + size, self.draws)) for first in range(0, max(self.draws, 0), max(size, 1))]
 
     def settings_key(self) -> str:

@@ -52,7 +52,7 @@ from scipy.special import ndtri, stdtr
 from .errors import FegridError
 from .estimate import SpecRequest, fit_block
 from .estimators import POISSON
-from .grid import Grid, Spec
+from .grid import LINEARIZED, REFIT, Grid, Spec
 from .ledger import PAIR, STATUS_OK
 from .reweight import Draw, draw_levels, draw_picks, prepare_blocks
 from .samples import SampleDef, apply_sample, sample_rows
@@ -63,10 +63,6 @@ __all__ = ["REFIT", "LINEARIZED", "method_text", "resample_panel", "stack_draw",
            "DRAW_COLUMNS"]
 
 STATISTICS = ("median_estimate", "share_significant", "stouffer_z")
-
-#: The values of ``joint_inference.method``: every draw refitted (the default), or linearized.
-REFIT, LINEARIZED = "refit", "linearized"
-
 
 def method_text(method: str) -> str:
     """How the draws are computed, in a clause for the reports."""

@@ -705,7 +705,7 @@ def summarise(grid: Grid, ledger: str | Path, out_dir: str | Path) -> None:
 
 
 def draw_null_chunk(grid: Grid, snapshot: str | Path, key: str, chunk: int, out: str | Path) -> dict[str, Any]:
-    """Bootstrap draws ``chunk * draws_per_job ...`` of the whole grid (see :mod:`fegrid.joint`)."""
+    """The bootstrap draws of job ``chunk`` (:meth:`Grid.draw_chunks`) of the whole grid (see :mod:`fegrid.joint`)."""
     from .joint import LINEARIZED, draw_curves, linearized_draws
 
     started = time.perf_counter()

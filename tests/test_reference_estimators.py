@@ -316,3 +316,23 @@ def test_the_wild_bootstrap_is_left_to_least_squares_and_says_so(wages) -> None:
                     inference=inference, estimator=estimator, unit="nr", time="year")
         assert r.status == "ok" and math.isnan(r.wild_p_value) and r.wild_draws == 0
         assert "wild cluster bootstrap is computed for least squares only" in r.message
+
+
+@pytest.mark.parametrize("hours_unit", [1.0, 3600.0])
+def test_two_stage_identification_does_not_depend_on_the_units_of_a_control(wage_panel, hours_unit) -> None:
+    """Source: linearmodels IV2SLS(debiased=True) on wage_panel, pooled: marriage instrumented by
+    experience, with experience squared and annual hours (or seconds) of work as controls.
+
+    The first stage's rank check once compared the eigenvalues of ``X'PX`` as they came: their
+    ratio is 1.7e-8 with hours and 1.3e-15 with seconds (the 0/1 regressor beside a column in the
+    millions), below the 1e-10 cut-off, so the same specification was reported not identified in
+    seconds. Scaled to a unit diagonal, its smallest eigenvalue is 0.11 in either unit."""
+    d = wage_panel.assign(hours=wage_panel["hours"] * hours_unit)
+    r = fit_one(d, "lwage", "married", controls=["expersq", "hours"], absorb=parse_absorb([]),
+                inference=Inference("hc1"), estimator=Estimator("two_stage_least_squares", ("exper",)),
+                unit="nr", time="year")
+    assert r.status == "ok", r.message
+    exog = d[["expersq", "hours"]].assign(const=1.0)
+    m = IV2SLS(d["lwage"], exog, d[["married"]], d[["exper"]]).fit(cov_type="robust", debiased=True)
+    assert r.estimate == pytest.approx(m.params["married"], rel=1e-8)
+    assert r.std_error == pytest.approx(m.std_errors["married"], rel=1e-7)

@@ -31,6 +31,11 @@ def _grid(tmp_path: Path, wage_panel: pd.DataFrame):
                       "without_worker_13": {"drop": {"nr": [13]}},  # filters on the unit column itself
                       "worker_13": {"keep": {"nr": [13]}}}  # a draw without worker 13 leaves it empty
     raw["control_sets"] = {"combinations_of": ["expersq", "hours"]}
+    # 2SLS: experience instruments the focal regressor (absorbed with year effects: not identified
+    # there), hours too unless it is a control (then dropped as an instrument)
+    raw["estimators"] = {"ls": {"method": "least_squares"},
+                         "iv": {"method": "two_stage_least_squares", "instruments": ["exper", "hours"]}}
+    raw["exclude"] = [{"estimator": "iv", "sample": ["not_1987", "balanced", "without_worker_13"]}]
     grid = load_config(raw)
     return grid, grid.expand()
 
@@ -87,6 +92,13 @@ def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.Da
     assert (ledger["n_singletons"] > 0).any()
     kinds = {s.inference.kind for s in specs}
     assert {"hc1", "clustered", "two_way_clustered", "homoskedastic"} <= kinds
+    # 2SLS draws took the reweighting too, identified and not (experience absorbed by year effects)
+    iv = ledger["estimator"] == "iv"
+    assert {"ok", "not_identified"} <= set(ledger.loc[iv, "status"])
+    assert ledger.loc[iv, "controls_dropped"].str.contains("hours (instrument, also a control)", regex=False).any()
+    iv_ids = set(ledger.loc[iv & (ledger["status"] == "ok"), "spec_id"])
+    assert iv_ids and iv_ids <= {s.spec_id for b in blocks for s in b.specs}
+    assert fast.loc[fast["spec_id"].isin(iv_ids), "std_error"].notna().mean() > 0.9
     pd.testing.assert_frame_equal(joint_tests(ledger, fast, 0.95), joint_tests(ledger, slow, 0.95))
 
 

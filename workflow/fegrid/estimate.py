@@ -310,6 +310,7 @@ class _Design:
         # one staggered-adoption fit per regression, shared by its covariance choices
         self._staggered: dict[tuple[object, ...], object] = {}
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
+        self.diagnostics = True  # whether 2SLS results get their first-stage diagnostics (not in draws)
         self._cohorts: Cohorts | None = None
         self._cohort_counts: dict[str, int] | None = None
         self._column_keys: dict[str, str] = {}
@@ -481,8 +482,7 @@ class _Design:
             rw, rx = self.R[:, iw], self.R[:, ix]
             swx = rw.T @ rx
             a = swx.T @ np.linalg.solve(rw.T @ rw, swx)
-            eig = np.linalg.eigvalsh((a + a.T) / 2)
-            if eig.min() <= 1e-10 * max(eig.max(), 1e-300):
+            if first_stage_deficient(a):
                 problem = ("the instruments do not move the endogenous regressor(s) once the fixed effects "
                            "and controls are absorbed (rank-deficient first stage)")
             else:
@@ -570,6 +570,27 @@ class _Design:
             units_with_variation=with_variation)
 
 
+#: A 2SLS first stage is rank-deficient when the smallest eigenvalue of ``X'PX``, scaled to a unit
+#: diagonal, is at most this (a condition number of 1e10, whatever the regressors' units).
+FIRST_STAGE_RANK_TOL = 1e-10
+
+
+def first_stage_rank(a: np.ndarray) -> float:
+    """The smallest eigenvalue of ``X'PX`` (``a``) scaled to a unit diagonal, against which
+    :data:`FIRST_STAGE_RANK_TOL` is compared: 0 when a regressor's fitted values vanish. Scaling
+    makes the check independent of the regressors' units (hours or seconds of work, say)."""
+    d = np.sqrt(np.clip(np.diag(a), 0.0, None))
+    if not np.all(d > 0):
+        return 0.0
+    scaled = a / np.outer(d, d)
+    return float(np.linalg.eigvalsh((scaled + scaled.T) / 2).min())
+
+
+def first_stage_deficient(a: np.ndarray) -> bool:
+    """Whether the first stage ``X'PX`` (``a``) is rank-deficient (see :func:`first_stage_rank`)."""
+    return first_stage_rank(a) <= FIRST_STAGE_RANK_TOL
+
+
 def _scores(z: np.ndarray, idx: list[int], e: np.ndarray) -> np.ndarray:
     """``X * e`` for the columns ``idx`` of ``z`` (Fortran order)."""
     out = np.empty((len(e), len(idx)), order="F")
@@ -627,6 +648,7 @@ def fit_block(
     evaluate: Collection[str] | None = None,
     coefficients: bool = True,
     influence: bool = False,
+    diagnostics: bool = True,
 ) -> BlockFit:
     """Fit every specification of a block (or those named in ``evaluate``).
 
@@ -662,6 +684,9 @@ def fit_block(
         sandwich (``h_i e_i``, with the cohort shares' part for the interaction-weighted estimator,
         and the influence functions of the imputation and group-time estimators); the linearized
         joint tests (:func:`fegrid.joint.linearized_draws`) sum it by resampled level.
+    diagnostics
+        Add the first-stage diagnostics and the Anderson-Rubin set to 2SLS results; the joint
+        tests' draws, which read the estimate, SE and df only, leave them out.
 
     Returns
     -------
@@ -702,6 +727,7 @@ def fit_block(
                                      {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
         design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
         design.keep_all = coefficients
+        design.diagnostics = diagnostics
         design.positions = positions[keep]
         design.influence = {} if influence else None
         fit.designs += 1
@@ -785,7 +811,7 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
     if result.status != STATUS_OK:
         return result, kept
     _record_influence(design, spec, None, pieces.h * pieces.e)
-    if two_stage:
+    if two_stage and design.diagnostics:
         assert isinstance(regressors, _IvRegressors)
         result = _with_first_stage(design, spec, regressors, codes, result)
     elif keep and spec.focal == design.settings.treatment:

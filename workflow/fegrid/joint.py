@@ -175,7 +175,7 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                         part[null_outcome] = (part[s.outcome].to_numpy(dtype=float)
                                               * np.exp(-observed[s.spec_id] * part[s.focal].to_numpy(dtype=float)))
                         requests[i] = replace(requests[i], outcome=null_outcome)
-            fit = fit_block(part, grid.block_settings(block[0]), requests, coefficients=False)
+            fit = fit_block(part, grid.block_settings(block[0]), requests, coefficients=False, diagnostics=False)
             rows.extend({"draw": d, "spec_id": r.spec_id, "estimate": r.estimate, "std_error": r.std_error,
                          "df_inference": r.df_inference, "imposed": r.spec_id in observed} for r in fit.results)
     return pd.DataFrame(rows, columns=DRAW_COLUMNS)
@@ -206,7 +206,7 @@ def linearized_draws(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], dra
         if positions is not None and len(positions):
             part = frame.iloc[positions]
             fit = fit_block(part, grid.block_settings(block[0]), [without_wild(s.request()) for s in block],
-                            coefficients=False, influence=True)
+                            coefficients=False, influence=True, diagnostics=False)
         got = {r.spec_id: r for r in fit.results} if fit is not None else {}
         for spec in block:
             ids.append(spec.spec_id)

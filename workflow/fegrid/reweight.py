@@ -1,4 +1,4 @@
-"""Least-squares refits of the joint tests' draws as reweightings of the data, without a copied panel.
+"""Least-squares (and 2SLS) refits of the joint tests' draws as reweightings of the data, without a copied panel.
 
 A draw of :func:`fegrid.joint.draw_levels` takes ``c_l`` copies of every level ``l`` of the
 resampling column; the stacked panel gives each copy its own unit (and resampling-level) labels.
@@ -23,8 +23,12 @@ A draw's sample is the copies of the sample's rows in the data. A block of a dra
 this shortcut could get wrong takes the stacked refit instead (:func:`fegrid.joint.draw_curves` does
 it): a draw without any of the sample's rows; a singleton that the copies make or unmake; an
 identification decision (absorbed or collinear regressor) near its threshold; a nearly constant
-column. Specifications of other methods (2SLS, Poisson PML, staggered adoption) always take the
-stacked path. The results equal the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
+column. Two-stage least squares is refitted the same way, from the same cross products (its
+instruments are more columns of the design), with the engine's identification rules: an instrument
+absorbed by the effects, collinear with the controls or also a control is dropped, too few left or a
+rank-deficient first stage leave the specification not identified in that draw. Specifications of
+the other methods (Poisson PML, staggered adoption) always take the stacked path. The results equal
+the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
 """
 
 from __future__ import annotations
@@ -39,12 +43,15 @@ import pandas as pd
 from .absorb import Absorber, LevelCodes, _nested, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError, FegridError
-from .estimate import BlockSettings, _covariance_codes, _needed
-from .estimators import LEAST_SQUARES
+from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
+from .estimators import LEAST_SQUARES, TWO_STAGE
 from .grid import Grid, Spec
 from .samples import sample_rows
 
-__all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "ReweightedBlock", "prepare_blocks"]
+__all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "REWEIGHTED_METHODS", "ReweightedBlock", "prepare_blocks"]
+
+#: The estimation methods whose draws are refitted as reweightings (the others take the stacked copies).
+REWEIGHTED_METHODS = (LEAST_SQUARES, TWO_STAGE)
 
 #: Most dummy columns of the non-nested absorbed terms a design partials out per draw.
 MAX_DUMMIES = 64
@@ -80,10 +87,26 @@ def draw_levels(codes: np.ndarray, n_levels: int, rng: np.random.Generator) -> D
 
 
 def fast_specs(specs: Sequence[Spec]) -> tuple[list[Spec], list[Spec]]:
-    """The specifications a reweighting can refit (least squares) and the others."""
-    fast = [s for s in specs if s.estimator.method == LEAST_SQUARES and s.estimator.staggered is None]
+    """The specifications a reweighting can refit (least squares and 2SLS) and the others."""
+    fast = [s for s in specs if s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
+
+
+class _Fit(NamedTuple):
+    """One regression of a draw: the kept columns (focal first; empty when the focal regressor is not
+    identified in this draw), ``B``, the coefficients, residuals ``e``, the focal row ``h`` of the
+    estimator's ``B X'`` and the scores' regressors (``X``, or the fitted ``PX`` of 2SLS)."""
+
+    idx: list[int]
+    bread: np.ndarray
+    beta: np.ndarray
+    e: np.ndarray
+    h: np.ndarray
+    regressors: np.ndarray
+
+
+_NOT_IDENTIFIED = _Fit([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
 
 
 class _Unsupported(Exception):
@@ -116,7 +139,7 @@ class _Dim:
 
 
 class _Design:
-    """One complete-case group of a block's least-squares specifications, prepared once."""
+    """One complete-case group of a block's least-squares and 2SLS specifications, prepared once."""
 
     def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
                  settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str]) -> None:
@@ -156,7 +179,7 @@ class _Design:
         self.dims = {d: self._dim(codes(d), self.levels, d) for d in dims}
         self.time = rows[settings.time].to_numpy(dtype=float) if settings.time and settings.time in rows else None
         self.w = rows[settings.weights].to_numpy(dtype=float) if settings.weights else np.ones(len(rows))
-        self.columns = sorted({c for s in specs for c in (s.outcome, s.focal, *s.controls)})
+        self.columns = sorted({c for s in specs for c in (s.outcome, s.focal, *s.controls, *s.estimator.columns())})
         self.pos = {c: j for j, c in enumerate(self.columns)}
         raw = rows[self.columns].to_numpy(dtype=float)
         if not np.all(np.isfinite(raw)) or not np.all(np.isfinite(raw @ np.ones(raw.shape[1]))):
@@ -269,18 +292,22 @@ class _Design:
                             self.settings.absorb, weights=w if self.settings.weights else None,
                             time="t" if self.time is not None else None, codes_of=lambda g: codes[g])
         out = []
-        fits: dict[tuple[str, str, tuple[str, ...]], tuple[list[int], np.ndarray, np.ndarray, np.ndarray] | None] = {}
+        fits: dict[tuple[object, ...], _Fit | None] = {}
         nested: dict[tuple[tuple[str, ...], ...], int] = {}
         for spec in self.specs:
-            key = (spec.outcome, spec.focal, spec.controls)
+            est = spec.estimator
+            key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
             if key not in fits:  # one regression, whatever the covariance choice
-                fits[key] = self._regression(spec, z, gram, norm, raw_norm)
+                fits[key] = (self._two_stage(spec, z, gram, norm, raw_norm) if est.method == TWO_STAGE
+                             else self._regression(spec, z, gram, norm, raw_norm))
                 if fits[key] is None:
                     return None
             by = spec.inference.by
             if by not in nested:
                 nested[by] = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
-            out.append(self._inference(spec, fits[key], z, absorber, nested[by], codes))
+            fit = fits[key]
+            assert fit is not None
+            out.append(self._inference(spec, fit, absorber, nested[by], codes))
         return out
 
     def _demean_drawn(self, draw: Draw, rows: np.ndarray) -> np.ndarray:
@@ -315,12 +342,12 @@ class _Design:
         ratio = np.sqrt(max(r2, 0.0)) / norm[j]
         return None if ratio < 1e-4 else False  # the engine's threshold is 1e-7: only clear cases here
 
-    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
-                    ) -> tuple[list[int], np.ndarray, np.ndarray, np.ndarray] | None:
-        """The kept columns, ``(X'X)^{-1}``, coefficients and residuals of one regression (no columns:
-        the focal regressor is absorbed in this draw); ``None`` when a decision is near its threshold."""
+    def _kept_controls(self, controls: Sequence[str], norm: np.ndarray, raw_norm: np.ndarray,
+                       gram: np.ndarray) -> list[int] | None:
+        """The controls a regression keeps (absorbed and collinear ones dropped, in order), or ``None``
+        when a decision is near its threshold."""
         kept: list[int] = []
-        for c in spec.controls:
+        for c in controls:
             j = self.pos[c]
             absorbed = self._absorbed(j, norm, raw_norm)
             if absorbed is None:
@@ -330,46 +357,104 @@ class _Design:
             if self._collinear(j, kept, gram, norm) is None:
                 return None
             kept.append(j)
-        j = self.pos[spec.focal]
+        return kept
+
+    def _focal_identified(self, j: int, kept: list[int], norm: np.ndarray, raw_norm: np.ndarray,
+                          gram: np.ndarray) -> bool | None:
         absorbed = self._absorbed(j, norm, raw_norm)
-        if absorbed is None:
+        if absorbed is None or (not absorbed and self._collinear(j, kept, gram, norm) is None):
             return None
-        if absorbed:
-            return [], np.empty((0, 0)), np.empty(0), np.empty(0)
-        if self._collinear(j, kept, gram, norm) is None:
+        return not absorbed
+
+    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
+                    ) -> _Fit | None:
+        """Least squares on the draw (not identified: the focal regressor is absorbed in this draw);
+        ``None`` when a decision is near its threshold."""
+        kept = self._kept_controls(spec.controls, norm, raw_norm, gram)
+        if kept is None:
             return None
+        j = self.pos[spec.focal]
+        identified = self._focal_identified(j, kept, norm, raw_norm, gram)
+        if not identified:
+            return None if identified is None else _NOT_IDENTIFIED
         idx = [j, *kept]
         y = self.pos[spec.outcome]
         bread = np.linalg.inv(gram[np.ix_(idx, idx)])
         beta = bread @ gram[idx, y]
-        return idx, bread, beta, z[:, y] - z[:, idx] @ beta
+        x = z[:, idx]
+        return _Fit(idx, bread, beta, z[:, y] - x @ beta, x @ bread[:, 0], x)
 
-    def _inference(self, spec: Spec, fit: tuple[list[int], np.ndarray, np.ndarray, np.ndarray], z: np.ndarray,
-                   absorber: Absorber, nested_df: int, codes: dict[tuple[str, ...], np.ndarray]
-                   ) -> tuple[str, float, float, float]:
+    def _two_stage(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
+                   ) -> _Fit | None:
+        """Two-stage least squares on the draw, with the engine's identification rules
+        (:meth:`fegrid.estimate._Design.iv_regressors`); ``None`` when a decision is near its threshold."""
+        est = spec.estimator
+        exog_names = [c for c in spec.controls if c not in est.endogenous]
+        exog = self._kept_controls(exog_names, norm, raw_norm, gram)
+        if exog is None:
+            return None
+        identified = self._focal_identified(self.pos[spec.focal], exog, norm, raw_norm, gram)
+        if identified is None:
+            return None
+        endog = [self.pos[spec.focal]]
+        for name in est.endogenous:
+            absorbed = self._absorbed(self.pos[name], norm, raw_norm)
+            if absorbed is None:
+                return None
+            identified = identified and not absorbed
+            endog.append(self.pos[name])
+        kept_names = {self.columns[j] for j in exog}
+        excluded: list[int] = []
+        for name in est.instruments:
+            if name in kept_names:
+                continue  # also a control: dropped, whatever the draw
+            j = self.pos[name]
+            absorbed = self._absorbed(j, norm, raw_norm)
+            if absorbed is None:
+                return None
+            if absorbed:
+                continue
+            if self._collinear(j, exog + excluded, gram, norm) is None:
+                return None
+            excluded.append(j)
+        if not identified or len(excluded) < len(endog):
+            return _NOT_IDENTIFIED
+        ix, iw = endog + exog, excluded + exog
+        pi = np.linalg.solve(gram[np.ix_(iw, iw)], gram[np.ix_(iw, ix)])  # X on the instruments
+        a = gram[np.ix_(ix, iw)] @ pi
+        if first_stage_rank(a) <= FIRST_STAGE_RANK_TOL * MARGIN:  # (nearly) rank-deficient first stage
+            return None
+        bread = np.linalg.inv(a)
+        y = self.pos[spec.outcome]
+        beta = bread @ (pi.T @ gram[iw, y])
+        fitted = z[:, iw] @ pi
+        return _Fit(ix, bread, beta, z[:, y] - z[:, ix] @ beta, fitted @ bread[:, 0], fitted)
+
+    def _inference(self, spec: Spec, fit: _Fit, absorber: Absorber, nested_df: int,
+                   codes: dict[tuple[str, ...], np.ndarray]) -> tuple[str, float, float, float]:
         """One covariance choice of a regression, by the engine's covariance kind."""
         nan = float("nan")
-        idx, bread, beta, e = fit
-        if not idx:
+        if not fit.idx:
             return spec.spec_id, nan, nan, nan  # not identified in this draw
-        h = z[:, idx] @ bread[:, 0]
-        pieces = FitPieces(estimate=float(beta[0]), e=e, h=h, rss=float(e @ e), bread=bread, within_r2=nan,
-                           scores=lambda: np.asfortranarray(z[:, idx] * e[:, None]), coefficients=beta)
+        e, regressors = fit.e, fit.regressors
+        pieces = FitPieces(estimate=float(fit.beta[0]), e=e, h=fit.h, rss=float(e @ e), bread=fit.bread,
+                           within_r2=nan, scores=lambda: np.asfortranarray(regressors * e[:, None]),
+                           coefficients=fit.beta)
         by = spec.inference.by
         clusters = _covariance_codes(spec.request(), [codes[d] for d in by], lambda d: codes[d])
         try:
-            cov = covariance_kind(spec.inference.kind)(pieces, n_params=len(idx), absorbed_df=absorber.absorbed_df,
+            cov = covariance_kind(spec.inference.kind)(pieces, n_params=len(fit.idx), absorbed_df=absorber.absorbed_df,
                                                        nested_df=nested_df, clusters=clusters)
         except EstimationError:
-            return spec.spec_id, float(beta[0]), nan, nan
+            return spec.spec_id, float(fit.beta[0]), nan, nan
         se = float(np.sqrt(cov.variance))
-        if not (np.isfinite(beta[0]) and np.isfinite(se)):
+        if not (np.isfinite(fit.beta[0]) and np.isfinite(se)):
             return spec.spec_id, nan, nan, nan
-        return spec.spec_id, float(beta[0]), se, float(cov.df)
+        return spec.spec_id, float(fit.beta[0]), se, float(cov.df)
 
 
 class ReweightedBlock:
-    """The least-squares specifications of one block (sample, absorbed effects, weights), prepared
+    """The least-squares and 2SLS specifications of one block (sample, absorbed effects, weights), prepared
     once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the stacked refit."""
 
     def __init__(self, grid: Grid, frame: pd.DataFrame, specs: list[Spec], levels: np.ndarray, n_levels: int,

@@ -292,6 +292,15 @@ def anderson_rubin(w: np.ndarray, n_excluded: int, y: np.ndarray, x: np.ndarray,
         except np.linalg.LinAlgError:
             return math.inf
 
+    def stats(bs: np.ndarray) -> np.ndarray:
+        """``stat`` at every point of ``bs`` in one batched solve (the same LAPACK call per point)."""
+        d = az[None, :] - bs[:, None] * cz[None, :]
+        mats = v0[None] + bs[:, None, None] * v1[None] + (bs * bs)[:, None, None] * v2[None]
+        try:
+            return np.einsum("pk,pk->p", d, np.linalg.solve(mats, d[:, :, None])[:, :, 0]) / k
+        except np.linalg.LinAlgError:  # a singular point: each on its own, as ``stat`` treats it
+            return np.array([stat(float(b)) for b in bs])
+
     p_value = float(fdtrc(k, df, stat(0.0))) if np.isfinite(df) and df > 0 else float("nan")
     crit = float(fdtri(k, df, level)) if np.isfinite(df) and df > 0 else float("nan")
     if not np.isfinite(crit):
@@ -303,7 +312,7 @@ def anderson_rubin(w: np.ndarray, n_excluded: int, y: np.ndarray, x: np.ndarray,
         qc = float(az[0] ** 2 - crit * v0[0, 0])
         intervals = _quadratic_set(qa, qb, qc)
     else:
-        intervals = _scan_set(lambda b: stat(b) - crit)
+        intervals = _scan_set(lambda b: stat(b) - crit, lambda bs: stats(bs) - crit)
     if not intervals:
         return ArSet(p_value, float("nan"), float("nan"), "empty")
     return ArSet(p_value, intervals[0][0], intervals[-1][1], _describe(intervals))
@@ -324,10 +333,12 @@ def _quadratic_set(qa: float, qb: float, qc: float) -> list[tuple[float, float]]
     return [(r[0], r[1])] if qa > 0 else [(-math.inf, r[0]), (r[1], math.inf)]
 
 
-def _scan_set(g: Callable[[float], float], points: int = 4001) -> list[tuple[float, float]]:
-    """``{b : g(b) <= 0}`` on the whole line, scanned on ``b = tan(t)`` and refined by Brent's method."""
+def _scan_set(g: Callable[[float], float], many: Callable[[np.ndarray], np.ndarray],
+              points: int = 4001) -> list[tuple[float, float]]:
+    """``{b : g(b) <= 0}`` on the whole line, scanned on ``b = tan(t)`` (``many`` evaluates ``g`` at
+    every point at once) and refined by Brent's method."""
     t = np.linspace(-math.pi / 2, math.pi / 2, points)[1:-1]
-    inside = np.array([g(math.tan(v)) <= 0 for v in t])
+    inside = many(np.tan(t)) <= 0
     intervals: list[tuple[float, float]] = []
     start = -math.inf if inside[0] else None
     for i in range(1, len(t)):

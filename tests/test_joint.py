@@ -8,7 +8,7 @@ import pytest
 
 from fegrid.estimate import fit_block
 from fegrid.grid import load_config, spec_table
-from fegrid.joint import draw_curves, joint_tests, linearized_draws, resample_panel
+from fegrid.joint import draw_curves, joint_tests, linearized_draws, resample_panel, shared_cluster_caution
 
 
 def _invented_panel(seed: int, effect: float, units: int = 30, periods: int = 5) -> pd.DataFrame:
@@ -94,6 +94,26 @@ def test_linearized_joint_tests_hold_the_size_of_the_refitted_ones() -> None:
         assert abs((lin[stat] < 0.10).mean() - (fit[stat] < 0.10).mean()) <= 0.05, stat
     strong = _joint_p(7, 0.5, 199, linearized=True)
     assert (strong < 0.05).all(), strong
+
+
+def test_the_caution_names_the_clusterings_whose_draws_widen_their_standard_errors() -> None:
+    """Invented panel (30 units in 6 regions): refitted draws resampling units keep a drawn unit's
+    copies in one region cluster, and the draws' region-clustered SEs come out wider than the data's,
+    while unit-clustered ones do not; the caution names the region choice only, and is silent when
+    the regions are resampled or the draws are linearized."""
+    raw = {**MC_GRID, "clustering": {**MC_GRID["clustering"], "region": {"kind": "clustered", "by": "region"}}}
+    grid = load_config(raw)
+    specs = grid.expand()
+    frame = _invented_panel(4, 0.0).assign(region=lambda d: d["unit"] % 6)
+    ledger = _observed(grid, frame, specs).set_index("spec_id")
+    boot = draw_curves(grid, frame, specs, range(30), seed=4, column="unit")
+    ratio = (boot["std_error"] / boot["spec_id"].map(ledger["std_error"])).groupby(
+        boot["spec_id"].map(ledger["clustering"])).mean()
+    assert ratio["region"] > 1.15 and 0.85 < ratio["unit"] < 1.1, ratio
+    caution = shared_cluster_caution(grid, specs)
+    assert "region (by region)" in caution and "unit (by" not in caution and "robust" not in caution
+    assert shared_cluster_caution(load_config({**raw, "joint_inference": {"resample": "region"}}), specs) == ""
+    assert shared_cluster_caution(load_config({**raw, "joint_inference": {"method": "linearized"}}), specs) == ""
 
 
 def test_draws_do_not_depend_on_chunking_and_units_stay_separate() -> None:

@@ -85,7 +85,16 @@ def test_plan_prints_an_estimate_and_warns_above_the_size_set(tiny_project: Path
                                                           "jobs: {specs_per_job: 4, warn_above: 10}")
     (tiny_project / "grid.yaml").write_text(text)
     assert main(["plan", "--config", "grid.yaml"]) == 0
-    assert "warning: 32 specifications, more than jobs.warn_above (10)" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "warning: 32 specifications, more than jobs.warn_above (10)" in err and "caution" not in err
+    # two-way clustering's year side keeps a drawn firm's copies in one cluster: plan and check say so
+    text = text.replace("  firm: {kind: clustered, by: firm}",
+                        "  firm: {kind: clustered, by: firm}\n  firm_year: {kind: two_way_clustered, by: [firm, year]}")
+    (tiny_project / "grid.yaml").write_text(text)
+    for command in ("plan", "check"):
+        assert main([command, "--config", "grid.yaml"]) == 0
+        assert "these clustering choices keep the copies of a drawn 'firm' in one cluster: firm_year (by year)" in (
+            capsys.readouterr().err), command
 
 
 def _draws_watched(tmp_path: Path, now: list[float]) -> tuple[list[Path], list[Path], io.StringIO, RunMonitor]:

@@ -24,6 +24,7 @@ from tabulate import tabulate
 from . import __version__
 from .defaults import DEFAULTS
 from .errors import FegridDeprecationWarning, FegridError
+from .joint import shared_cluster_caution
 from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
@@ -75,6 +76,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     if left_out:
         print(f"left out of the grid ({len(left_out)}): " + "; ".join(left_out))
     print(f"{len(plan.specs)} specifications in {len(plan.jobs)} {_plural(len(plan.jobs), 'job')}.")
+    _caution_shared_clusters(plan)
     return 0
 
 
@@ -92,6 +94,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     costs = estimate_costs(plan, frame, cores=os.cpu_count() or 1)
     print(costs.text())
     _warn_size(plan, frame, costs.cores, costs)
+    _caution_shared_clusters(plan)
     print("outputs (names for replication.exhibits): " + ", ".join(plan.report_outputs(build_pdf=True)))
     if args.list:
         done = fitted_specs(plan, frame)
@@ -99,6 +102,13 @@ def _cmd_plan(args: argparse.Namespace) -> int:
                  *(n for _, n in s.names)) for s in plan.specs]
         print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
     return 0
+
+
+def _caution_shared_clusters(plan) -> None:
+    """Print :func:`fegrid.joint.shared_cluster_caution` when it applies to the grid."""
+    caution = shared_cluster_caution(plan.grid, plan.specs)
+    if caution:
+        print(caution, file=sys.stderr)
 
 
 def _warn_size(plan, frame, cores: int, costs: Costs | None = None) -> None:
@@ -162,6 +172,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     frame = load_checked(plan.grid)
     st = plan_status(plan, frame)
     _warn_size(plan, frame, args.cores)
+    _caution_shared_clusters(plan)
     print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
           f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
           f"{_plural(st.jobs, 'job')} to run.",

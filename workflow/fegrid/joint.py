@@ -57,7 +57,8 @@ from .ledger import PAIR, STATUS_OK
 from .reweight import Draw, draw_levels, draw_picks, prepare_blocks
 from .samples import SampleDef, apply_sample, sample_rows
 
-__all__ = ["REFIT", "LINEARIZED", "method_text", "resample_panel", "stack_draw", "without_wild", "draw_curves",
+__all__ = ["REFIT", "LINEARIZED", "method_text", "shared_cluster_caution", "resample_panel", "stack_draw",
+           "without_wild", "draw_curves",
            "linearized_draws", "curve_statistics", "joint_tests",
            "STATISTICS",
            "DRAW_COLUMNS"]
@@ -71,6 +72,35 @@ def method_text(method: str) -> str:
                 "estimate by the draw's copies of every level times that level's first-order influence on it "
                 "(Efron 1982), and its standard error as the copies scale the influences' sum of squares")
     return "the whole grid is refitted on every draw"
+
+
+def shared_cluster_caution(grid: Grid, specs: Sequence[Spec]) -> str:
+    """A caution when refitted draws put the copies of a drawn level in one cluster ("" otherwise).
+
+    A stacked draw gives each copy its own labels of the unit and the resampling column only, so a
+    cluster variable that holds neither (a region above the units, the period side of two-way
+    clustering) keeps a drawn level's copies in one cluster, as if they were perfectly correlated
+    members of it: the draws' SEs of those specifications grow (about 1.25 times on the demo) and
+    the joint tests' p-values of the share significant and of Stouffer's Z come out too small.
+    """
+    if grid.draws <= 0 or grid.joint_method != REFIT:
+        return ""
+    copied = {grid.panel.unit, grid.resample}
+    shared: dict[str, set[str]] = {}
+    for spec in specs:
+        for dim in spec.inference.by:
+            if not copied.intersection(dim):
+                shared.setdefault(spec.name("clustering"), set()).add(" x ".join(dim))
+    if not shared:
+        return ""
+    which = "; ".join(f"{name} (by {', '.join(sorted(dims))})" for name, dims in sorted(shared.items()))
+    return (f"caution: the joint tests' refitted draws resample '{grid.resample}' (joint_inference.resample), "
+            f"and these clustering choices keep the copies of a drawn '{grid.resample}' in one cluster: {which}. "
+            "A draw then counts the copies as perfectly correlated members of that cluster, so their "
+            "specifications' draws get wider standard errors than the data's and the joint tests' p-values of "
+            "the share significant and of Stouffer's Z come out too small. Resample the coarsest cluster "
+            "variable (joint_inference.resample), or use joint_inference.method: linearized, or read those "
+            "p-values with care (README, 'Clusters coarser than the resampled units').")
 
 
 def resample_panel(frame: pd.DataFrame, column: str, unit: str, rng: np.random.Generator) -> pd.DataFrame:

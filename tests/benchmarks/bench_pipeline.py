@@ -7,7 +7,9 @@ regressors x 5 absorbed-effect choices x 5 covariance choices x 10 samples x 10 
 Printed, from one cold run of ``fegrid run -c CORES``: wall time; time inside fegrid's fit step
 (the jobs' own clocks); the jobs' wall time as Snakemake measured it (Python start-up included);
 the share of wall time in which no job ran, from the jobs' benchmark files (Snakemake's own
-work: parsing, DAG, scheduling, and fegrid's checks before it starts); the share of the fit jobs'
+work: parsing, DAG, scheduling, and fegrid's checks before it starts), and the same without the
+time Snakemake spends importing its SLURM executor plugin (measured apart; see
+:func:`slurm_plugin_seconds`); the share of the fit jobs'
 time spent outside the fit step (Python start-up, imports, reading the snapshot); peak memory of
 any process.
 
@@ -17,6 +19,7 @@ any process.
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import json
 import resource
 import subprocess
@@ -67,6 +70,22 @@ def busy_seconds(benchmarks: list[Path]) -> float:
         total += b - max(a, end)
         end = b
     return total
+
+
+def slurm_plugin_seconds() -> float:
+    """Wall seconds to import Snakemake's SLURM executor plugin in a fresh interpreter (0 when it is not
+    installed), less a bare interpreter's start. Snakemake imports every installed executor plugin at
+    start, even for a local run, and this one runs ``scontrol show config`` when imported: about 10 s
+    where SLURM's client is configured and no controller answers (this machine, between SLURM tests)."""
+    def timed(code: str) -> float:
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", code], capture_output=True)
+        return time.perf_counter() - start
+
+    if importlib.util.find_spec("snakemake_executor_plugin_slurm") is None:
+        return 0.0
+    return max(timed("import snakemake_executor_plugin_slurm") - timed("import snakemake_interface_executor_plugins"),
+               0.0)
 
 
 def config(data: Path) -> dict:
@@ -125,6 +144,8 @@ def main() -> None:
     job_seconds = sum(b["seconds"] for b in bench.values())
     busy = busy_seconds(sorted((run / "benchmarks").glob("*/*.tsv")))
     peak_children_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    probe = slurm_plugin_seconds()
+    idle = max(wall - busy, 0)
     report = {
         "rows": args.rows,
         "specifications": len(ledger),
@@ -137,7 +158,9 @@ def main() -> None:
         "per_rule": {k: {"jobs": v["jobs"], "seconds": round(v["seconds"], 1), "max_rss_mb": round(v["max_rss_mb"])}
                      for k, v in sorted(bench.items())},
         "seconds_with_a_job_running": round(busy, 1),
-        "share_of_wall_with_no_job_running": round(max(wall - busy, 0) / wall, 3),
+        "share_of_wall_with_no_job_running": round(idle / wall, 3),
+        "slurm_plugin_import_seconds": round(probe, 1),
+        "share_of_wall_with_no_job_running_less_the_slurm_plugin": round(max(idle - probe, 0) / (wall - probe), 3),
         "share_of_job_time_outside_the_fit_step": round(
             1 - fit_inside / max(bench.get("fit_job", {}).get("seconds", fit_inside), 1e-9), 3),
         "peak_memory_mb_any_process": round(peak_children_mb),

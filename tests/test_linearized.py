@@ -165,3 +165,27 @@ def test_linearized_draws_are_one_job_and_their_own_key(tiny_project: Path, monk
     (tiny_project / "grid.yaml").write_text(text.replace("seed: 7}", "seed: 7, method: linear}"))
     with pytest.raises(ConfigError, match="joint_inference.method"):
         make_plan("grid.yaml")
+
+
+def test_fits_without_diagnostics_keep_every_number_the_draws_read(wage_panel) -> None:
+    """The joint tests' draws fit without diagnostics (``fit_block(..., diagnostics=False)``): the
+    estimate, SE and df equal a full fit's bit for bit, while the 2SLS first stage and Anderson-Rubin
+    set (wage_panel) and the imputation estimator's test of parallel trends (the invented staggered
+    panel) are left out."""
+    for grid, frame in (_wage_grid(wage_panel), _staggered_grid()):
+        for spec in grid.expand():
+            if spec.estimator.method not in ("two_stage_least_squares", "imputation"):
+                continue
+            part = frame.iloc[sample_rows(frame, spec.sample, grid.panel)]
+            request = [without_wild(spec.request())]
+            full = fit_block(part, grid.block_settings(spec), request, coefficients=False).results[0]
+            lean = fit_block(part, grid.block_settings(spec), request, coefficients=False,
+                             diagnostics=False).results[0]
+            assert full.status == lean.status == "ok", full.message
+            assert (lean.estimate, lean.std_error, lean.df_inference) == (full.estimate, full.std_error,
+                                                                          full.df_inference)
+            if spec.estimator.method == "imputation":
+                assert np.isfinite(full.pretrend_p_value) and np.isnan(lean.pretrend_p_value)
+            else:
+                assert full.first_stage and np.isfinite(full.ar_p_value) and np.isfinite(full.effective_f)
+                assert not lean.first_stage and np.isnan(lean.ar_p_value) and np.isnan(lean.effective_f)

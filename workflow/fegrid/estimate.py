@@ -310,7 +310,7 @@ class _Design:
         # one staggered-adoption fit per regression, shared by its covariance choices
         self._staggered: dict[tuple[object, ...], object] = {}
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
-        self.diagnostics = True  # whether 2SLS results get their first-stage diagnostics (not in draws)
+        self.diagnostics = True  # 2SLS first-stage diagnostics, the imputation pretrend test (not in draws)
         self._cohorts: Cohorts | None = None
         self._cohort_counts: dict[str, int] | None = None
         self._column_keys: dict[str, str] = {}
@@ -685,8 +685,9 @@ def fit_block(
         and the influence functions of the imputation and group-time estimators); the linearized
         joint tests (:func:`fegrid.joint.linearized_draws`) sum it by resampled level.
     diagnostics
-        Add the first-stage diagnostics and the Anderson-Rubin set to 2SLS results; the joint
-        tests' draws, which read the estimate, SE and df only, leave them out.
+        Add the first-stage diagnostics and the Anderson-Rubin set to 2SLS results, and the
+        imputation estimator's test of parallel trends; the joint tests' draws, which read the
+        estimate, SE and df only, leave them out.
 
     Returns
     -------
@@ -1180,7 +1181,7 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
         codes = [design.codes_of(t.columns) for t in s.absorb]  # type: ignore[union-attr]
         x = design.frame[list(spec.controls)].to_numpy(dtype=float) if spec.controls else np.zeros((len(y), 0))
         try:
-            pieces = imputation_pieces(y, cohorts, codes, x, options)
+            pieces = imputation_pieces(y, cohorts, codes, x, options, pretrend=design.diagnostics)
         except ValueError as exc:
             return refuse(str(exc))
         return _LinearPieces(pieces.with_clusters)

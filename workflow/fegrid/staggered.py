@@ -555,7 +555,7 @@ def imputation(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndarray], c
 
 
 def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndarray], controls: np.ndarray,
-                      options: StaggeredOptions) -> ImputationPieces:
+                      options: StaggeredOptions, *, pretrend: bool = True) -> ImputationPieces:
     """Borusyak, Jaravel & Spiess (2024): the average effect on the treated observations (and on those of
     each relative period of the window, not binned) from counterfactuals imputed with the absorbed
     effects and controls fitted on the untreated observations only.
@@ -565,6 +565,7 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     ``sum_i v_i y_i`` with ``v`` the treated observations' averaging weights and, on untreated
     observations, ``-Z_0 (Z_0'Z_0)^- Z_1' v_1``; residuals are the untreated fit's on untreated
     observations and the imputed effect less its cohort x relative-period mean on treated ones.
+    ``pretrend``: also prepare their test of parallel trends (the joint tests' draws leave it out).
     """
     treated = design.treated
     untreated = ~treated
@@ -621,10 +622,9 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     first[rows1] = w1[:, 0] * (tau - estimates[0])
     message = (f"{left_out} treated observation(s) have effect levels never seen untreated and are left out"
                if left_out else "")
-    pretrend = _imputation_pretrend(y0, x0, codes0, sizes, design.relative[untreated], np.flatnonzero(untreated),
-                                    options)
-    return ImputationPieces(tuple(names), estimates, v, e, int(untreated.sum() + len(rows1)), message, pretrend,
-                            first)
+    test = (_imputation_pretrend(y0, x0, codes0, sizes, design.relative[untreated], np.flatnonzero(untreated),
+                                 options) if pretrend else None)
+    return ImputationPieces(tuple(names), estimates, v, e, int(untreated.sum() + len(rows1)), message, test, first)
 
 
 def _imputation_pretrend(y0: np.ndarray, x0: np.ndarray, codes0: list[np.ndarray], sizes: list[int],

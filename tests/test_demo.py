@@ -80,6 +80,11 @@ def test_demo_end_to_end(tmp_path: Path, fegrid_env) -> None:
 
     joint = pd.read_csv(run / "joint_tests.csv")
     assert (joint["draws"] == 500).all()
+    # resampling orchards, the valley and orchard x season clusterings keep a drawn orchard's copies together:
+    # the joint tests' report and the appendix say so
+    caution = "orchard_season (by season); valley (by valley); valley_wild (by valley)"
+    assert caution in (run / "joint_tests.md").read_text()
+    assert caution.replace("_", "\\_") in (run / "appendix.tex").read_text()
     assert sorted(joint["curve"].unique()) == ["event_study", "group_time", "imputation", "interaction_weighted",
                                                "least_squares", "poisson_pml", "two_stage_least_squares"]
     for name in ("manifest.json", "REPLICATION.md", "summary.tex", "appendix.tex", "environment-lock.txt",

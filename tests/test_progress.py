@@ -139,6 +139,23 @@ def test_draw_jobs_side_by_side_share_the_pace(tmp_path: Path) -> None:
     assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 50 of 250 draws, about 20 s left"
 
 
+def test_draw_jobs_that_end_together_do_not_read_no_time_left(tmp_path: Path) -> None:
+    """Two draw jobs start together and end a tenth of a second apart (10 s each): three chunks are
+    left, about 15 s at the pace of two jobs per 10 s (the demo once read "100 of 500 draws, about
+    0 s left", from the tenth of a second between the two files)."""
+    now = [1000.0]
+    draws, logs, out, monitor = _draws_watched(tmp_path, now)
+    now[0] = 1041.0
+    _touch(logs[0], 1040.5)
+    _touch(logs[1], 1040.5)
+    monitor.update()
+    now[0] = 1051.0
+    _touch(draws[0], 1050.5)
+    _touch(draws[1], 1050.6)
+    monitor.update()
+    assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 100 of 250 draws, about 15 s left"
+
+
 def test_a_report_stage_with_few_files_gives_no_time_left(tmp_path: Path) -> None:
     """The appendix's .tex, then its .pdf: one file written says nothing about the time left."""
     now = [100.0]

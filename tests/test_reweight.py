@@ -1,4 +1,4 @@
-"""The joint tests' least-squares draws as reweightings equal the stacked refits they replace.
+"""The joint tests' least-squares and 2SLS draws as reweightings equal the stacked refits they replace.
 
 Data: linearmodels' wage_panel (an open dataset; see conftest.py), on the grid of tests/helpers.py
 with weights, singletons and a sample that a draw can empty. The reference is the second, older
@@ -55,7 +55,7 @@ def _ledger(grid, frame, specs) -> pd.DataFrame:
 
 
 def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
-    """Estimates, SEs and df of every least-squares draw equal the stacked refits' (estimates and SEs
+    """Estimates, SEs and df of every least-squares and 2SLS draw equal the stacked refits' (estimates and SEs
     to 1e-9 relative: the stacked path demeans by alternating projections where the effects have
     three terms; df exactly), including each copy counted as its own cluster and its own effects,
     the two-way and homoskedastic kinds, weights, singletons and the draws that empty a sample;

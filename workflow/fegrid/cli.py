@@ -106,9 +106,9 @@ def _cmd_plan(args: argparse.Namespace) -> int:
 
 def _caution_shared_clusters(plan) -> None:
     """Print :func:`fegrid.joint.shared_cluster_caution` when it applies to the grid."""
-    caution = shared_cluster_caution(plan.grid, plan.specs)
+    caution = shared_cluster_caution(plan.grid, (s.name("clustering") for s in plan.specs))
     if caution:
-        print(caution, file=sys.stderr)
+        print(f"caution: {caution}", file=sys.stderr)
 
 
 def _warn_size(plan, frame, cores: int, costs: Costs | None = None) -> None:

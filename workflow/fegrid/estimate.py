@@ -812,9 +812,10 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
     if result.status != STATUS_OK:
         return result, kept
     _record_influence(design, spec, None, pieces.h * pieces.e)
-    if two_stage and design.diagnostics:
+    if two_stage:
         assert isinstance(regressors, _IvRegressors)
-        result = _with_first_stage(design, spec, regressors, codes, result)
+        if design.diagnostics:
+            result = _with_first_stage(design, spec, regressors, codes, result)
     elif keep and spec.focal == design.settings.treatment:
         result = _with_adoption_diagnostics(design, spec, pieces, result)
     if spec.inference.bootstrap is not None and result.std_error > 0:

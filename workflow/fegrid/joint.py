@@ -41,7 +41,7 @@ is far from normal, such as a weakly identified 2SLS.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import replace
 from typing import Any
 
@@ -74,8 +74,9 @@ def method_text(method: str) -> str:
     return "the whole grid is refitted on every draw"
 
 
-def shared_cluster_caution(grid: Grid, specs: Sequence[Spec]) -> str:
-    """A caution when refitted draws put the copies of a drawn level in one cluster ("" otherwise).
+def shared_cluster_caution(grid: Grid, clusterings: Iterable[str]) -> str:
+    """A caution when refitted draws put the copies of a drawn level in one cluster ("" otherwise), for
+    the clustering choices named in ``clusterings`` (those of the grid's specifications).
 
     A stacked draw gives each copy its own labels of the unit and the resampling column only, so a
     cluster variable that holds neither (a region above the units, the period side of two-way
@@ -86,21 +87,18 @@ def shared_cluster_caution(grid: Grid, specs: Sequence[Spec]) -> str:
     if grid.draws <= 0 or grid.joint_method != REFIT:
         return ""
     copied = {grid.panel.unit, grid.resample}
-    shared: dict[str, set[str]] = {}
-    for spec in specs:
-        for dim in spec.inference.by:
-            if not copied.intersection(dim):
-                shared.setdefault(spec.name("clustering"), set()).add(" x ".join(dim))
-    if not shared:
+    shared = {name: sorted(" x ".join(dim) for dim in grid.clustering[name].by if not copied.intersection(dim))
+              for name in sorted(set(clusterings)) if name in grid.clustering}
+    which = "; ".join(f"{name} (by {', '.join(dims)})" for name, dims in shared.items() if dims)
+    if not which:
         return ""
-    which = "; ".join(f"{name} (by {', '.join(sorted(dims))})" for name, dims in sorted(shared.items()))
-    return (f"caution: the joint tests' refitted draws resample '{grid.resample}' (joint_inference.resample), "
-            f"and these clustering choices keep the copies of a drawn '{grid.resample}' in one cluster: {which}. "
-            "A draw then counts the copies as perfectly correlated members of that cluster, so their "
-            "specifications' draws get wider standard errors than the data's and the joint tests' p-values of "
-            "the share significant and of Stouffer's Z come out too small. Resample the coarsest cluster "
-            "variable (joint_inference.resample), or use joint_inference.method: linearized, or read those "
-            "p-values with care (README, 'Clusters coarser than the resampled units').")
+    return (f"The joint tests' refitted draws resample '{grid.resample}' (joint_inference.resample), and these "
+            f"clustering choices keep the copies of a drawn '{grid.resample}' in one cluster: {which}. A draw then "
+            "counts the copies as perfectly correlated members of that cluster, so their specifications' draws get "
+            "wider standard errors than the data's and the joint tests' p-values of the share significant and of "
+            "Stouffer's Z come out too small. Resample the coarsest cluster variable (joint_inference.resample), or "
+            "use joint_inference.method: linearized, or read those p-values with care (README, 'Clusters coarser "
+            "than the resampled units').")
 
 
 def resample_panel(frame: pd.DataFrame, column: str, unit: str, rng: np.random.Generator) -> pd.DataFrame:

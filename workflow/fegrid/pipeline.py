@@ -726,7 +726,7 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     """Joint tests of every outcome x focal pair from the ledger and the bootstrap draws."""
     from tabulate import tabulate
 
-    from .joint import DRAW_COLUMNS, joint_tests, method_text
+    from .joint import DRAW_COLUMNS, joint_tests, method_text, shared_cluster_caution
 
     led = read_ledger(ledger)
     draws = (pd.concat([pd.read_parquet(f) for f in draw_files], ignore_index=True) if draw_files
@@ -739,6 +739,9 @@ def test_curve(grid: Grid, ledger: str | Path, draw_files: Sequence[str | Path],
     md = ["# Joint tests across the specification curve", "",
           f"{grid.draws} bootstrap draws under the null (seed {grid.seed}, resampling `{grid.resample}`): "
           f"{method_text(grid.joint_method)}.", ""]
+    caution = shared_cluster_caution(grid, led["clustering"].astype(str))
+    if caution and draw_files:
+        md += [f"**Caution.** {caution}", ""]
     shown = table.drop(columns=["p_value"]).rename(columns={"p_value_text": "p_value"})
     md.append(tabulate(shown, headers="keys", tablefmt="github", showindex=False, floatfmt=".4g")
               if len(table) else "No joint tests were run.")

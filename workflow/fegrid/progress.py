@@ -104,14 +104,18 @@ class RunMonitor:
                 unit = stage.unit[:-1] if units_total == 1 and stage.unit.endswith("s") else stage.unit
                 self._print(stage.name, f"{stage.name}: done ({units_total} {unit}){note}", final=True)
                 continue
-            # the pace of this stage alone: between its first and its latest file once two exist (the
-            # stages before it do not count), from the run's start while only one does
+            # the pace of this stage alone (the stages before it do not count): for jobs with logs to
+            # watch, the time since their first job started over the jobs done, or over the jobs seen
+            # running side by side while fewer are done; otherwise between the first and the latest
+            # file once two exist (jobs that run side by side end close together, so the gap between
+            # their files says nothing: two draw jobs ending in the same second once read "0 s left")
             times = sorted(stage.files[i].stat().st_mtime for i in written)
-            if len(times) > 1 and times[-1] > times[0]:
-                pace: float | None = (times[-1] - times[0]) / (len(times) - 1)
-            elif stage.fresh_only:  # content-named jobs (fits, draws): from their first job's start (or the
-                # run's, without logs to watch), shared by the jobs running side by side
-                pace = (now - (stage.started or self.start)) / stage.done / max(stage.side_by_side, 1)
+            if stage.fresh_only and stage.started is not None:
+                pace: float | None = (now - stage.started) / max(stage.done, stage.side_by_side, 1)
+            elif len(times) > 1 and times[-1] > times[0]:
+                pace = (times[-1] - times[0]) / (len(times) - 1)
+            elif stage.fresh_only:  # content-named jobs without logs to watch: from the run's start
+                pace = (now - self.start) / stage.done / max(stage.side_by_side, 1)
             else:  # a few report files say nothing
                 pace = None
             left = "" if pace is None else f", about {duration(pace * (len(stage.todo) - stage.done))} left"

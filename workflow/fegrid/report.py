@@ -21,7 +21,7 @@ import pandas as pd
 from tabulate import tabulate
 
 from .grid import Grid
-from .joint import method_text
+from .joint import method_text, shared_cluster_caution
 from .ledger import DEFAULT_CURVE, DIMENSIONS, PAIR, STATUS_OK, sample_family
 from .locations import pdflatex
 from .store import pair_slug, write_csv, write_text
@@ -327,6 +327,9 @@ def render_appendix(grid: Grid, ledger: pd.DataFrame, joint: pd.DataFrame | None
             "whose median estimate, share of significant estimates with the dominant sign, and Stouffer's $Z$ "
             f"are at least as extreme as observed; {latex_escape(method_text(grid.joint_method))}. "
         )
+        caution = shared_cluster_caution(grid, ledger["clustering"].astype(str))
+        if caution:
+            notes += f"Caution: {latex_escape(caution)} "
     wild = ledger[ledger["wild_draws"] > 0]
     if len(wild):
         notes += (

@@ -189,3 +189,22 @@ def test_fits_without_diagnostics_keep_every_number_the_draws_read(wage_panel) -
             else:
                 assert full.first_stage and np.isfinite(full.ar_p_value) and np.isfinite(full.effective_f)
                 assert not lean.first_stage and np.isnan(lean.ar_p_value) and np.isnan(lean.effective_f)
+
+
+def test_indicator_estimators_give_the_same_bytes_alone_and_beside_other_control_sets() -> None:
+    """The event study's and the interaction-weighted estimator's indicators are demeaned once per
+    design and shared by its outcomes and control sets: each specification's numbers are the same,
+    bit for bit, fitted alone or with the others (invented staggered panel)."""
+    grid, frame = _staggered_grid()
+    grid = load_config({**grid.raw, "control_sets": {"combinations_of": ["x"]},
+                        "clustering": {"unit": {"kind": "clustered", "by": "unit"}, "robust": {"kind": "hc1"}}})
+    specs = [s for s in grid.expand() if s.estimator.method in ("event_study", "interaction_weighted")]
+    assert len({s.controls for s in specs}) == 2
+    together = {r.spec_id: r for r in fit_block(frame, grid.block_settings(specs[0]),
+                                                 [s.request() for s in specs]).results}
+    for spec in specs:
+        alone = fit_block(frame, grid.block_settings(spec), [spec.request()]).results[0]
+        assert alone.status == "ok", alone.message
+        assert (alone.estimate, alone.std_error, alone.pretrend_p_value) == (
+            together[spec.spec_id].estimate, together[spec.spec_id].std_error,
+            together[spec.spec_id].pretrend_p_value)

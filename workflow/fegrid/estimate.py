@@ -309,6 +309,7 @@ class _Design:
         self._poisson: dict[tuple[str, str, tuple[str, ...]], object] = {}  # one PML fit per regression
         # one staggered-adoption fit per regression, shared by its covariance choices
         self._staggered: dict[tuple[object, ...], object] = {}
+        self._indicators: dict[tuple[object, ...], np.ndarray] = {}  # demeaned indicators, weight-scaled
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
         self.diagnostics = True  # 2SLS first-stage diagnostics, the imputation pretrend test (not in draws)
         self._cohorts: Cohorts | None = None
@@ -1250,11 +1251,17 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
     absorber = design.absorber if whole else Absorber(sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,
                                                       max_iterations=s.max_iterations, codes_of=LevelCodes(sub))
-    raw = np.column_stack([sub[spec.outcome].to_numpy(dtype=float), x,
-                           sub[list(spec.controls)].to_numpy(dtype=float).reshape(len(sub), -1)])
     sw = np.sqrt(w) if w is not None else np.ones(len(sub))
-    z = absorber.demean(raw).values * sw[:, None]
-    yz, xz = z[:, 0], np.asfortranarray(z[:, 1:])
+    # the indicators, demeaned once per design for every outcome and control set (the absorber demeans
+    # column by column, so the bytes are those of one demeaning of all the columns together)
+    key = (spec.estimator.method, options)
+    if key not in design._indicators:
+        design._indicators[key] = absorber.demean(x).values * sw[:, None]
+    own = np.column_stack([sub[spec.outcome].to_numpy(dtype=float),
+                           sub[list(spec.controls)].to_numpy(dtype=float).reshape(len(sub), -1)])
+    own = absorber.demean(own).values * sw[:, None]
+    yz = own[:, 0]
+    xz = np.asfortranarray(np.column_stack([design._indicators[key], own[:, 1:]]))
     # the cross products, not a QR factor: many indicator columns, and a QR of them costs 30 times more
     gram = xz.T @ xz
     norms = np.sqrt(np.diag(gram))

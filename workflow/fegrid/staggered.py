@@ -347,9 +347,13 @@ def interaction_cells(design: Cohorts, options: StaggeredOptions) -> Cells:
     active = rows & np.isfinite(cohort) & (cohort != control_cohort) & (rel != options.reference)
     kept = np.flatnonzero(rows)
     on = active[kept]
-    cell_codes, cell_values = pd.factorize(pd.MultiIndex.from_arrays(
-        [cohort[kept][on].astype(np.int64), rel[kept][on].astype(np.int64)]), sort=True)
-    pairs = [(int(c), int(r)) for c, r in cell_values]
+    # the (cohort, relative period) cells in lexicographic order: one integer key per row
+    c_on, r_on = cohort[kept][on].astype(np.int64), rel[kept][on].astype(np.int64)
+    r_low = int(r_on.min()) if len(r_on) else 0
+    span = int(r_on.max()) - r_low + 1 if len(r_on) else 1
+    keys, cell_codes = np.unique(c_on * span + (r_on - r_low), return_inverse=True)
+    cell_codes = cell_codes.ravel()
+    pairs = [(int(k // span), int(k % span) + r_low) for k in keys]
     matrix = np.zeros((len(kept), len(pairs)))
     matrix[np.flatnonzero(on), cell_codes] = 1.0
     counts = np.bincount(cell_codes, minlength=len(pairs)).astype(float)

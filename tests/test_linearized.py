@@ -208,3 +208,29 @@ def test_indicator_estimators_give_the_same_bytes_alone_and_beside_other_control
         assert (alone.estimate, alone.std_error, alone.pretrend_p_value) == (
             together[spec.spec_id].estimate, together[spec.spec_id].std_error,
             together[spec.spec_id].pretrend_p_value)
+
+
+def test_indicator_estimators_in_draws_give_the_full_fit_s_standard_error() -> None:
+    """In the draws (``diagnostics=False``, no coefficients kept) the event study's and the
+    interaction-weighted estimator's SE comes from the reported combination's own ``h = X B a`` (plus
+    the cohort shares' part for it alone), not from the whole matrix of every reported row: the same
+    SE to rounding for the clustered and heteroskedasticity-robust kinds, with the pre-trend test left
+    out; the same bytes for the homoskedastic and two-way kinds, which keep the matrix (invented
+    staggered panel)."""
+    grid, frame = _staggered_grid()
+    grid = load_config({**grid.raw, "clustering": {
+        "unit": {"kind": "clustered", "by": "unit"}, "robust": {"kind": "hc1"},
+        "iid": {"kind": "homoskedastic"}, "two_way": {"kind": "two_way_clustered", "by": ["unit", "period"]}}})
+    specs = [s for s in grid.expand() if s.estimator.method in ("event_study", "interaction_weighted")]
+    requests = [s.request() for s in specs]
+    full = fit_block(frame, grid.block_settings(specs[0]), requests, coefficients=False).results
+    lean = fit_block(frame, grid.block_settings(specs[0]), requests, coefficients=False, diagnostics=False).results
+    assert len(full) == 8
+    for spec, a, b in zip(specs, full, lean):
+        assert a.status == b.status == "ok" and a.estimate == b.estimate and a.df_inference == b.df_inference
+        assert np.isfinite(a.pretrend_p_value)
+        if spec.inference.kind in ("two_way_clustered", "homoskedastic"):  # these keep the whole matrix
+            assert (b.std_error, b.pretrend_p_value) == (a.std_error, a.pretrend_p_value)
+        else:
+            assert b.std_error == pytest.approx(a.std_error, rel=1e-12) and b.std_error != 0
+            assert np.isnan(b.pretrend_p_value)

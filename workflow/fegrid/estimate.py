@@ -29,7 +29,7 @@ from scipy.special import stdtr, stdtrit  # t distribution; lighter to import th
 
 from . import __version__, keys
 from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons, parse_absorb
-from .covariance import FitPieces, covariance_kind
+from .covariance import FitPieces, OneWay, Robust, covariance_kind
 from .defaults import DEFAULTS
 from .errors import EstimationError
 from .estimators import POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
@@ -1115,6 +1115,8 @@ class _IndicatorFit(NamedTuple):
     shares: tuple[int, Callable[[np.ndarray], np.ndarray]] | None = None
     # and the shares' first-order influence of each kept row on the aggregates (rows, aggregates)
     share_influence: Callable[[], np.ndarray] | None = None
+    # and the variance they add to the reported (overall) aggregate alone, for the kept rows' clusters
+    overall_share_variance: Callable[[np.ndarray], float] | None = None
 
 
 def _evaluate_staggered(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResult, Coefficients | None]:
@@ -1285,8 +1287,11 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
     share_part = None if shares is None else (shares[0], lambda clusters: shares[1](clusters, beta))
     share_first = None if share_args is None else (
         lambda: share_influence(share_args[0], share_args[1], beta[: share_args[2]]))
+    share_overall = None if share_args is None else (
+        lambda clusters: float(share_covariance(share_args[0], share_args[1][:1], beta[: share_args[2]],
+                                                clusters)[0, 0]))
     return _IndicatorFit(rows, sub, absorber, pieces, [*names, *spec.controls], full,
-                         (*reported, *spec.controls), share_part, share_first)
+                         (*reported, *spec.controls), share_part, share_first, share_overall)
 
 
 def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit: _IndicatorFit,
@@ -1299,6 +1304,21 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
     codes = [cluster_of(dim) for dim in spec.inference.by]
     nested = fit.absorber.nested_df(codes) if codes else 0
     base = replace(base, n_obs=len(fit.sub))
+    share_dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (design.settings.unit,)
+    if not (design.diagnostics or keep) and isinstance(covariance_kind(spec.inference.kind), (OneWay, Robust)):
+        # the joint tests' draws: the reported combination's variance from its own h = X B a (the kinds
+        # that are sums over h e: not the homoskedastic one, which reads B's first element, nor two-way,
+        # whose clipped matrix is not such a sum), plus the shares' part for it alone; not the whole
+        # matrix of every reported row, nor the pre-trend test
+        result, _ = _inference(base, spec, fit.pieces, fit.absorber, nested, codes,
+                               _covariance_codes(spec, codes, cluster_of), fit.sub, design.settings, fit.terms,
+                               False)
+        if result.status == STATUS_OK and fit.overall_share_variance is not None:
+            se = float(np.sqrt(result.std_error ** 2 + fit.overall_share_variance(cluster_of(share_dim))))
+            result = _with_std_error(result, result.estimate, se, result.df_inference, design.settings.level)
+        if result.status == STATUS_OK:
+            _record_indicator_influence(design, spec, fit)
+        return result, None
     result, kept = _inference(base, spec, fit.pieces, fit.absorber, nested, codes,
                               _covariance_codes(spec, codes, cluster_of), fit.sub, design.settings, fit.terms, True)
     if result.status != STATUS_OK or kept is None:
@@ -1309,25 +1329,34 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
     values = fit.combine @ fit.pieces.coefficients
     if fit.shares is not None:  # the cohort shares are estimated too: their variance adds to the aggregates
         n_agg, share_cov = fit.shares
-        dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (design.settings.unit,)
-        cov[:n_agg, :n_agg] += share_cov(cluster_of(dim))  # type: ignore[arg-type]
+        cov[:n_agg, :n_agg] += share_cov(cluster_of(share_dim))  # type: ignore[arg-type]
     # the reported estimate is a combination of the coefficients: its variance is the combination's
     # (a two-way matrix, made positive semi-definite as a whole, is not a sum over h e)
-    se = float(np.sqrt(cov[0, 0]))
-    crit = float(stdtrit(kept.df, 0.5 + design.settings.level / 2))
-    t = values[0] / se if se > 0 else float("nan")
-    result = replace(result, std_error=se, t_stat=t,
-                     p_value=float(2 * stdtr(kept.df, -abs(t))) if se > 0 else float("nan"),
-                     ci_low=values[0] - crit * se, ci_high=values[0] + crit * se)
+    result = _with_std_error(result, float(values[0]), float(np.sqrt(cov[0, 0])), kept.df, design.settings.level)
     pre = [j for j, n in enumerate(fit.reported) if n.startswith("rel=-")]
     result = replace(result, pretrend_p_value=wald_p_value(values[pre], cov[np.ix_(pre, pre)], kept.df))
     if spec.inference.bootstrap is not None:
         result = _without_wild(result)
+    _record_indicator_influence(design, spec, fit)
+    return result, (Coefficients(fit.reported, values, cov, kept.df) if keep else None)
+
+
+def _with_std_error(result: SpecResult, estimate: float, se: float, df: float, level: float) -> SpecResult:
+    """``result`` with the standard error ``se`` of ``estimate``, and the t statistic, p-value and
+    confidence interval that follow (t with ``df`` degrees of freedom)."""
+    crit = float(stdtrit(df, 0.5 + level / 2))
+    t = estimate / se if se > 0 else float("nan")
+    return replace(result, std_error=se, t_stat=t, p_value=float(2 * stdtr(df, -abs(t))) if se > 0 else float("nan"),
+                   ci_low=estimate - crit * se, ci_high=estimate + crit * se)
+
+
+def _record_indicator_influence(design: _Design, spec: SpecRequest, fit: _IndicatorFit) -> None:
+    """The influence of an indicator estimator's rows on its reported estimate (with the cohort shares'
+    part for the interaction-weighted estimator), when the fit asks for it."""
     if design.influence is not None:
         first = fit.pieces.h * fit.pieces.e
-        _record_influence(design, spec, rows, first if fit.share_influence is None
+        _record_influence(design, spec, fit.rows, first if fit.share_influence is None
                           else first + fit.share_influence()[:, 0])
-    return result, (Coefficients(fit.reported, values, cov, kept.df) if keep else None)
 
 
 def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[int], codes: np.ndarray,

@@ -124,15 +124,21 @@ def test_the_first_chunk_of_draws_is_paced_from_the_first_draw_job_start(tmp_pat
     assert out.getvalue().splitlines()[-1] == "fegrid: bootstrap draws: 50 of 250 draws, about 40 s left"
 
 
-def test_draw_jobs_side_by_side_share_the_pace(tmp_path: Path) -> None:
-    """Two draw jobs start together; when the first ends (10 s), with two running side by side, the
-    four chunks left take about 20 s, not 40 s (the demo's first line read 8 min 51 s for about 4 min)."""
-    now = [1000.0]
+def _two_draw_jobs_started(tmp_path: Path, now: list[float]) -> tuple[list[Path], io.StringIO, RunMonitor]:
+    """Two draw jobs whose logs appeared at 1040.5, seen by the monitor at 1041."""
     draws, logs, out, monitor = _draws_watched(tmp_path, now)
     now[0] = 1041.0
     _touch(logs[0], 1040.5)
     _touch(logs[1], 1040.5)
     monitor.update()
+    return draws, out, monitor
+
+
+def test_draw_jobs_side_by_side_share_the_pace(tmp_path: Path) -> None:
+    """Two draw jobs start together; when the first ends (10 s), with two running side by side, the
+    four chunks left take about 20 s, not 40 s (the demo's first line read 8 min 51 s for about 4 min)."""
+    now = [1000.0]
+    draws, out, monitor = _two_draw_jobs_started(tmp_path, now)
     now[0] = 1051.0
     _touch(draws[0], 1050.5)  # the next job has not started yet: one is running, but two ran side by side
     monitor.update()
@@ -144,11 +150,7 @@ def test_draw_jobs_that_end_together_do_not_read_no_time_left(tmp_path: Path) ->
     left, about 15 s at the pace of two jobs per 10 s (the demo once read "100 of 500 draws, about
     0 s left", from the tenth of a second between the two files)."""
     now = [1000.0]
-    draws, logs, out, monitor = _draws_watched(tmp_path, now)
-    now[0] = 1041.0
-    _touch(logs[0], 1040.5)
-    _touch(logs[1], 1040.5)
-    monitor.update()
+    draws, out, monitor = _two_draw_jobs_started(tmp_path, now)
     now[0] = 1051.0
     _touch(draws[0], 1050.5)
     _touch(draws[1], 1050.6)

@@ -343,9 +343,10 @@ class _Design:
         return None if ratio < 1e-4 else False  # the engine's threshold is 1e-7: only clear cases here
 
     def _kept_controls(self, controls: Sequence[str], norm: np.ndarray, raw_norm: np.ndarray,
-                       gram: np.ndarray) -> list[int] | None:
-        """The controls a regression keeps (absorbed and collinear ones dropped, in order), or ``None``
-        when a decision is near its threshold."""
+                       gram: np.ndarray, base: Sequence[int] = ()) -> list[int] | None:
+        """The columns a regression keeps of ``controls`` (absorbed ones dropped, and those collinear
+        with ``base`` and the ones kept before them), in order; ``None`` when a decision is near its
+        threshold."""
         kept: list[int] = []
         for c in controls:
             j = self.pos[c]
@@ -354,7 +355,7 @@ class _Design:
                 return None
             if absorbed:
                 continue
-            if self._collinear(j, kept, gram, norm) is None:
+            if self._collinear(j, [*base, *kept], gram, norm) is None:
                 return None
             kept.append(j)
         return kept
@@ -403,20 +404,11 @@ class _Design:
                 return None
             identified = identified and not absorbed
             endog.append(self.pos[name])
-        kept_names = {self.columns[j] for j in exog}
-        excluded: list[int] = []
-        for name in est.instruments:
-            if name in kept_names:
-                continue  # also a control: dropped, whatever the draw
-            j = self.pos[name]
-            absorbed = self._absorbed(j, norm, raw_norm)
-            if absorbed is None:
-                return None
-            if absorbed:
-                continue
-            if self._collinear(j, exog + excluded, gram, norm) is None:
-                return None
-            excluded.append(j)
+        kept_names = {self.columns[j] for j in exog}  # an instrument also a control is dropped, whatever the draw
+        excluded = self._kept_controls([n for n in est.instruments if n not in kept_names], norm, raw_norm, gram,
+                                       base=exog)
+        if excluded is None:
+            return None
         if not identified or len(excluded) < len(endog):
             return _NOT_IDENTIFIED
         ix, iw = endog + exog, excluded + exog

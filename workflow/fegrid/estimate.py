@@ -866,20 +866,16 @@ def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber:
     if not (np.isfinite(beta) and np.isfinite(se)):
         return replace(base, message="the estimate or its standard error is not finite (numerical overflow: "
                        "check the scale of the variables)"), None
-    t = beta / se if se > 0 else float("nan")
-    p = float(2 * stdtr(cov.df, -abs(t))) if se > 0 else float("nan")
-    crit = float(stdtrit(cov.df, 0.5 + s.level / 2))
     notes = [base.message] if base.message else []
     if not base.converged:
         notes.append(f"alternating projections did not reach the tolerance in {s.max_iterations} iterations")
     if cov.psd_adjusted:
         notes.append("two-way covariance was not positive semi-definite: negative eigenvalues set to zero")
     clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
-    result = replace(
-        base, status=STATUS_OK, message="; ".join(notes), estimate=beta, std_error=se, t_stat=t, p_value=p,
-        ci_low=beta - crit * se, ci_high=beta + crit * se, df_inference=float(cov.df),
+    result = _with_std_error(replace(
+        base, status=STATUS_OK, message="; ".join(notes), estimate=beta, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
-        within_r2=r2, psd_adjusted=cov.psd_adjusted)
+        within_r2=r2, psd_adjusted=cov.psd_adjusted), beta, se, cov.df, s.level)
     result = _cluster_checks(spec, frame, s, codes, result, checks)
     kept = None
     if matrix is not None:
@@ -1208,14 +1204,11 @@ def _linear_result(base: SpecResult, spec: SpecRequest, got: LinearEstimates, la
     est, se = float(got.estimates[0]), float(np.sqrt(got.covariance[0, 0]))
     if not (np.isfinite(est) and np.isfinite(se)):
         return replace(base, message="the estimate or its standard error is not finite"), None
-    t = est / se if se > 0 else float("nan")
-    crit = float(stdtrit(got.df, 0.5 + level / 2))
     notes = [m for m in (base.message, got.message, note) if m]
-    result = replace(base, status=STATUS_OK, message="; ".join(notes), estimate=est, std_error=se, t_stat=t,
-                     p_value=float(2 * stdtr(got.df, -abs(t))) if se > 0 else float("nan"),
-                     ci_low=est - crit * se, ci_high=est + crit * se, df_inference=got.df, n_obs=got.n_obs,
-                     n_clusters=got.n_clusters, clusters=f"{label}={got.n_clusters}", pretrend_p_value=pretrend,
-                     uniform_critical=got.uniform_critical)
+    result = _with_std_error(replace(
+        base, status=STATUS_OK, message="; ".join(notes), estimate=est, df_inference=got.df, n_obs=got.n_obs,
+        n_clusters=got.n_clusters, clusters=f"{label}={got.n_clusters}", pretrend_p_value=pretrend,
+        uniform_critical=got.uniform_critical), est, se, got.df, level)
     if spec.inference.bootstrap is not None:
         result = _without_wild(result)
     terms = (spec.focal, *got.names[1:])
@@ -1343,7 +1336,8 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
 
 def _with_std_error(result: SpecResult, estimate: float, se: float, df: float, level: float) -> SpecResult:
     """``result`` with the standard error ``se`` of ``estimate``, and the t statistic, p-value and
-    confidence interval that follow (t with ``df`` degrees of freedom)."""
+    confidence interval that follow (t with ``df`` degrees of freedom): the one place every estimator's
+    result gets them."""
     crit = float(stdtrit(df, 0.5 + level / 2))
     t = estimate / se if se > 0 else float("nan")
     return replace(result, std_error=se, t_stat=t, p_value=float(2 * stdtr(df, -abs(t))) if se > 0 else float("nan"),

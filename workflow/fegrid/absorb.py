@@ -45,6 +45,7 @@ __all__ = [
     "parse_absorb",
     "term_label",
     "factorize",
+    "float_columns",
     "drop_singletons",
     "LevelCodes",
     "Absorber",
@@ -203,6 +204,15 @@ def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, 
         codes, n_levels = got if got is not None else _sorted_factorize(pd.Series(codes))
         return codes, n_levels
     return codes, int(codes.max()) + 1 if len(codes) else 0
+
+
+def float_columns(frame: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
+    """The columns as one float matrix (n, k), column by column: the same values as
+    ``frame[columns].to_numpy(dtype=float)`` without building a frame of the selection."""
+    out = np.empty((len(frame), len(columns)), order="F")
+    for j, col in enumerate(columns):
+        out[:, j] = frame[col].to_numpy(dtype=float)
+    return out
 
 
 def _sorted_factorize(series: pd.Series) -> tuple[np.ndarray, int]:
@@ -369,6 +379,22 @@ def _pinv(gram: np.ndarray) -> np.ndarray:
     return (eigvec[:, keep] / eigval[keep]) @ eigvec[:, keep].T
 
 
+def _pinv_many(grams: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """:func:`_pinv` of each matrix, those of one size in one batched eigendecomposition (a region's
+    periods: one small system per region)."""
+    out: list[np.ndarray] = [np.empty((0, 0))] * len(grams)
+    by_size: dict[int, list[int]] = {}
+    for k, g in enumerate(grams):
+        by_size.setdefault(g.shape[0], []).append(k)
+    for members in by_size.values():
+        stack = np.stack([grams[k] for k in members])
+        eigval, eigvec = np.linalg.eigh((stack + stack.transpose(0, 2, 1)) / 2)
+        for k, val, vec in zip(members, eigval, eigvec):
+            keep = val > 1e-12 * max(float(val.max()), 1e-300)
+            out[k] = (vec[:, keep] / val[keep]) @ vec[:, keep].T
+    return out
+
+
 class _TwoTerms:
     """Exact residual maker of a large term ``P`` (categorical or trend) and a small categorical term.
 
@@ -426,8 +452,9 @@ class _TwoTerms:
         flat = offsets[parts[gram.row]] + local[gram.row] * sizes[parts[gram.row]] + local[gram.col]
         blocks = np.bincount(flat, gram.data, minlength=int((sizes * sizes).sum()))
         members_of = np.split(order, np.cumsum(sizes)[:-1])
-        self.parts = [(members_of[k], _pinv(blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])))
-                      for k in range(n_parts)]
+        inverses = _pinv_many([blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])
+                               for k in range(n_parts)])
+        self.parts = list(zip(members_of, inverses))
 
     def apply(self, x: np.ndarray) -> np.ndarray:
         """Residuals of the columns of ``x`` (Fortran order) on both terms, column by column (so that
@@ -446,7 +473,20 @@ class _TwoTerms:
         return xt
 
 
+#: Largest table of level pairs that :func:`_components` holds to look for a level linked to every other.
+HUB_CELLS = 1_000_000
+
+
 def _components(a: np.ndarray, la: int, b: np.ndarray, lb: int) -> int:
+    """Connected components of the bipartite graph linking level ``a[i]`` of one term to ``b[i]`` of the
+    other (``la`` and ``lb`` levels; a level without rows is a component of its own)."""
+    if 0 < la * lb <= HUB_CELLS:  # the usual panel: one level (a period) meets every level of the other term
+        table = np.zeros(la * lb, dtype=bool)
+        table[a * lb + b] = True
+        table = table.reshape(la, lb)
+        if table.any(axis=0).all() and table.any(axis=1).all() and (
+                table.all(axis=0).any() or table.all(axis=1).any()):
+            return 1
     graph = sp.coo_array((np.ones(len(a)), (a, b + la)), shape=(la + lb, la + lb))
     return int(connected_components(graph, directed=False)[0])
 
@@ -483,7 +523,8 @@ class Absorber:
     Parameters
     ----------
     frame
-        The rows the projections act on (after missing values and singletons were removed).
+        The rows the projections act on (after missing values and singletons were removed), or their
+        number when ``codes_of`` gives the terms' codes (and ``time_values`` the time, for trends).
     terms
         The absorbed terms. An empty tuple absorbs the intercept only (pooled OLS with a constant).
     weights
@@ -493,6 +534,9 @@ class Absorber:
     tolerance, max_iterations
         Alternating projections stop when ``||x - T x|| <= tolerance * ||x_0||`` for every column
         (``T`` is one sweep over all terms), or after ``max_iterations`` sweeps.
+    codes_of, time_values
+        The terms' codes on the rows (by default factorized from ``frame``) and the time column's
+        values (by default ``frame[time]``).
 
     Notes
     -----
@@ -508,7 +552,7 @@ class Absorber:
 
     def __init__(
         self,
-        frame: pd.DataFrame,
+        frame: pd.DataFrame | int,
         terms: Sequence[Term],
         *,
         weights: np.ndarray | None = None,
@@ -516,9 +560,17 @@ class Absorber:
         tolerance: float = DEFAULTS["estimation.tolerance"],
         max_iterations: int = DEFAULTS["estimation.max_iterations"],
         codes_of: CodesOf | None = None,
+        time_values: np.ndarray | None = None,
     ) -> None:
-        n = len(frame)
-        codes_of = codes_of or _default_codes(frame)
+        if isinstance(frame, int):  # the number of rows: codes_of (and time_values, for trends) give the rest
+            n = frame
+            if codes_of is None:
+                raise ValueError("an absorber on a number of rows needs codes_of")
+        else:
+            n = len(frame)
+            codes_of = codes_of or _default_codes(frame)
+            if time_values is None and time and time in frame:
+                time_values = frame[time].to_numpy(dtype=float)
         self.n_obs = n
         self.tolerance = float(tolerance)
         self.max_iterations = int(max_iterations)
@@ -528,16 +580,16 @@ class Absorber:
         self._codes: list[np.ndarray] = []
         self._nlev: list[int] = []
         slopes: list[np.ndarray | None] = []
-        self._time = frame[time].to_numpy(dtype=float) if time and time in frame else None
+        self._time = time_values if time else None
         for term in self.terms:
             codes = codes_of(term.groups)
             nlev = int(codes.max()) + 1 if n else 0
             self.levels[term.label()] = nlev
             self._codes.append(codes)
             self._nlev.append(nlev)
-            slopes.append(
-                frame[time].to_numpy(dtype=float) if term.has_slope and time else None
-            )
+            if term.has_slope and time and self._time is None:
+                raise KeyError(time)
+            slopes.append(self._time if term.has_slope and time else None)
         # skip a term that a finer term refines (each of the finer term's groups lies inside one of
         # its groups): its dummies are sums of the finer term's dummies
         active = []
@@ -551,6 +603,7 @@ class Absorber:
                 active.append(i)
         self._active = active
         self._slopes = slopes
+        self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
 
     def _project(self) -> list[_Projection]:
@@ -566,6 +619,7 @@ class Absorber:
         new.w = np.asarray(weights, dtype=float)
         for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
             new.__dict__.pop(weighted, None)
+        new._ranks = {}  # a trend's slopes count the groups where time varies with weight
         new._projections = new._project()
         return new
 
@@ -605,7 +659,14 @@ class Absorber:
         return self._rank(self._active) if self.terms else 1
 
     def _rank(self, members: Sequence[int]) -> int:
-        """Rank of the dummy (and slope) columns of the active terms ``members`` (see the Notes)."""
+        """Rank of the dummy (and slope) columns of the active terms ``members`` (see the Notes); each set
+        counted once (the cluster variables of several covariance choices often nest the same terms)."""
+        key = tuple(members)
+        if key not in self._ranks:
+            self._ranks[key] = self._count_rank(members)
+        return self._ranks[key]
+
+    def _count_rank(self, members: Sequence[int]) -> int:
         df = 0
         cats = sorted(members, key=lambda i: -self._nlev[i])
         for i in members:

@@ -28,7 +28,7 @@ import pandas as pd
 from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
 from . import __version__, keys
-from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons, parse_absorb
+from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons, float_columns, parse_absorb
 from .covariance import FitPieces, OneWay, Robust, covariance_kind
 from .defaults import DEFAULTS
 from .errors import EstimationError
@@ -355,7 +355,7 @@ class _Design:
                     reused += 1
             todo = missing
         if todo:
-            raw = self.frame[todo].to_numpy(dtype=float)
+            raw = float_columns(self.frame, todo)
             out = self.absorber.demean(raw)
             for j, c in enumerate(todo):
                 vals = np.ascontiguousarray(out.values[:, j])
@@ -725,8 +725,10 @@ def fit_block(
                                         "no observations are left after dropping rows with missing "
                                         "values and singletons")
             continue
-        design_key = keys.design_key(settings.demean_key() + data_key, len(rows),
-                                     {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
+        # the key of the design's stored columns (hashing its rows' keys: only when there is a store)
+        design_key = "" if store is None else keys.design_key(
+            settings.demean_key() + data_key, len(rows),
+            {c: keys.column_key(rows[c]) for c in _design_columns(settings)})
         design = _Design(rows, settings, int((~keep).sum()), design_key, level_codes.on_rows(positions[keep]))
         design.keep_all = coefficients
         design.diagnostics = diagnostics
@@ -998,7 +1000,7 @@ def _fit_poisson(design: _Design, spec: SpecRequest) -> _PoissonPieces:
                                       "its effect groups or where the regressors push it): Poisson PML has no "
                                       "estimate"), True)
     codes_of = LevelCodes(sub)
-    x = sub[names].to_numpy(dtype=float)
+    x = float_columns(sub, names)
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
     # regressors that the separated observations leave constant within the effects are dropped
     check = Absorber(sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,

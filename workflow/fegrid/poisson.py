@@ -32,7 +32,7 @@ from typing import NamedTuple
 import numpy as np
 import pandas as pd
 
-from .absorb import Absorber, LevelCodes, Term, drop_singletons
+from .absorb import Absorber, LevelCodes, Term, drop_singletons, float_columns
 
 __all__ = ["separated_rows", "PoissonFit", "irls"]
 
@@ -74,7 +74,7 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
     if not zeros.any() or not regressors:
         return keep
     sub = frame.iloc[idx]
-    x = sub[list(regressors)].to_numpy(dtype=float)
+    x = float_columns(sub, regressors)
     if _positives_span_everything(sub, zeros, x, terms, time=time, tolerance=tolerance,
                                   max_iterations=max_iterations):
         return keep

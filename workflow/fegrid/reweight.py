@@ -287,10 +287,10 @@ class _Design:
         if np.any(raw_norm <= 1e-6 * np.sqrt(total) * self.raw_scale):  # (nearly) constant: rounding decides
             return None
         codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self.dims.items()}
-        absorber = Absorber(pd.DataFrame({"t": self.time[rows]}) if self.time is not None else
-                            pd.DataFrame(index=pd.RangeIndex(len(rows))),
-                            self.settings.absorb, weights=w if self.settings.weights else None,
-                            time="t" if self.time is not None else None, codes_of=lambda g: codes[g])
+        absorber = Absorber(len(rows), self.settings.absorb, weights=w if self.settings.weights else None,
+                            time=self.settings.time if self.time is not None else None,
+                            time_values=self.time[rows] if self.time is not None else None,
+                            codes_of=lambda g: codes[g])
         out = []
         fits: dict[tuple[object, ...], _Fit | None] = {}
         nested: dict[tuple[tuple[str, ...], ...], int] = {}
@@ -318,11 +318,11 @@ class _Design:
         where[drawn] = np.arange(len(drawn))
         copies = draw.counts[self.levels[drawn]].astype(float)
         codes = {g: _dense(c[drawn], int(c.max()) + 1) for g, c in self.term_codes.items()}
-        frame = (pd.DataFrame({"t": self.time[drawn]}) if self.time is not None
-                 else pd.DataFrame(index=pd.RangeIndex(len(drawn))))
-        absorber = Absorber(frame, self.settings.absorb, weights=copies * self.w[drawn],
-                            time="t" if self.time is not None else None, tolerance=self.settings.tolerance,
-                            max_iterations=self.settings.max_iterations, codes_of=lambda g: codes[g])
+        absorber = Absorber(len(drawn), self.settings.absorb, weights=copies * self.w[drawn],
+                            time=self.settings.time if self.time is not None else None,
+                            time_values=self.time[drawn] if self.time is not None else None,
+                            tolerance=self.settings.tolerance, max_iterations=self.settings.max_iterations,
+                            codes_of=lambda g: codes[g])
         out = absorber.demean(self.raw[drawn])
         if not out.converged.all():
             raise _Unsupported("not converged")

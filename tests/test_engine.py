@@ -512,3 +512,83 @@ def test_a_reweighted_absorber_equals_a_new_one(wage_panel: pd.DataFrame) -> Non
             assert np.array_equal(got.values, want.values) and np.array_equal(got.iterations, want.iterations)
             assert again.absorbed_df == fresh.absorbed_df
             first = again
+
+
+def test_components_shortcut_equals_scipy_on_random_graphs() -> None:
+    """Source: scipy.sparse.csgraph.connected_components (the general-purpose reference) on the same
+    bipartite graphs. The shortcut answers 1 when one level meets every level of the other term and
+    every level has a row; graphs with a hub, without one, split in parts, and with a level that has
+    no row (its own component) must all count as scipy counts them."""
+    import scipy.sparse as sp
+    from scipy.sparse.csgraph import connected_components
+
+    from fegrid.absorb import _components
+
+    rng = np.random.default_rng(20261203)
+    hubs = 0
+    for trial in range(300):
+        la, lb = int(rng.integers(1, 40)), int(rng.integers(1, 15))
+        pairs = [(a, b) for a in range(la) for b in range(lb) if rng.random() < (0.9 if trial % 3 else 0.15)]
+        if trial % 4 == 0:  # a hub: level 0 of the second term meets every level of the first
+            pairs += [(a, 0) for a in range(la)]
+        if trial % 5 == 0 and la > 2:  # a level of the first term without rows
+            pairs = [p for p in pairs if p[0] != la - 1]
+        if not pairs:
+            continue
+        a, b = (np.array(x, dtype=np.int64) for x in zip(*pairs))
+        graph = sp.coo_array((np.ones(len(a)), (a, b + la)), shape=(la + lb, la + lb))
+        expected = int(connected_components(graph, directed=False)[0])
+        assert _components(a, la, b, lb) == expected, trial
+        hubs += expected == 1
+    assert hubs > 50  # the shortcut's case was met
+
+
+def test_batched_pseudo_inverses_are_the_one_at_a_time_bytes() -> None:
+    """The systems of a region's periods (one per region, several of each size) are inverted in one
+    batched eigendecomposition per size: the same bytes as one at a time, rank-deficient ones too."""
+    from fegrid.absorb import _pinv, _pinv_many
+
+    rng = np.random.default_rng(7)
+    grams = []
+    for size in [4, 4, 6, 1, 4, 6, 9]:
+        a = rng.normal(size=(size, size))
+        g = a @ a.T
+        g[-1, :] = g[:, -1] = 0.0  # singular, as a part's dummies summing to a constant make it
+        grams.append(g)
+    for g, got in zip(grams, _pinv_many(grams)):
+        assert np.array_equal(_pinv(g), got)
+
+
+def test_codes_on_a_subset_equal_a_factorization_of_the_subset(wage_panel: pd.DataFrame) -> None:
+    """Source: factorize on the subset itself (pandas.factorize(sort=True) underneath). A Poisson fit
+    renumbers its design's codes on the rows it keeps instead of factorizing them again."""
+    from fegrid.absorb import LevelCodes, codes_on_rows
+
+    rng = np.random.default_rng(3)
+    frame = wage_panel.assign(region=lambda d: (d["nr"] % 7).astype(str))
+    codes_of = LevelCodes(frame)
+    for _ in range(20):
+        positions = np.flatnonzero(rng.random(len(frame)) < rng.uniform(0.05, 0.9))
+        subset = codes_on_rows(codes_of, positions)
+        for columns in [("nr",), ("year",), ("region",), ("region", "year"), ("nr", "year")]:
+            assert np.array_equal(subset(columns), factorize(frame.iloc[positions], columns)[0]), columns
+
+
+def test_an_absorber_on_a_row_count_equals_one_on_the_frame(wage_panel: pd.DataFrame) -> None:
+    """The joint tests' draws build absorbers from codes and a row count, without a frame: the same
+    demeaned bytes, absorbed df and nested df, with unit trends (which read the time column) too."""
+    from fegrid.absorb import LevelCodes, float_columns
+
+    terms = parse_absorb(["nr", "year", {"trend": "nr"}])
+    codes_of = LevelCodes(wage_panel)
+    on_frame = Absorber(wage_panel, terms, time="year", codes_of=codes_of)
+    on_count = Absorber(len(wage_panel), terms, time="year", codes_of=codes_of,
+                        time_values=wage_panel["year"].to_numpy(dtype=float))
+    x = float_columns(wage_panel, ["lwage", "hours", "exper"])
+    assert np.array_equal(x, wage_panel[["lwage", "hours", "exper"]].to_numpy(dtype=float))
+    assert np.array_equal(on_frame.demean(x).values, on_count.demean(x).values)
+    assert on_frame.absorbed_df == on_count.absorbed_df
+    unit = codes_of(("nr",))
+    assert on_frame.nested_df([unit]) == on_count.nested_df([unit]) > 0
+    with pytest.raises(ValueError, match="codes_of"):
+        Absorber(len(wage_panel), terms, time="year")

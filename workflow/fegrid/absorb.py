@@ -48,6 +48,7 @@ __all__ = [
     "float_columns",
     "drop_singletons",
     "LevelCodes",
+    "codes_on_rows",
     "Absorber",
     "DemeanOutcome",
 ]
@@ -260,14 +261,20 @@ class LevelCodes:
         return self._codes[columns]
 
     def on_rows(self, positions: np.ndarray) -> CodesOf:
-        cache: dict[tuple[str, ...], np.ndarray] = {}
+        return codes_on_rows(self, positions)
 
-        def codes_of(columns: tuple[str, ...]) -> np.ndarray:
-            if columns not in cache:
-                cache[columns] = _densify(self(columns)[positions])
-            return cache[columns]
 
-        return codes_of
+def codes_on_rows(codes_of: CodesOf, positions: np.ndarray) -> CodesOf:
+    """The codes of ``codes_of`` on a subset of its rows, renumbered ``0..L-1`` in the same sorted order
+    (the codes a factorization of the subset gives), each computed when first asked."""
+    cache: dict[tuple[str, ...], np.ndarray] = {}
+
+    def on_rows(columns: tuple[str, ...]) -> np.ndarray:
+        if columns not in cache:
+            cache[columns] = _densify(codes_of(columns)[positions])
+        return cache[columns]
+
+    return on_rows
 
 
 def _densify(codes: np.ndarray) -> np.ndarray:

@@ -28,7 +28,7 @@ import pandas as pd
 from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
 from . import __version__, keys
-from .absorb import Absorber, CodesOf, LevelCodes, Term, drop_singletons, float_columns, parse_absorb
+from .absorb import Absorber, CodesOf, LevelCodes, Term, codes_on_rows, drop_singletons, float_columns, parse_absorb
 from .covariance import FitPieces, OneWay, Robust, covariance_kind
 from .defaults import DEFAULTS
 from .errors import EstimationError
@@ -309,7 +309,8 @@ class _Design:
         self._poisson: dict[tuple[str, str, tuple[str, ...]], object] = {}  # one PML fit per regression
         # one staggered-adoption fit per regression, shared by its covariance choices
         self._staggered: dict[tuple[object, ...], object] = {}
-        self._indicators: dict[tuple[object, ...], np.ndarray] = {}  # demeaned indicators, weight-scaled
+        # the indicators' absorber and the indicators demeaned, weight-scaled
+        self._indicators: dict[tuple[object, ...], tuple[Absorber, np.ndarray]] = {}
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
         self.diagnostics = True  # 2SLS first-stage diagnostics, the imputation pretrend test (not in draws)
         self._cohorts: Cohorts | None = None
@@ -991,7 +992,7 @@ def _fit_poisson(design: _Design, spec: SpecRequest) -> _PoissonPieces:
                                       f"{negative} negative value(s) in this sample"), True)
     names = [spec.focal] + [design.columns[j] for j in regressors.columns[1:]]
     rows = separated_rows(frame, y, names, s.absorb, time=s.time, keep_singletons=s.keep_singletons,
-                          tolerance=s.tolerance, max_iterations=s.max_iterations)
+                          tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=design.codes_of)
     n_sep = int(np.count_nonzero(~rows))
     sub = frame.iloc[np.flatnonzero(rows)]
     base = replace(base, n_separated=n_sep, n_obs=len(sub))
@@ -999,7 +1000,7 @@ def _fit_poisson(design: _Design, spec: SpecRequest) -> _PoissonPieces:
         return _PoissonPieces(replace(base, message="every observation is separated (its outcome is zero throughout "
                                       "its effect groups or where the regressors push it): Poisson PML has no "
                                       "estimate"), True)
-    codes_of = LevelCodes(sub)
+    codes_of = codes_on_rows(design.codes_of, np.flatnonzero(rows))
     x = float_columns(sub, names)
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
     # regressors that the separated observations leave constant within the effects are dropped
@@ -1246,19 +1247,21 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
     whole = bool(rows.all())
     sub = design.frame if whole else design.frame.loc[rows]
     w = sub[s.weights].to_numpy(dtype=float) if s.weights else None
-    absorber = design.absorber if whole else Absorber(sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance,
-                                                      max_iterations=s.max_iterations, codes_of=LevelCodes(sub))
     sw = np.sqrt(w) if w is not None else np.ones(len(sub))
-    # the indicators, demeaned once per design for every outcome and control set (the absorber demeans
-    # column by column, so the bytes are those of one demeaning of all the columns together)
+    # the indicators' rows and absorber, and the indicators demeaned, once per design for every outcome and
+    # control set (the absorber demeans column by column, so the bytes are those of one demeaning of all
+    # the columns together)
     key = (spec.estimator.method, options)
     if key not in design._indicators:
-        design._indicators[key] = absorber.demean(x).values * sw[:, None]
-    own = np.column_stack([sub[spec.outcome].to_numpy(dtype=float),
-                           sub[list(spec.controls)].to_numpy(dtype=float).reshape(len(sub), -1)])
+        absorber = design.absorber if whole else Absorber(
+            sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance, max_iterations=s.max_iterations,
+            codes_of=codes_on_rows(design.codes_of, np.flatnonzero(rows)))
+        design._indicators[key] = (absorber, absorber.demean(x).values * sw[:, None])
+    absorber, indicators = design._indicators[key]
+    own = np.column_stack([sub[spec.outcome].to_numpy(dtype=float), float_columns(sub, spec.controls)])
     own = absorber.demean(own).values * sw[:, None]
     yz = own[:, 0]
-    xz = np.asfortranarray(np.column_stack([design._indicators[key], own[:, 1:]]))
+    xz = np.asfortranarray(np.column_stack([indicators, own[:, 1:]]))
     # the cross products, not a QR factor: many indicator columns, and a QR of them costs 30 times more
     gram = xz.T @ xz
     norms = np.sqrt(np.diag(gram))

@@ -32,7 +32,7 @@ from typing import NamedTuple
 import numpy as np
 import pandas as pd
 
-from .absorb import Absorber, LevelCodes, Term, drop_singletons, float_columns
+from .absorb import Absorber, CodesOf, LevelCodes, Term, codes_on_rows, drop_singletons, float_columns
 
 __all__ = ["separated_rows", "PoissonFit", "irls"]
 
@@ -40,9 +40,8 @@ __all__ = ["separated_rows", "PoissonFit", "irls"]
 _PIN = 1e8
 
 
-def _zero_groups(frame: pd.DataFrame, y: np.ndarray, terms: Sequence[Term]) -> np.ndarray:
+def _zero_groups(frame: pd.DataFrame, y: np.ndarray, terms: Sequence[Term], codes_of: CodesOf) -> np.ndarray:
     """Rows whose group, in some absorbed term, has an outcome of zero throughout."""
-    codes_of = LevelCodes(frame)
     out = np.zeros(len(frame), dtype=bool)
     for term in terms:
         codes = codes_of(term.groups)
@@ -53,17 +52,20 @@ def _zero_groups(frame: pd.DataFrame, y: np.ndarray, terms: Sequence[Term]) -> n
 
 def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str], terms: Sequence[Term], *,
                    time: str | None, keep_singletons: bool, tolerance: float,
-                   max_iterations: int) -> np.ndarray:
-    """A mask of the rows to keep: neither in an all-zero effect group nor separated by the regressors."""
+                   max_iterations: int, codes_of: CodesOf | None = None) -> np.ndarray:
+    """A mask of the rows to keep: neither in an all-zero effect group nor separated by the regressors.
+    ``codes_of`` gives the terms' codes on ``frame`` (by default factorized from it)."""
     keep = np.ones(len(frame), dtype=bool)
     if len(frame) == 0:
         return keep
+    codes_of = codes_of or LevelCodes(frame)
     while True:  # all-zero groups, then the singletons their removal leaves, until nothing changes
         idx = np.flatnonzero(keep)
         sub = frame.iloc[idx]
-        drop = _zero_groups(sub, y[idx], terms) if terms else np.zeros(len(idx), dtype=bool)
+        on_sub = codes_on_rows(codes_of, idx)
+        drop = _zero_groups(sub, y[idx], terms, on_sub) if terms else np.zeros(len(idx), dtype=bool)
         if terms and not keep_singletons:
-            drop |= ~drop_singletons(sub, terms) if (~drop).all() else np.zeros(len(idx), dtype=bool)
+            drop |= ~drop_singletons(sub, terms, codes_of=on_sub) if (~drop).all() else np.zeros(len(idx), dtype=bool)
         if not drop.any():
             break
         keep[idx[drop]] = False
@@ -75,12 +77,13 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
         return keep
     sub = frame.iloc[idx]
     x = float_columns(sub, regressors)
+    on_sub = codes_on_rows(codes_of, idx)
     if _positives_span_everything(sub, zeros, x, terms, time=time, tolerance=tolerance,
-                                  max_iterations=max_iterations):
+                                  max_iterations=max_iterations, codes_of=on_sub):
         return keep
     w = np.where(zeros, 1.0, _PIN)
     absorber = Absorber(sub, terms, weights=w, time=time, tolerance=min(tolerance, 1e-12),
-                        max_iterations=max_iterations, codes_of=LevelCodes(sub))
+                        max_iterations=max_iterations, codes_of=on_sub)
     xt = absorber.demean(x).values
     sw = np.sqrt(w)[:, None]
     q, r = np.linalg.qr(xt * sw)
@@ -102,7 +105,7 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
 
 
 def _positives_span_everything(frame: pd.DataFrame, zeros: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
-                               time: str | None, tolerance: float, max_iterations: int) -> bool:
+                               time: str | None, tolerance: float, max_iterations: int, codes_of: CodesOf) -> bool:
     """A sufficient condition for no separation, cheap to check: the regressors and effects have
     the same rank on the positive outcomes as on all rows. A separating combination vanishes on the
     positives and not on some zero, so it cannot exist then. Exact for at most two categorical
@@ -112,9 +115,9 @@ def _positives_span_everything(frame: pd.DataFrame, zeros: np.ndarray, x: np.nda
     pos = frame.iloc[np.flatnonzero(~zeros)]
     if len(pos) <= x.shape[1]:
         return False
-    everything = Absorber(frame, terms, time=time, codes_of=LevelCodes(frame))
+    everything = Absorber(frame, terms, time=time, codes_of=codes_of)
     positives = Absorber(pos, terms, time=time, tolerance=tolerance, max_iterations=max_iterations,
-                         codes_of=LevelCodes(pos))
+                         codes_of=codes_on_rows(codes_of, np.flatnonzero(~zeros)))
     if positives.absorbed_df != everything.absorbed_df:
         return False
     xp = positives.demean(x[~zeros]).values

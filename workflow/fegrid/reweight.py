@@ -259,22 +259,26 @@ class _Design:
         rows, position = b[on], draw.position[on]
         w = self.w[rows]
         sw = np.sqrt(w)
+
+        def scaled(a: np.ndarray) -> np.ndarray:  # rows times the square root of their weights (if any)
+            return a * sw[:, None] if self.settings.weights else a
+
         if self.reweighted:
             try:
-                z = self._demean_drawn(draw, rows) * sw[:, None]
+                z = scaled(self._demean_drawn(draw, rows))
             except _Unsupported:
                 return None
         elif self.dummies.shape[1]:
-            d = self.dummies[rows] * sw[:, None]
+            d = scaled(self.dummies[rows])
             dd = d.T @ d
             eigval, eigvec = np.linalg.eigh((dd + dd.T) / 2)
             ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
             inverse = (eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T
-            z = self.within[rows] * sw[:, None]
+            z = scaled(self.within[rows])
             for _ in range(2):  # one refinement step recovers the digits the normal equations lose
                 z = z - d @ (inverse @ (d.T @ z))
         else:
-            z = self.within[rows] * sw[:, None]
+            z = scaled(self.within[rows])
         z = np.asfortranarray(z)
         gram = z.T @ z
         norm = np.sqrt(np.diag(gram))

@@ -1,4 +1,4 @@
-"""The joint tests' least-squares and 2SLS draws as reweightings equal the stacked refits they replace.
+"""The joint tests' least-squares, 2SLS and Poisson PML draws as reweightings equal the stacked refits they replace.
 
 Data: linearmodels' wage_panel (an open dataset; see conftest.py), on the grid of tests/helpers.py
 with weights, singletons and a sample that a draw can empty. The reference is the second, older
@@ -127,3 +127,92 @@ def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column
     slow = draw_curves(grid, frame, specs, range(3), seed=9, column=column, reweight=False).sort_values(
         KEY, ignore_index=True)
     pd.testing.assert_frame_equal(fast, slow, rtol=1e-9, atol=1e-12)
+
+
+def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage_panel: pd.DataFrame,
+                                                            monkeypatch) -> None:
+    """Poisson PML draws fitted on the drawn rows weighted by their copies equal the stacked refits
+    (linearmodels' wage_panel; the reference is the stacked path, as above): estimates and SEs to 1e-8
+    relative (both iterate to the same convergence rule from the same start), df exactly, every draw
+    under the imposed null. Union membership as the outcome has workers never in a union (effect groups
+    with a zero outcome throughout, dropped: the inference then runs on fewer rows than the draw's),
+    zeros elsewhere (the certificate of no separation), weights, singletons, every covariance kind."""
+    from fegrid import reweight
+
+    frame = wage_panel.assign(wage=np.exp(wage_panel["lwage"]))  # the hourly wage: positive, no zero
+    raw = wage_grid(tmp_path, frame, weights={"unweighted": None, "by_hours": "hours"})
+    raw["outcomes"] = ["union", "wage"]
+    raw["focal_regressors"] = ["married"]
+    raw["absorb"] = {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": []}
+    raw["samples"] = {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}},
+                      "long_hours": {"range": {"hours": {"min": 2600}}}}
+    raw["control_sets"] = {"combinations_of": ["expersq", "hours"]}
+    raw["estimators"] = {"pml": {"method": "poisson_pml"}}
+    grid = load_config(raw)
+    specs = grid.expand()
+    made: list[bool] = []
+    fit_poisson = reweight._Design._poisson
+
+    def counted(self, *args, **kwargs):
+        got = fit_poisson(self, *args, **kwargs)
+        made.append(got is not None)
+        return got
+
+    monkeypatch.setattr(reweight._Design, "_poisson", counted)
+    draws = range(6)
+    fast = draw_curves(grid, frame, specs, draws, seed=5, column="nr").sort_values(KEY, ignore_index=True)
+    slow = draw_curves(grid, frame, specs, draws, seed=5, column="nr", reweight=False).sort_values(
+        KEY, ignore_index=True)
+    pd.testing.assert_frame_equal(fast[[*KEY, "imposed"]], slow[[*KEY, "imposed"]])
+    assert fast["imposed"].all()
+    for col in ("estimate", "std_error"):
+        a, b = fast[col].to_numpy(), slow[col].to_numpy()
+        assert np.array_equal(np.isnan(a), np.isnan(b)), col
+        ok = ~np.isnan(b)
+        assert ok.mean() > 0.8
+        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-8, atol=1e-12, err_msg=col)
+    pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
+    assert np.mean(made) > 0.9  # the fits were reweightings
+
+    ledger = _ledger(grid, frame, specs)
+    assert (ledger["status"] == "ok").all()
+    assert (ledger["n_separated"] > 0).any() and (ledger["n_singletons"] > 0).any()
+
+
+def test_singletons_among_the_copies_are_those_the_stacked_rows_hold(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+    """When a Poisson draw drops effect groups with a zero outcome, the rows left may hold a singleton among
+    their copies (the draw then takes the stacked refit). Reference: the engine's singleton rule
+    (:func:`fegrid.absorb.drop_singletons`) on the copies written out row by row, each copy of a worker a
+    level of its own and the years shared (linearmodels' wage_panel, random draws and subsets of rows)."""
+    from fegrid.absorb import drop_singletons
+
+    raw = wage_grid(tmp_path, wage_panel)
+    raw.update(outcomes=["union"], focal_regressors=["married"], absorb={"worker_year": ["nr", "year"]},
+               samples={"all": {}}, control_sets={"combinations_of": []},
+               clustering={"worker": raw["clustering"]["worker"]}, estimators={"pml": {"method": "poisson_pml"}})
+    grid = load_config(raw)
+    specs = grid.expand()
+    codes, levels = pd.factorize(wage_panel["nr"], sort=True)
+    blocks, rest = prepare_blocks(grid, wage_panel, specs, codes, len(levels), "nr", {specs[0].spec_id: 0.1})
+    assert not rest
+    design = blocks[0].designs[0]
+    worker, year = design.term_codes[("nr",)], design.term_codes[("year",)]
+    rng = np.random.default_rng(11)
+    found = {True: 0, False: 0}
+    for trial in range(300):
+        copies = draw_levels(codes, len(levels), np.random.default_rng([3, trial])).counts[design.levels]
+        drawn = np.flatnonzero(copies > 0)
+        few = rng.choice(np.unique(worker[drawn]), size=int(rng.integers(1, 6)), replace=False)
+        keep = drawn[np.isin(worker[drawn], few) & (rng.random(len(drawn)) < rng.uniform(0.05, 0.9))]
+        if not len(keep):
+            continue
+        reps = copies[keep]
+        copy_of = np.concatenate([np.arange(r) for r in reps])  # the copy each stacked row belongs to
+        stacked = {("nr",): worker[keep].repeat(reps) * 10 + copy_of, ("year",): year[keep].repeat(reps)}
+        stacked = {g: np.unique(c, return_inverse=True)[1] for g, c in stacked.items()}
+        terms = grid.block_settings(specs[0]).absorb
+        expected = not drop_singletons(pd.DataFrame(index=range(int(reps.sum()))), terms,
+                                       codes_of=stacked.__getitem__).all()
+        assert design._copies_leave_singletons(copies, keep) == expected, trial
+        found[expected] += 1
+    assert min(found.values()) > 20  # both answers were met

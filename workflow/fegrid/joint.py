@@ -164,7 +164,7 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
             masks[skey] = mask
         return masks[skey]
 
-    blocks, stacked = (prepare_blocks(grid, frame, specs, codes, len(levels), column) if reweight
+    blocks, stacked = (prepare_blocks(grid, frame, specs, codes, len(levels), column, observed) if reweight
                        else ([], list(specs)))
     by_block: dict[str, list[Spec]] = {}
     for spec in stacked:
@@ -179,7 +179,7 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
             if got is None:
                 todo.append(block.specs)
             else:
-                rows.extend({"draw": d, **r, "imposed": False} for r in got)
+                rows.extend({"draw": d, **r} for r in got)
         for block in todo:
             skey = repr(block[0].sample.canonical())
             if skey not in samples:

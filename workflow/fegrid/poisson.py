@@ -34,15 +34,16 @@ import pandas as pd
 
 from .absorb import Absorber, CodesOf, LevelCodes, Term, codes_on_rows, drop_singletons, float_columns
 
-__all__ = ["separated_rows", "PoissonFit", "irls"]
+__all__ = ["separated_rows", "zero_group_rows", "positives_span_everything", "PoissonFit", "irls"]
 
 #: The weight that pins the positive outcomes in the rectifier's regressions.
 _PIN = 1e8
 
 
-def _zero_groups(frame: pd.DataFrame, y: np.ndarray, terms: Sequence[Term], codes_of: CodesOf) -> np.ndarray:
-    """Rows whose group, in some absorbed term, has an outcome of zero throughout."""
-    out = np.zeros(len(frame), dtype=bool)
+def zero_group_rows(y: np.ndarray, terms: Sequence[Term], codes_of: CodesOf) -> np.ndarray:
+    """Rows whose group, in some absorbed term, has an outcome of zero throughout (``codes_of`` gives the
+    terms' codes on the rows of ``y``)."""
+    out = np.zeros(len(y), dtype=bool)
     for term in terms:
         codes = codes_of(term.groups)
         totals = np.bincount(codes, y, minlength=int(codes.max()) + 1 if len(codes) else 0)
@@ -63,7 +64,7 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
         idx = np.flatnonzero(keep)
         sub = frame.iloc[idx]
         on_sub = codes_on_rows(codes_of, idx)
-        drop = _zero_groups(sub, y[idx], terms, on_sub) if terms else np.zeros(len(idx), dtype=bool)
+        drop = zero_group_rows(y[idx], terms, on_sub) if terms else np.zeros(len(idx), dtype=bool)
         if terms and not keep_singletons:
             drop |= ~drop_singletons(sub, terms, codes_of=on_sub) if (~drop).all() else np.zeros(len(idx), dtype=bool)
         if not drop.any():
@@ -78,8 +79,9 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
     sub = frame.iloc[idx]
     x = float_columns(sub, regressors)
     on_sub = codes_on_rows(codes_of, idx)
-    if _positives_span_everything(sub, zeros, x, terms, time=time, tolerance=tolerance,
-                                  max_iterations=max_iterations, codes_of=on_sub):
+    time_values = sub[time].to_numpy(dtype=float) if time and time in sub else None
+    if positives_span_everything(zeros, x, terms, time=time, time_values=time_values, tolerance=tolerance,
+                                 max_iterations=max_iterations, codes_of=on_sub):
         return keep
     w = np.where(zeros, 1.0, _PIN)
     absorber = Absorber(sub, terms, weights=w, time=time, tolerance=min(tolerance, 1e-12),
@@ -104,20 +106,25 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
     return keep  # no verdict in 100 steps: nothing is dropped (the fit's convergence says the rest)
 
 
-def _positives_span_everything(frame: pd.DataFrame, zeros: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
-                               time: str | None, tolerance: float, max_iterations: int, codes_of: CodesOf) -> bool:
+def positives_span_everything(zeros: np.ndarray, x: np.ndarray, terms: Sequence[Term], *, time: str | None,
+                              time_values: np.ndarray | None, tolerance: float, max_iterations: int,
+                              codes_of: CodesOf) -> bool:
     """A sufficient condition for no separation, cheap to check: the regressors and effects have
     the same rank on the positive outcomes as on all rows. A separating combination vanishes on the
     positives and not on some zero, so it cannot exist then. Exact for at most two categorical
-    terms (their rank is counted exactly); otherwise ``False`` (the rectifier decides)."""
+    terms (their rank is counted exactly); otherwise ``False`` (the rectifier decides). ``zeros``
+    marks the rows with a zero outcome, ``x`` holds the regressors, ``codes_of`` the terms' codes and
+    ``time_values`` the time column on the same rows."""
     if len(terms) > 2:
         return False
-    pos = frame.iloc[np.flatnonzero(~zeros)]
-    if len(pos) <= x.shape[1]:
+    positive = np.flatnonzero(~zeros)
+    if len(positive) <= x.shape[1]:
         return False
-    everything = Absorber(frame, terms, time=time, codes_of=codes_of)
-    positives = Absorber(pos, terms, time=time, tolerance=tolerance, max_iterations=max_iterations,
-                         codes_of=codes_on_rows(codes_of, np.flatnonzero(~zeros)))
+    everything = Absorber(len(zeros), terms, time=time, time_values=time_values, codes_of=codes_of)
+    positives = Absorber(len(positive), terms, time=time,
+                         time_values=None if time_values is None else time_values[positive],
+                         tolerance=tolerance, max_iterations=max_iterations,
+                         codes_of=codes_on_rows(codes_of, positive))
     if positives.absorbed_df != everything.absorbed_df:
         return False
     xp = positives.demean(x[~zeros]).values
@@ -146,10 +153,11 @@ def _deviance(y: np.ndarray, mu: np.ndarray, w: np.ndarray) -> float:
     return float(2 * np.dot(w, term))
 
 
-def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term], *, weights: np.ndarray | None,
-         time: str | None, tolerance: float, max_iterations: int, codes_of: LevelCodes,
-         max_steps: int = 200) -> PoissonFit:
-    """Poisson PML of ``y`` on ``x`` (n, k) with the absorbed ``terms`` (see the module docstring).
+def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
+         weights: np.ndarray | None, time: str | None, tolerance: float, max_iterations: int, codes_of: CodesOf,
+         max_steps: int = 200, time_values: np.ndarray | None = None) -> PoissonFit:
+    """Poisson PML of ``y`` on ``x`` (n, k) with the absorbed ``terms`` (see the module docstring); ``frame``
+    and ``time_values`` as for :class:`fegrid.absorb.Absorber`.
 
     Converged when the deviance changes by less than ``1e-10`` relatively (Correia, Guimarães &
     Zylkin 2020 use ``1e-8``); the demeaning of each step is held to ``tolerance``.
@@ -167,7 +175,7 @@ def irls(frame: pd.DataFrame, y: np.ndarray, x: np.ndarray, terms: Sequence[Term
     xt = x
     omega = w_user * mu
     absorber = Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
-                        max_iterations=max_iterations, codes_of=codes_of)
+                        max_iterations=max_iterations, codes_of=codes_of, time_values=time_values)
     while steps < max_steps:
         steps += 1
         z = eta + (y - mu) / mu

@@ -1,4 +1,5 @@
-"""Least-squares (and 2SLS) refits of the joint tests' draws as reweightings of the data, without a copied panel.
+"""Least-squares, 2SLS and Poisson PML refits of the joint tests' draws as reweightings of the data, without a
+copied panel.
 
 A draw of :func:`fegrid.joint.draw_levels` takes ``c_l`` copies of every level ``l`` of the
 resampling column; the stacked panel gives each copy its own unit (and resampling-level) labels.
@@ -26,32 +27,37 @@ identification decision (absorbed or collinear regressor) near its threshold; a 
 column. Two-stage least squares is refitted the same way, from the same cross products (its
 instruments are more columns of the design), with the engine's identification rules: an instrument
 absorbed by the effects, collinear with the controls or also a control is dropped, too few left or a
-rank-deficient first stage leave the specification not identified in that draw. Specifications of
-the other methods (Poisson PML, staggered adoption) always take the stacked path. The results equal
-the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
+rank-deficient first stage leave the specification not identified in that draw. Poisson PML (under
+its imposed null) is fitted on the drawn rows with their copies as frequency weights, by the engine's
+own iterations (:func:`fegrid.poisson.irls`), then its scores are laid out on the stacked rows like
+least squares'; the rules it meets first (zero groups, separation, regressors left constant) follow
+the engine's, and a draw they could decide differently takes the stacked refit (see
+:meth:`_Design._poisson`). Staggered-adoption specifications always take the stacked path. The
+results equal the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
 
-from .absorb import Absorber, LevelCodes, _nested, drop_singletons
+from .absorb import Absorber, LevelCodes, _nested, codes_on_rows, drop_singletons
 from .covariance import FitPieces, covariance_kind
 from .errors import EstimationError, FegridError
 from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
-from .estimators import LEAST_SQUARES, TWO_STAGE
+from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE
 from .grid import Grid, Spec
+from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
 
 __all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "REWEIGHTED_METHODS", "ReweightedBlock", "prepare_blocks"]
 
 #: The estimation methods whose draws are refitted as reweightings (the others take the stacked copies).
-REWEIGHTED_METHODS = (LEAST_SQUARES, TWO_STAGE)
+REWEIGHTED_METHODS = (LEAST_SQUARES, TWO_STAGE, POISSON)
 
 #: Most dummy columns of the non-nested absorbed terms a design partials out per draw.
 MAX_DUMMIES = 64
@@ -86,9 +92,12 @@ def draw_levels(codes: np.ndarray, n_levels: int, rng: np.random.Generator) -> D
     return Draw(np.bincount(picks, minlength=n_levels), rows, np.repeat(np.arange(n_levels), lengths), picks)
 
 
-def fast_specs(specs: Sequence[Spec]) -> tuple[list[Spec], list[Spec]]:
-    """The specifications a reweighting can refit (least squares and 2SLS) and the others."""
-    fast = [s for s in specs if s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None]
+def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = None) -> tuple[list[Spec], list[Spec]]:
+    """The specifications a reweighting can refit (least squares, 2SLS, and Poisson PML with its observed
+    estimate in ``observed``, whose null the draws impose) and the others."""
+    observed = observed or {}
+    fast = [s for s in specs if s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
+            and (s.estimator.method != POISSON or s.spec_id in observed)]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
 
@@ -96,7 +105,8 @@ def fast_specs(specs: Sequence[Spec]) -> tuple[list[Spec], list[Spec]]:
 class _Fit(NamedTuple):
     """One regression of a draw: the kept columns (focal first; empty when the focal regressor is not
     identified in this draw), ``B``, the coefficients, residuals ``e``, the focal row ``h`` of the
-    estimator's ``B X'`` and the scores' regressors (``X``, or the fitted ``PX`` of 2SLS)."""
+    estimator's ``B X'`` and the scores' regressors (``X``, or the fitted ``PX`` of 2SLS), on the draw's
+    stacked rows; a Poisson fit that leaves some rows out brings the absorber and codes of the rest."""
 
     idx: list[int]
     bread: np.ndarray
@@ -104,6 +114,8 @@ class _Fit(NamedTuple):
     e: np.ndarray
     h: np.ndarray
     regressors: np.ndarray
+    absorber: Absorber | None = None
+    codes: dict[tuple[str, ...], np.ndarray] | None = None
 
 
 _NOT_IDENTIFIED = _Fit([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
@@ -142,7 +154,8 @@ class _Design:
     """One complete-case group of a block's least-squares and 2SLS specifications, prepared once."""
 
     def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
-                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str]) -> None:
+                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str],
+                 observed: Mapping[str, float]) -> None:
         self.specs = specs
         self.settings = settings
         self.n_frame = len(frame)
@@ -185,6 +198,10 @@ class _Design:
         if not np.all(np.isfinite(raw)) or not np.all(np.isfinite(raw @ np.ones(raw.shape[1]))):
             raise _Unsupported("infinite values")
         self.raw = raw
+        # Poisson PML: each specification's outcome with its null imposed (the stacked path's column, row by row)
+        self.null = {s.spec_id: raw[:, self.pos[s.outcome]] * np.exp(-observed[s.spec_id] * raw[:, self.pos[s.focal]])
+                     for s in specs if s.estimator.method == POISSON}
+        self.term_codes = {t.groups: codes(t.groups) for t in settings.absorb}
         self.raw_centred = raw - raw.mean(axis=0)
         self.raw_squared = self.raw_centred**2
         self.raw_scale = 1.0 + np.max(np.abs(self.raw_centred), axis=0)
@@ -209,7 +226,6 @@ class _Design:
         # with many dummy columns, each draw demeans the drawn rows, weighted by their copies, instead
         self.reweighted = d is None
         if self.reweighted:
-            self.term_codes = {t.groups: codes(t.groups) for t in settings.absorb}
             self.within = self.dummies = np.zeros((len(rows), 0))
         else:
             both = np.asfortranarray(np.hstack([raw, d]))
@@ -302,15 +318,24 @@ class _Design:
             est = spec.estimator
             key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
             if key not in fits:  # one regression, whatever the covariance choice
-                fits[key] = (self._two_stage(spec, z, gram, norm, raw_norm) if est.method == TWO_STAGE
-                             else self._regression(spec, z, gram, norm, raw_norm))
+                if est.method == POISSON:
+                    fits[key] = self._poisson(spec, z, gram, norm, raw_norm, draw, rows, position, codes)
+                elif est.method == TWO_STAGE:
+                    fits[key] = self._two_stage(spec, z, gram, norm, raw_norm)
+                else:
+                    fits[key] = self._regression(spec, z, gram, norm, raw_norm)
                 if fits[key] is None:
                     return None
             by = spec.inference.by
-            if by not in nested:
-                nested[by] = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
             fit = fits[key]
             assert fit is not None
+            if fit.absorber is not None:  # a Poisson fit on fewer rows: its own absorber and codes
+                assert fit.codes is not None
+                own = fit.absorber.nested_df([fit.codes[d] for d in by]) if by and self.settings.absorb else 0
+                out.append(self._inference(spec, fit, fit.absorber, own, fit.codes))
+                continue
+            if by not in nested:
+                nested[by] = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
             out.append(self._inference(spec, fit, absorber, nested[by], codes))
         return out
 
@@ -426,6 +451,96 @@ class _Design:
         fitted = z[:, iw] @ pi
         return _Fit(ix, bread, beta, z[:, y] - z[:, ix] @ beta, fitted @ bread[:, 0], fitted)
 
+    def _poisson(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
+                 draw: Draw, rows: np.ndarray, position: np.ndarray, codes: dict[tuple[str, ...], np.ndarray]
+                 ) -> _Fit | None:
+        """Poisson PML on the draw (its null imposed), fitted on the drawn rows weighted by their copies:
+        the stacked copies of a row have the same outcome, regressors and effects, so their score
+        equations are the row's times its copies. The engine's rules are followed in the same order
+        (:func:`fegrid.estimate._fit_poisson`): the regressors' identification on the design's rows,
+        effect groups whose outcome is zero throughout, separated observations, regressors the dropped
+        rows leave constant within the effects. ``None`` (the stacked refit) when a decision is near its
+        threshold, when dropped rows leave a singleton among the copies, when the cheap certificate of
+        no separation (:func:`fegrid.poisson.positives_span_everything`) does not hold on the drawn rows
+        (without it the engine runs the rectifier), or when the fit does not converge. A separating
+        combination on the copies, averaged over each row's copies, would separate the drawn rows: so
+        the certificate on the drawn rows rules separation out on the copies too."""
+        kept = self._kept_controls(spec.controls, norm, raw_norm, gram)
+        if kept is None:
+            return None
+        j = self.pos[spec.focal]
+        identified = self._focal_identified(j, kept, norm, raw_norm, gram)
+        if not identified:
+            return None if identified is None else _NOT_IDENTIFIED
+        s = self.settings
+        copies = draw.counts[self.levels]
+        drawn = np.flatnonzero(copies > 0)
+        y = self.null[spec.spec_id][drawn]
+        if not np.all(np.isfinite(y)) or bool((y < 0).any()):
+            return None
+        term_codes = self.term_codes.__getitem__
+        zero = zero_group_rows(y, s.absorb, codes_on_rows(term_codes, drawn)) if s.absorb else np.zeros(len(y), bool)
+        keep = drawn[~zero]
+        y = y[~zero]
+        if not (y > 0).any() or (zero.any() and not s.keep_singletons and self._copies_leave_singletons(copies, keep)):
+            return None
+        c = copies[keep].astype(float)
+        w_user = self.w[keep]
+        on_keep = codes_on_rows(term_codes, keep)
+        time = s.time if self.time is not None else None
+        time_values = self.time[keep] if self.time is not None else None
+        idx = [j, *kept]
+        x = np.asfortranarray(self.raw[np.ix_(keep, idx)])
+        zeros = y == 0
+        if zeros.any() and not positives_span_everything(zeros, x, s.absorb, time=time, time_values=time_values,
+                                                         tolerance=s.tolerance, max_iterations=s.max_iterations,
+                                                         codes_of=on_keep):
+            return None
+        # regressors that the dropped rows leave constant within the effects are dropped (norms over the copies)
+        check = Absorber(len(keep), s.absorb, weights=c * w_user, time=time, time_values=time_values,
+                         tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep).demean(x).values
+        spread = x - (c @ x) / c.sum()
+        ratio = np.sqrt(c @ (check * check)) / np.maximum(np.sqrt(c @ (spread * spread)), 1e-300)
+        if np.any((ratio > self.ident_tol / MARGIN) & (ratio < self.ident_tol * MARGIN)):
+            return None
+        flat = ratio <= self.ident_tol
+        if flat[0]:
+            return _NOT_IDENTIFIED
+        fit = irls(len(keep), y, x[:, ~flat], s.absorb, weights=c * w_user, time=time, time_values=time_values,
+                   tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep)
+        if not fit.converged:
+            return None
+        xs = fit.demeaned * np.sqrt(w_user * fit.mu)[:, None]
+        e = (y - fit.mu) * np.sqrt(w_user) / np.sqrt(fit.mu)
+        try:
+            bread = np.linalg.inv(xs.T @ (xs * c[:, None]))
+        except np.linalg.LinAlgError:
+            return None
+        # on the stacked rows: each copy of a kept row
+        where = np.full(len(self.levels), -1, dtype=np.int64)
+        where[keep] = np.arange(len(keep))
+        k = where[rows]
+        on = k >= 0
+        xs_s = np.asfortranarray(xs[k[on]])
+        cols = [i for i, f in zip(idx, flat) if not f]
+        if on.all():
+            return _Fit(cols, bread, fit.coefficients, e[k], xs_s @ bread[:, 0], xs_s)
+        kept_codes = {g: _dense(c_[on], int(c_.max()) + 1) for g, c_ in codes.items()}
+        absorber = Absorber(int(on.sum()), s.absorb, weights=self.w[rows[on]] if s.weights else None, time=time,
+                            time_values=self.time[rows[on]] if self.time is not None else None,
+                            codes_of=kept_codes.__getitem__)
+        return _Fit(cols, bread, fit.coefficients, e[k[on]], xs_s @ bread[:, 0], xs_s, absorber, kept_codes)
+
+    def _copies_leave_singletons(self, copies: np.ndarray, keep: np.ndarray) -> bool:
+        """Whether the copies of the design's rows ``keep`` hold an effect level with one row (a copied
+        term's level has its row's count in each copy; a shared term's, the sum over the copies)."""
+        for term in self.settings.absorb:
+            codes = self.term_codes[term.groups][keep]
+            counts = np.bincount(codes, None if self.dims[term.groups].copied else copies[keep])
+            if np.any(counts == 1):
+                return True
+        return False
+
     def _inference(self, spec: Spec, fit: _Fit, absorber: Absorber, nested_df: int,
                    codes: dict[tuple[str, ...], np.ndarray]) -> tuple[str, float, float, float]:
         """One covariance choice of a regression, by the engine's covariance kind."""
@@ -454,11 +569,12 @@ class ReweightedBlock:
     once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the stacked refit."""
 
     def __init__(self, grid: Grid, frame: pd.DataFrame, specs: list[Spec], levels: np.ndarray, n_levels: int,
-                 column: str) -> None:
+                 column: str, observed: Mapping[str, float]) -> None:
         self.specs = specs
         settings = grid.block_settings(specs[0])
         positions = sample_rows(frame, specs[0].sample, grid.panel)
         self.levels_in_sample = np.unique(levels[positions])
+        self.imposed = {s.spec_id for s in specs if s.estimator.method == POISSON}  # rows fitted under a null
         part = frame.iloc[positions]
         groups: dict[bytes, tuple[np.ndarray, list[Spec]]] = {}
         notna: dict[str, np.ndarray] = {}
@@ -470,7 +586,7 @@ class ReweightedBlock:
                 mask &= notna[col]
             groups.setdefault(np.packbits(mask).tobytes(), (mask, []))[1].append(spec)
         copied = {grid.panel.unit, column}
-        self.designs = [_Design(frame, positions, mask, members, settings, levels, n_levels, copied)
+        self.designs = [_Design(frame, positions, mask, members, settings, levels, n_levels, copied, observed)
                         for mask, members in groups.values() if mask.any()]
         if len(self.designs) != len(groups):
             raise _Unsupported("a design without rows")
@@ -483,21 +599,25 @@ class ReweightedBlock:
             got = design.refit(draw)
             if got is None:
                 return None
-            rows.extend({"spec_id": s, "estimate": b, "std_error": se, "df_inference": df} for s, b, se, df in got)
+            rows.extend({"spec_id": s, "estimate": b, "std_error": se, "df_inference": df, "imposed": s in self.imposed}
+                        for s, b, se, df in got)
         return rows
 
 
 def prepare_blocks(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], levels: np.ndarray, n_levels: int,
-                   column: str) -> tuple[list[ReweightedBlock], list[Spec]]:
-    """The blocks that draws can refit by reweighting, and the specifications that take the stacked path."""
-    fast, rest = fast_specs(specs)
+                   column: str, observed: Mapping[str, float] | None = None
+                   ) -> tuple[list[ReweightedBlock], list[Spec]]:
+    """The blocks that draws can refit by reweighting, and the specifications that take the stacked path;
+    ``observed`` holds the Poisson PML specifications' observed estimates (their nulls are imposed)."""
+    observed = observed or {}
+    fast, rest = fast_specs(specs, observed)
     by_block: dict[str, list[Spec]] = {}
     for spec in fast:
         by_block.setdefault(spec.block_key, []).append(spec)
     blocks: list[ReweightedBlock] = []
     for key in sorted(by_block):
         try:
-            blocks.append(ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column))
+            blocks.append(ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column, observed))
         except (_Unsupported, FegridError, np.linalg.LinAlgError):
             rest.extend(by_block[key])
     return blocks, rest

@@ -1184,7 +1184,8 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
         codes = [design.codes_of(t.columns) for t in s.absorb]  # type: ignore[union-attr]
         x = design.frame[list(spec.controls)].to_numpy(dtype=float) if spec.controls else np.zeros((len(y), 0))
         try:
-            pieces = imputation_pieces(y, cohorts, codes, x, options, pretrend=design.diagnostics)
+            pieces = imputation_pieces(y, cohorts, codes, x, options, pretrend=design.diagnostics,
+                                       per_period=design.diagnostics)
         except ValueError as exc:
             return refuse(str(exc))
         return _LinearPieces(pieces.with_clusters)

@@ -6,11 +6,11 @@ samples are drawn (the same draw for every specification; whole units or cluster
 replacement, never rows, and a unit drawn twice enters as two units); a draw's sample is the copies of
 the sample's rows in the data; the whole grid is refitted on each draw. Because least squares and
 2SLS are linear in ``y``, the estimate on ``y*_k`` is the draw's ordinary estimate less ``b_k``,
-with the same residuals, so each draw is one ordinary refit of the grid (for least squares, a
-reweighting of the data already demeaned: :mod:`fegrid.reweight`). Poisson PML is not linear in
+with the same residuals, so each draw is one ordinary refit of the grid (for least squares and 2SLS,
+a reweighting of the data already demeaned: :mod:`fegrid.reweight`). Poisson PML is not linear in
 ``y``: its null is imposed multiplicatively, ``y*_k = y exp(-b_k x)`` (whose conditional mean no
 longer depends on ``x``), and each draw refits the specification on ``y*_k`` (the draw's rows are
-marked ``imposed``).
+marked ``imposed``), on the drawn rows weighted by their copies.
 
 Three statistics of the curve are compared with their bootstrap distributions under the null,
 each curve (observed or drawn) read in its own dominant direction, the sign of its median:
@@ -133,9 +133,9 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                 seed: int, column: str, reweight: bool = True) -> pd.DataFrame:
     """Refit ``specs`` on each bootstrap draw; one row per draw and specification.
 
-    Least-squares specifications are refitted as reweightings of the data (:mod:`fegrid.reweight`)
-    unless ``reweight`` is false; the others, and any block of a draw the reweighting leaves, are
-    refitted on the draw's stacked panel.
+    Least-squares, 2SLS and Poisson PML specifications are refitted as reweightings of the data
+    (:mod:`fegrid.reweight`) unless ``reweight`` is false; the others (staggered adoption), and any
+    block of a draw the reweighting leaves, are refitted on the draw's stacked panel.
     """
     rows: list[dict[str, Any]] = []
     all_blocks: dict[str, list[Spec]] = {}

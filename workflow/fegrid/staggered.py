@@ -559,7 +559,7 @@ def imputation(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndarray], c
 
 
 def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndarray], controls: np.ndarray,
-                      options: StaggeredOptions, *, pretrend: bool = True) -> ImputationPieces:
+                      options: StaggeredOptions, *, pretrend: bool = True, per_period: bool = True) -> ImputationPieces:
     """Borusyak, Jaravel & Spiess (2024): the average effect on the treated observations (and on those of
     each relative period of the window, not binned) from counterfactuals imputed with the absorbed
     effects and controls fitted on the untreated observations only.
@@ -569,7 +569,9 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     ``sum_i v_i y_i`` with ``v`` the treated observations' averaging weights and, on untreated
     observations, ``-Z_0 (Z_0'Z_0)^- Z_1' v_1``; residuals are the untreated fit's on untreated
     observations and the imputed effect less its cohort x relative-period mean on treated ones.
-    ``pretrend``: also prepare their test of parallel trends (the joint tests' draws leave it out).
+    ``pretrend``: also prepare their test of parallel trends; ``per_period``: also the estimates of each
+    relative period (the joint tests' draws, which read the overall estimate, leave both out: the same
+    overall estimate and variance, whose weights ``v`` are solved for column by column).
     """
     treated = design.treated
     untreated = ~treated
@@ -599,7 +601,7 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     rel = design.relative[rows1]
     # averaging weights of each reported estimate on the treated rows
     names, weights = ["overall"], [np.full(len(rows1), 1 / max(len(rows1), 1))]
-    for k in range(0, options.last + 1):
+    for k in range(0, options.last + 1) if per_period else ():
         at = rel == k
         if at.any():
             names.append(term_of("rel", k))

@@ -396,18 +396,25 @@ class _Design:
             return None
         return not absorbed
 
-    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
-                    ) -> _Fit | None:
-        """Least squares on the draw (not identified: the focal regressor is absorbed in this draw);
-        ``None`` when a decision is near its threshold."""
+    def _regressors(self, spec: Spec, norm: np.ndarray, raw_norm: np.ndarray, gram: np.ndarray) -> list[int] | None:
+        """The columns a regression keeps on the draw, focal first (empty when the focal regressor is not
+        identified in this draw); ``None`` when a decision is near its threshold."""
         kept = self._kept_controls(spec.controls, norm, raw_norm, gram)
         if kept is None:
             return None
         j = self.pos[spec.focal]
         identified = self._focal_identified(j, kept, norm, raw_norm, gram)
-        if not identified:
-            return None if identified is None else _NOT_IDENTIFIED
-        idx = [j, *kept]
+        if identified is None:
+            return None
+        return [j, *kept] if identified else []
+
+    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
+                    ) -> _Fit | None:
+        """Least squares on the draw (not identified: the focal regressor is absorbed in this draw);
+        ``None`` when a decision is near its threshold."""
+        idx = self._regressors(spec, norm, raw_norm, gram)
+        if not idx:
+            return None if idx is None else _NOT_IDENTIFIED
         y = self.pos[spec.outcome]
         bread = np.linalg.inv(gram[np.ix_(idx, idx)])
         beta = bread @ gram[idx, y]
@@ -465,13 +472,9 @@ class _Design:
         (without it the engine runs the rectifier), or when the fit does not converge. A separating
         combination on the copies, averaged over each row's copies, would separate the drawn rows: so
         the certificate on the drawn rows rules separation out on the copies too."""
-        kept = self._kept_controls(spec.controls, norm, raw_norm, gram)
-        if kept is None:
-            return None
-        j = self.pos[spec.focal]
-        identified = self._focal_identified(j, kept, norm, raw_norm, gram)
-        if not identified:
-            return None if identified is None else _NOT_IDENTIFIED
+        idx = self._regressors(spec, norm, raw_norm, gram)
+        if not idx:
+            return None if idx is None else _NOT_IDENTIFIED
         s = self.settings
         copies = draw.counts[self.levels]
         drawn = np.flatnonzero(copies > 0)
@@ -489,7 +492,6 @@ class _Design:
         on_keep = codes_on_rows(term_codes, keep)
         time = s.time if self.time is not None else None
         time_values = self.time[keep] if self.time is not None else None
-        idx = [j, *kept]
         x = np.asfortranarray(self.raw[np.ix_(keep, idx)])
         zeros = y == 0
         if zeros.any() and not positives_span_everything(zeros, x, s.absorb, time=time, time_values=time_values,

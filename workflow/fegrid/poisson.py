@@ -72,13 +72,11 @@ def separated_rows(frame: pd.DataFrame, y: np.ndarray, regressors: Sequence[str]
         keep[idx[drop]] = False
         if not keep.any():
             return keep
-    idx = np.flatnonzero(keep)
+    # the loop ended on the rows kept: idx, sub and their codes are theirs
     zeros = y[idx] == 0
     if not zeros.any() or not regressors:
         return keep
-    sub = frame.iloc[idx]
     x = float_columns(sub, regressors)
-    on_sub = codes_on_rows(codes_of, idx)
     time_values = sub[time].to_numpy(dtype=float) if time and time in sub else None
     if positives_span_everything(zeros, x, terms, time=time, time_values=time_values, tolerance=tolerance,
                                  max_iterations=max_iterations, codes_of=on_sub):

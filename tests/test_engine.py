@@ -559,6 +559,47 @@ def test_batched_pseudo_inverses_are_the_one_at_a_time_bytes() -> None:
         assert np.array_equal(_pinv(g), got)
 
 
+@pytest.mark.parametrize("trend", [False, True])
+def test_direct_solver_fills_its_systems_by_counting_cell_pairs_with_the_sparse_products_bytes(
+        trend: bool, monkeypatch) -> None:
+    """The two-term direct solver (units, and period effects within regions: one system per region) fills
+    each region's system from the products of pairs of a unit's cells, summed group after group as the
+    sparse matrix product sums them: the same bytes as the sparse product (the fallback for too many
+    pairs), weighted and reweighted; a reweighted absorber (a Poisson step) reuses the cells and pairs."""
+    from fegrid import absorb
+
+    rng = np.random.default_rng(5)
+    n_units, n_regions, n_periods = 400, 25, 9
+    unit = np.repeat(np.arange(n_units), n_periods)
+    period = np.tile(np.arange(n_periods), n_units)
+    keep = rng.random(len(unit)) < 0.85
+    unit, period = np.unique(unit[keep], return_inverse=True)[1], period[keep]
+    region_period = np.unique((unit % n_regions) * n_periods + period, return_inverse=True)[1]
+    codes = {("unit",): unit, ("region_period",): region_period}
+    terms = (TrendTerm("unit") if trend else EffectTerm(("unit",)), EffectTerm(("region_period",)))
+    x = rng.normal(size=(len(unit), 3)) + period[:, None] * 0.2
+    w = rng.uniform(0.5, 2.0, len(unit))
+
+    def demeaned() -> list[np.ndarray]:
+        a = Absorber(len(unit), terms, weights=w, time="period", time_values=period.astype(float),
+                     tolerance=1e-12, max_iterations=2000, codes_of=codes.__getitem__)
+        assert a._direct_setup is not None and not a._direct_layout.dense  # one system per region
+        b = a.reweighted(rng.uniform(0.5, 1.5, len(unit)))
+        assert b._direct_layout is a._direct_layout
+        used.append(a._direct_layout.pair_entry is not None)
+        return [a.demean(x).values, b.demean(x).values, a._direct.apply(np.asfortranarray(x))]
+
+    used: list[bool] = []
+    state = rng.bit_generator.state
+    by_pairs = demeaned()
+    rng.bit_generator.state = state
+    monkeypatch.setattr(absorb, "MAX_PAIRS", 0)  # the sparse product
+    by_product = demeaned()
+    assert used == [True, False]
+    for got, expected in zip(by_pairs, by_product):
+        assert got.tobytes() == expected.tobytes()
+
+
 def test_codes_on_a_subset_equal_a_factorization_of_the_subset(wage_panel: pd.DataFrame) -> None:
     """Source: factorize on the subset itself (pandas.factorize(sort=True) underneath). A Poisson fit
     renumbers its design's codes on the rows it keeps instead of factorizing them again."""

@@ -207,8 +207,13 @@ def test_draws_of_2sls_and_poisson_pml_equal_brute_force_refits_under_the_impose
             else:
                 ref = fit_one(boot, spec.outcome, "x", estimator=spec.estimator, **settings)
                 assert not bool(row["imposed"])
-            assert row["estimate"] == pytest.approx(ref.estimate, rel=1e-9, abs=1e-12)
-            assert row["std_error"] == pytest.approx(ref.std_error, rel=1e-9)
+            if spec.estimator.method == "poisson_pml":  # both to the iterations' precision (the draw starts
+                # from the design's own fit, the reference from its outcome): 1e-8 of the SE near zero
+                assert row["estimate"] == pytest.approx(ref.estimate, rel=1e-8, abs=1e-8 * ref.std_error)
+                assert row["std_error"] == pytest.approx(ref.std_error, rel=1e-8)
+            else:
+                assert row["estimate"] == pytest.approx(ref.estimate, rel=1e-9, abs=1e-12)
+                assert row["std_error"] == pytest.approx(ref.std_error, rel=1e-9)
     tests = joint_tests(ledger, draws, 0.95)
     assert sorted(tests["curve"].unique()) == ["least_squares", "poisson_pml", "two_stage_least_squares"]
     assert (tests["draws"] == 3).all()

@@ -133,9 +133,11 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
                                                             monkeypatch) -> None:
     """Poisson PML draws fitted on the drawn rows weighted by their copies equal the stacked refits
     (linearmodels' wage_panel; the reference is the stacked path, as above): estimates and SEs to 1e-8
-    relative (both iterate to the same convergence rule from the same start), df exactly, every draw
-    under the imposed null. Union membership as the outcome has workers never in a union (effect groups
-    with a zero outcome throughout, dropped: the inference then runs on fewer rows than the draw's),
+    relative, or of the SE for an estimate near zero (both iterate to the same convergence rule: the
+    draws from the design's own fit under the null, the stacked refits from their outcome), df exactly,
+    every draw under the imposed null. Union membership as the outcome has workers never in a union
+    (effect groups with a zero outcome throughout, dropped: the inference then runs on fewer rows than
+    the draw's),
     zeros elsewhere (the certificate of no separation), weights, singletons, every covariance kind."""
     from fegrid import reweight
 
@@ -165,18 +167,87 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
         KEY, ignore_index=True)
     pd.testing.assert_frame_equal(fast[[*KEY, "imposed"]], slow[[*KEY, "imposed"]])
     assert fast["imposed"].all()
+    se = slow["std_error"].to_numpy()
     for col in ("estimate", "std_error"):
         a, b = fast[col].to_numpy(), slow[col].to_numpy()
         assert np.array_equal(np.isnan(a), np.isnan(b)), col
         ok = ~np.isnan(b)
         assert ok.mean() > 0.8
-        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-8, atol=1e-12, err_msg=col)
+        # relative to the value, or to the SE for an estimate near zero (the iterations' own precision)
+        assert np.all(np.abs(a[ok] - b[ok]) <= 1e-8 * np.maximum(np.abs(b[ok]), se[ok])), col
     pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
     assert np.mean(made) > 0.9  # the fits were reweightings
+    codes, levels = pd.factorize(frame["nr"], sort=True)
+    observed = {s.spec_id: 0.05 for s in specs}
+    blocks, _ = prepare_blocks(grid, frame, specs, codes, len(levels), "nr", observed)
+    starts = [start for b in blocks for d in b.designs for start in d.start.values()]
+    assert np.mean([start is not None for start in starts]) > 0.9  # they started from the design's fit
 
     ledger = _ledger(grid, frame, specs)
     assert (ledger["status"] == "ok").all()
     assert (ledger["n_separated"] > 0).any() and (ledger["n_singletons"] > 0).any()
+
+
+def test_effects_df_from_the_copies_equal_the_stacked_absorbers(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+    """The absorbed df and nested df that a draw counts from the design's rows and the copies equal those of
+    the engine's :class:`fegrid.absorb.Absorber` built on the draw's stacked rows (linearmodels' wage_panel;
+    resampling workers or groups of workers; unit, shared and relabelled trends, three terms, terms finer
+    than the groups, cluster variables relabelled or shared, weights and singletons)."""
+    from fegrid.absorb import Absorber
+    from fegrid.reweight import _CopiesDf
+
+    frame = wage_panel.assign(group=wage_panel["nr"] % 97, region=wage_panel["nr"] % 7)
+    raw = wage_grid(tmp_path, frame, weights={"unweighted": None, "by_hours": "hours"})
+    raw["clustering"] = {**raw["clustering"], "group": {"kind": "clustered", "by": "group"},
+                         "region_year": {"kind": "two_way_clustered", "by": ["region", "year"]},
+                         "worker_occupation": {"kind": "two_way_clustered", "by": ["nr", "occupation"]}}
+    raw["samples"] = {"all": {}, "long_hours": {"range": {"hours": {"min": 2600}}}}
+    raw["control_sets"] = {"combinations_of": ["expersq"]}
+    raw["absorb"] = {"worker": ["nr"], "worker_year": ["nr", "year"], "pooled": [], "year": ["year"],
+                     "three": ["nr", "year", "occupation"], "occupation_year": ["occupation", "year"],
+                     "worker_trend": [{"trend": "nr"}, "year"], "trend_alone": [{"trend": "nr"}],
+                     "region_trend": [{"trend": "region"}, "nr"], "group_year": ["group x year", "nr"],
+                     "occupation_trend": [{"trend": "occupation"}, "nr", "year"], "group": ["group", "year"]}
+    grid = load_config(raw)
+    specs = grid.expand()
+    checked = 0
+    for column in ("nr", "group"):
+        codes, levels = pd.factorize(frame[column], sort=True)
+        blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), column)
+        assert not rest
+        for design in (d for b in blocks for d in b.designs):
+            by_sets = sorted({s.inference.by for s in design.specs})
+            for d in range(4):
+                draw = draw_levels(codes, len(levels), np.random.default_rng([3, d]))
+                b = design.base_index[draw.rows]
+                rows, position = b[b >= 0], draw.position[b >= 0]
+                stacked = {g: dim.stacked(rows, position, draw.picks) for g, dim in design.dims.items()}
+                absorber = Absorber(len(rows), design.settings.absorb,
+                                    weights=design.w[rows] if design.settings.weights else None,
+                                    time="year", time_values=design.time[rows], codes_of=stacked.__getitem__)
+                expected = {by: absorber.nested_df([stacked[g] for g in by]) if by and design.settings.absorb else 0
+                            for by in by_sets}
+                assert _CopiesDf(design).count(draw, by_sets) == (absorber.absorbed_df, expected)
+                checked += 1
+    assert checked > 300
+
+
+def test_cross_products_per_level_and_row_by_row_give_the_same_draws(tmp_path: Path, wage_panel: pd.DataFrame,
+                                                                      monkeypatch) -> None:
+    """A draw's cross products from the design's sums per resampling level (small designs) equal those summed
+    over its rows on each draw (large designs), and both equal the stacked refits (linearmodels' wage_panel)."""
+    from fegrid import reweight
+
+    grid, specs = _grid(tmp_path, wage_panel)
+    codes, levels = pd.factorize(wage_panel["nr"], sort=True)
+    blocks, _ = prepare_blocks(grid, wage_panel, specs, codes, len(levels), "nr")
+    assert any(d.cross is not None for b in blocks for d in b.designs)
+    per_level = draw_curves(grid, wage_panel, specs, range(3), seed=7, column="nr").sort_values(KEY, ignore_index=True)
+    monkeypatch.setattr(reweight, "MAX_CROSS_CELLS", 0)
+    blocks, _ = prepare_blocks(grid, wage_panel, specs, codes, len(levels), "nr")
+    assert all(d.cross is None for b in blocks for d in b.designs)
+    by_rows = draw_curves(grid, wage_panel, specs, range(3), seed=7, column="nr").sort_values(KEY, ignore_index=True)
+    pd.testing.assert_frame_equal(per_level, by_rows, rtol=1e-9, atol=1e-12)
 
 
 def test_singletons_among_the_copies_are_those_the_stacked_rows_hold(tmp_path: Path, wage_panel: pd.DataFrame) -> None:

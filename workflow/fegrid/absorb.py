@@ -402,6 +402,67 @@ def _pinv_many(grams: Sequence[np.ndarray]) -> list[np.ndarray]:
     return out
 
 
+#: Most pairs of cells (a large-term group's small-term levels, two at a time) that :class:`_TwoTermsLayout`
+#: lists to fill the parts' systems by counting; beyond, a sparse matrix product fills them.
+MAX_PAIRS = 2_000_000
+
+
+class _TwoTermsLayout:
+    """What :class:`_TwoTerms` needs that does not depend on the weights (an iteratively reweighted fit
+    builds a solver per step, on the same rows): the cells (a group of the large term with a level of
+    the small one) that hold rows, each part's block of the small levels, and the pairs of cells of one
+    group, whose products fill those blocks."""
+
+    def __init__(self, large_codes: np.ndarray, n_groups: int, small: np.ndarray, n_small: int,
+                 parts: np.ndarray) -> None:
+        self.n_groups, self.n_small = n_groups, n_small
+        self.dense = bool(parts.max(initial=0) == 0 and n_groups * n_small <= DENSE_CELLS)
+        if self.dense:
+            self.cell_of_row = large_codes * n_small + small
+            return
+        cells = np.unique(large_codes * n_small + small)
+        self.group, self.level = cells // n_small, cells % n_small
+        self.n_cells = len(cells)
+        self.cell_of_row = np.searchsorted(cells, large_codes * n_small + small)
+        n_parts = int(parts.max()) + 1 if len(parts) else 0
+        self.parts = parts
+        self.sizes = np.bincount(parts, minlength=n_parts)
+        self.local = np.empty(n_small, dtype=np.int64)
+        order = np.argsort(parts, kind="stable")
+        self.local[order] = np.arange(n_small) - np.repeat(np.concatenate([[0], np.cumsum(self.sizes)[:-1]]),
+                                                           self.sizes)
+        self.offsets = np.concatenate([[0], np.cumsum(self.sizes * self.sizes)[:-1]])
+        self.n_entries = int((self.sizes * self.sizes).sum())
+        self.members_of = np.split(order, np.cumsum(self.sizes)[:-1])
+        # every pair (a, b) of cells of one group, by group: counting their products into the blocks sums
+        # each entry over the groups in order, as the sparse product does (the same bytes)
+        per_group = np.bincount(self.group, minlength=n_groups)
+        pairs = int((per_group * per_group).sum())
+        self.pair_a = self.pair_b = self.pair_entry = None
+        if pairs <= MAX_PAIRS:
+            first = np.concatenate([[0], np.cumsum(per_group)[:-1]])
+            repeat = per_group[self.group]
+            a = np.repeat(np.arange(self.n_cells), repeat)
+            b = first[self.group[a]] + np.arange(len(a)) - np.repeat(np.cumsum(repeat) - repeat, repeat)
+            self.pair_a, self.pair_b, self.pair_entry = a, b, self.entry(self.level[a], self.level[b])
+        self.diagonal = self.entry(np.arange(n_small), np.arange(n_small))
+
+    def entry(self, t: np.ndarray, s: np.ndarray) -> np.ndarray:
+        """Position of the entry (t, s) of a part's block in the blocks laid end to end."""
+        part = self.parts[t]
+        return self.offsets[part] + self.local[t] * self.sizes[part] + self.local[s]
+
+    def products(self, left: np.ndarray, right: np.ndarray) -> np.ndarray:
+        """The blocks' entries of ``L' R`` for the (groups x small levels) matrices with cell values
+        ``left`` and ``right``."""
+        if self.pair_entry is not None:
+            return np.bincount(self.pair_entry, left[self.pair_a] * right[self.pair_b], minlength=self.n_entries)
+        shape = (self.n_groups, self.n_small)
+        where = (self.group, self.level)
+        product = sp.coo_array(sp.csr_array((left, where), shape=shape).T @ sp.csr_array((right, where), shape=shape))
+        return np.bincount(self.entry(product.row, product.col), product.data, minlength=self.n_entries)
+
+
 class _TwoTerms:
     """Exact residual maker of a large term ``P`` (categorical or trend) and a small categorical term.
 
@@ -413,20 +474,21 @@ class _TwoTerms:
     counts of the levels in group ``g``, ``e_g`` the same weighted by the centred time and ``S_g``
     its sum of squares. The system splits into the connected parts of the graph that links each
     group of ``P`` to the levels it holds (period effects within regions: one part per region),
-    each solved by a pseudo-inverse (its dummies sum to a constant, which ``P`` absorbs).
+    each solved by a pseudo-inverse (its dummies sum to a constant, which ``P`` absorbs). What does
+    not depend on the weights comes from ``layout``, shared by every step of a reweighted fit.
     """
 
     def __init__(self, large: _Projection, small: np.ndarray, n_small: int, w: np.ndarray,
-                 parts: np.ndarray) -> None:
+                 layout: _TwoTermsLayout) -> None:
         self.large = large
         self.small = small
         self.n_small = n_small
         self.w = w
+        self.layout = layout
         n_groups = len(large.inv_wsum)
-        self.slopes: np.ndarray | sp.csr_array | None = None
-        self.shares: np.ndarray | sp.csr_array
-        if parts.max(initial=0) == 0 and n_groups * n_small <= DENSE_CELLS:  # one system: dense tables
-            cells = large.codes * n_small + small
+        self.slopes: np.ndarray | None = None
+        if layout.dense:  # one system: dense tables
+            cells = layout.cell_of_row
             counts = np.bincount(cells, w, minlength=n_groups * n_small).reshape(n_groups, n_small)
             self.shares = counts * large.inv_wsum[:, None]
             gram = np.diag(np.bincount(small, w, minlength=n_small)) - self.shares.T @ counts
@@ -436,32 +498,26 @@ class _TwoTerms:
                 gram -= self.slopes.T @ timed
             self.parts = [(np.arange(n_small), _pinv(gram))]
             return
-        cells = np.unique(large.codes * n_small + small)
-        group, level = cells // n_small, cells % n_small
-        inverse = np.searchsorted(cells, large.codes * n_small + small)
-        counts = np.bincount(inverse, w, minlength=len(cells))
-        shape = (n_groups, n_small)
-        self.shares = sp.csr_array((counts * large.inv_wsum[group], (group, level)), shape=shape)
-        gram = (sp.diags_array(np.bincount(small, w, minlength=n_small))
-                - self.shares.T @ sp.csr_array((counts, (group, level)), shape=shape))
+        # the values of the (groups x small levels) tables on their cells
+        counts = np.bincount(layout.cell_of_row, w, minlength=layout.n_cells)
+        self.shares = counts * large.inv_wsum[layout.group]
+        blocks = np.subtract(0.0, layout.products(self.shares, counts))  # entries without cells stay +0.0
+        blocks[layout.diagonal] += np.bincount(small, w, minlength=n_small)
         if large.slope is not None:
-            timed = np.bincount(inverse, w * large.slope, minlength=len(cells))
-            self.slopes = sp.csr_array((timed * large.inv_ss[group], (group, level)), shape=shape)
-            gram = gram - self.slopes.T @ sp.csr_array((timed, (group, level)), shape=shape)
-        # the dense block of each connected part, filled at once from the sparse matrix's entries
-        gram = sp.coo_array(gram)
-        n_parts = int(parts.max()) + 1 if len(parts) else 0
-        sizes = np.bincount(parts, minlength=n_parts)
-        local = np.empty(n_small, dtype=np.int64)
-        order = np.argsort(parts, kind="stable")
-        local[order] = np.arange(n_small) - np.repeat(np.concatenate([[0], np.cumsum(sizes)[:-1]]), sizes)
-        offsets = np.concatenate([[0], np.cumsum(sizes * sizes)[:-1]])
-        flat = offsets[parts[gram.row]] + local[gram.row] * sizes[parts[gram.row]] + local[gram.col]
-        blocks = np.bincount(flat, gram.data, minlength=int((sizes * sizes).sum()))
-        members_of = np.split(order, np.cumsum(sizes)[:-1])
+            timed = np.bincount(layout.cell_of_row, w * large.slope, minlength=layout.n_cells)
+            self.slopes = timed * large.inv_ss[layout.group]
+            blocks -= layout.products(self.slopes, timed)
+        sizes, offsets = layout.sizes, layout.offsets
         inverses = _pinv_many([blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])
-                               for k in range(n_parts)])
-        self.parts = list(zip(members_of, inverses))
+                               for k in range(len(sizes))])
+        self.parts = list(zip(layout.members_of, inverses))
+
+    def _spread(self, table: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """``table @ g`` on each row's group of the large term (``table`` dense, or its cells' values)."""
+        if self.layout.dense:
+            return (table @ g).take(self.large.codes)
+        layout = self.layout
+        return np.bincount(layout.group, table * g.take(layout.level), minlength=layout.n_groups).take(self.large.codes)
 
     def apply(self, x: np.ndarray) -> np.ndarray:
         """Residuals of the columns of ``x`` (Fortran order) on both terms, column by column (so that
@@ -474,9 +530,9 @@ class _TwoTerms:
             for members, inverse in self.parts:
                 g[members] = inverse @ rhs[members]
             col -= g.take(self.small)
-            col += (self.shares @ g).take(self.large.codes)
+            col += self._spread(self.shares, g)
             if self.slopes is not None:
-                col += (self.slopes @ g).take(self.large.codes) * self.large.slope
+                col += self._spread(self.slopes, g) * self.large.slope
         return xt
 
 
@@ -656,9 +712,19 @@ class Absorber:
         """The direct solver of the two terms, built when first needed."""
         if self._direct_setup is None:
             return None
-        a, b, _, parts = self._direct_setup
+        a, b, _, _ = self._direct_setup
         return _TwoTerms(self._projections[a], self._projections[b].codes, self._nlev[self._active[b]], self.w,
-                         parts)
+                         self._direct_layout)
+
+    @cached_property
+    def _direct_layout(self) -> _TwoTermsLayout:
+        """The direct solver's layout (its cells and blocks), which a reweighted absorber keeps."""
+        assert self._direct_setup is not None
+        a, b, _, parts = self._direct_setup
+        large = self._projections[a]
+        return _TwoTermsLayout(large.codes, len(large.inv_wsum), self._projections[b].codes,
+                               self._nlev[self._active[b]], parts)
+
     @cached_property
     def absorbed_df(self) -> int:
         """Degrees of freedom taken by the absorbed terms (see the Notes); counted when first asked

@@ -153,16 +153,21 @@ def _deviance(y: np.ndarray, mu: np.ndarray, w: np.ndarray) -> float:
 
 def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
          weights: np.ndarray | None, time: str | None, tolerance: float, max_iterations: int, codes_of: CodesOf,
-         max_steps: int = 200, time_values: np.ndarray | None = None) -> PoissonFit:
+         max_steps: int = 200, time_values: np.ndarray | None = None, start: np.ndarray | None = None) -> PoissonFit:
     """Poisson PML of ``y`` on ``x`` (n, k) with the absorbed ``terms`` (see the module docstring); ``frame``
     and ``time_values`` as for :class:`fegrid.absorb.Absorber`.
 
     Converged when the deviance changes by less than ``1e-10`` relatively (Correia, Guimarães &
-    Zylkin 2020 use ``1e-8``); the demeaning of each step is held to ``tolerance``.
+    Zylkin 2020 use ``1e-8``); the demeaning of each step is held to ``tolerance``. The iterations start
+    from the means ``(y + mean(y)) / 2``, or from the linear predictor ``start`` (a fit of nearby data).
     """
     w_user = np.ones(len(y)) if weights is None else weights
-    mu = (y + np.average(y, weights=w_user)) / 2
-    eta = np.log(mu)
+    if start is None:
+        mu = (y + np.average(y, weights=w_user)) / 2
+        eta = np.log(mu)
+    else:
+        eta = np.array(start, dtype=float)
+        mu = np.exp(eta)
     # the starting means are not of the model's form, so their deviance is no benchmark: the
     # first step is taken whole, and step halving guards the later ones
     dev_old = np.inf

@@ -10,15 +10,19 @@ For least squares, the stacked fit is the original rows weighted by their copies
   their residuals are computed once per design, not once per draw;
 * the other absorbed terms (period effects: categorical, with few levels) enter through their
   dummies, made orthogonal to the nested terms once, and are partialled out on each draw from the
-  draw's cross products (with no nested term, the intercept is such a column);
-* each specification's coefficients then come from the draw's rows and small cross products.
+  draw's cross products (with no nested term, the intercept is such a column); too many dummies
+  (region-by-period effects), and each draw demeans the drawn rows, weighted by their copies, instead;
+* each specification's coefficients then come from the draw's small cross products: the rows' cross
+  products summed per resampling level once per design, weighted by the levels' copies on each draw.
 
-Standard errors, degrees of freedom and singletons depend on the copies themselves: each copy is a
-cluster of its own when clustering on the unit or the resampling column, and each copy's effects
-are levels of their own. They are computed on the draw's stacked rows, with codes built from the
-copies' positions, by the engine's own covariance kinds (:mod:`fegrid.covariance`), absorbed-df
-count (:class:`fegrid.absorb.Absorber`) and singleton rule (:func:`fegrid.absorb.drop_singletons`),
-not by new formulas.
+Standard errors and degrees of freedom depend on the copies themselves: each copy is a cluster of its
+own when clustering on the unit or the resampling column, and each copy's effects are levels of their
+own. They are computed on the design's rows with the copies as counts: the engine's covariance formulas
+(:mod:`fegrid.covariance`) with ``N`` the copies' total, a relabelled cluster's sum counted once per
+copy and a shared cluster's sum taken over the copies; the absorbed df and nested df that the engine's
+:class:`fegrid.absorb.Absorber` would count on the stacked rows are read off the copies
+(:class:`_CopiesDf`); the singleton rule is the engine's (:func:`fegrid.absorb.drop_singletons`), on
+the stacked rows' codes when the copies could change its answer.
 
 A draw's sample is the copies of the sample's rows in the data. A block of a draw that meets a case
 this shortcut could get wrong takes the stacked refit instead (:func:`fegrid.joint.draw_curves` does
@@ -29,11 +33,13 @@ instruments are more columns of the design), with the engine's identification ru
 absorbed by the effects, collinear with the controls or also a control is dropped, too few left or a
 rank-deficient first stage leave the specification not identified in that draw. Poisson PML (under
 its imposed null) is fitted on the drawn rows with their copies as frequency weights, by the engine's
-own iterations (:func:`fegrid.poisson.irls`), then its scores are laid out on the stacked rows like
-least squares'; the rules it meets first (zero groups, separation, regressors left constant) follow
-the engine's, and a draw they could decide differently takes the stacked refit (see
-:meth:`_Design._poisson`). Staggered-adoption specifications always take the stacked path. The
-results equal the stacked refits' to the demeaning tolerance (tests/test_reweight.py).
+own iterations (:func:`fegrid.poisson.irls`, started from the design's own fit under the null), then its
+scores are laid out on the stacked rows and taken by the engine's covariance kinds (and so are the
+least-squares specifications of a design that holds Poisson ones); the rules it meets first (zero
+groups, separation, regressors left constant) follow the engine's, and a draw they could decide
+differently takes the stacked refit (see :meth:`_Design._poisson`). Staggered-adoption specifications
+always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
+convergence rule's, for Poisson PML; tests/test_reweight.py).
 """
 
 from __future__ import annotations
@@ -44,9 +50,20 @@ from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 
-from .absorb import Absorber, LevelCodes, _nested, codes_on_rows, drop_singletons
-from .covariance import FitPieces, covariance_kind
+from .absorb import (
+    Absorber,
+    LevelCodes,
+    _components,
+    _constant_within,
+    _nested,
+    _outranks,
+    codes_on_rows,
+    drop_singletons,
+)
+from .covariance import FitPieces, Iid, OneWay, Robust, TwoWay, _dof, covariance_kind
 from .errors import EstimationError, FegridError
 from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE
@@ -64,6 +81,11 @@ MAX_DUMMIES = 64
 
 #: Identification decisions within this factor of their threshold take the stacked refit.
 MARGIN = 100.0
+
+#: Most numbers (resampling levels x columns x columns) of a design's cross products summed per resampling
+#: level once, so that a draw's cross products are those sums weighted by the levels' copies (8 MB); larger
+#: designs sum over their rows on each draw.
+MAX_CROSS_CELLS = 1_000_000
 
 
 class Draw(NamedTuple):
@@ -121,6 +143,248 @@ class _Fit(NamedTuple):
 _NOT_IDENTIFIED = _Fit([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
 
 
+class _Coef(NamedTuple):
+    """One least-squares or 2SLS regression of a draw, in terms of the design's (partialled) columns ``z``:
+    the kept columns (focal first; empty when the focal regressor is not identified in this draw), ``B``,
+    the coefficients, and the combinations of the columns that give the residuals (``z @ e``), the focal
+    row of ``B X'`` (``z @ h``) and the scores' regressors (``z @ x``: ``X``, or the fitted ``PX`` of 2SLS)."""
+
+    idx: list[int]
+    bread: np.ndarray
+    beta: np.ndarray
+    e: np.ndarray
+    h: np.ndarray
+    x: np.ndarray
+
+    def on_rows(self, z: np.ndarray) -> _Fit:
+        """The regression on the rows of ``z``."""
+        if not self.idx:
+            return _NOT_IDENTIFIED
+        x = z @ self.x
+        return _Fit(self.idx, self.bread, self.beta, z @ self.e, x @ self.bread[:, 0], x)
+
+
+_NOT_IDENTIFIED_COEF = _Coef([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
+
+
+class _Weighted(NamedTuple):
+    """A draw's design rows, each weighted by its copies: the stored columns ``u`` of the rows, the
+    combinations that give the design's partialled columns (``z = u @ transform``; ``None``: ``z = u``),
+    which rows of the design they are (``None``: all), their copies and weights, and the draw's copies of
+    each resampling level."""
+
+    u: np.ndarray
+    transform: np.ndarray | None
+    rows: np.ndarray | None
+    copies: np.ndarray
+    w: np.ndarray
+    counts: np.ndarray
+
+    def at(self, v: np.ndarray) -> np.ndarray:
+        """``z @ v`` on the rows."""
+        return self.u @ (v if self.transform is None else self.transform @ v)
+
+    def on(self, codes: np.ndarray) -> np.ndarray:
+        """Codes on the design's rows, on these rows."""
+        return codes if self.rows is None else codes[self.rows]
+
+
+def _cross_per_level(u: np.ndarray, w: np.ndarray, level: np.ndarray, n_levels: int) -> np.ndarray | None:
+    """``sum_i w_i u_i u_i'`` over the rows of each level, flattened (levels, q * q): the rows laid out
+    level by level in a table padded with zero rows, and one batched product; ``None`` when the table
+    would be too large (:data:`MAX_CROSS_CELLS`) or more than half padding."""
+    n, q = u.shape
+    sizes = np.bincount(level, minlength=n_levels)
+    longest = int(sizes.max()) if n else 0
+    if n_levels * q * q > MAX_CROSS_CELLS or n_levels * longest > 2 * n:
+        return None
+    order = np.argsort(level, kind="stable")
+    first = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    slot = np.arange(n) - first[level[order]]
+    table = np.zeros((n_levels, longest, q))
+    table[level[order], slot] = u[order]
+    weighted = np.zeros((n_levels, longest))
+    weighted[level[order], slot] = w[order]
+    return np.matmul(table.transpose(0, 2, 1) * weighted[:, None, :], table).reshape(n_levels, q * q)
+
+
+def _time_squares(time: np.ndarray, codes: np.ndarray, w: np.ndarray, n: int) -> np.ndarray:
+    """Per group, the weighted sum of squares of the time centred on its weighted mean (as a trend's
+    projection in :mod:`fegrid.absorb` computes it)."""
+    wsum = np.bincount(codes, w, minlength=n)
+    inv = np.divide(1.0, wsum, out=np.zeros_like(wsum), where=wsum > 0)
+    tc = time - (np.bincount(codes, w * time, minlength=n) * inv)[codes]
+    return np.bincount(codes, w * (tc * tc), minlength=n)
+
+
+class _CopiesDf:
+    """The df that :class:`fegrid.absorb.Absorber` counts for the absorbed terms on a draw's stacked rows
+    (``absorbed_df``, and ``nested_df`` for cluster variables), from the design's rows and the draw's copies,
+    without stacking them: the same count (the redundant terms, the levels, the components of the two
+    largest terms, the slopes), each piece read off the copies.
+
+    A term (or cluster variable) holding the unit or the resampling column is relabelled per copy: its
+    groups on the stacked rows are (copy, group) pairs, its levels the pairs' copies summed, its slopes
+    those of each pair counted per copy. A shared term's groups take every copy of their rows. Nesting
+    on the stacked rows is nesting on the drawn rows (pairs for relabelled terms), except that a shared
+    group lies within one relabelled group only if it lies within one copy. Components of two relabelled
+    terms are each copy's, those of a level counted once per copy; with a shared term, the copies of a pair
+    meet the same shared groups, so the drawn rows have the stacked rows' components.
+    """
+
+    def __init__(self, design: _Design) -> None:
+        s = design.settings
+        self.terms = tuple(s.absorb)
+        self.dims = design.dims
+        self.levels = design.levels
+        self.time = design.time
+        self.w = design.w
+        self.has_slope = [t.has_slope and design.time is not None for t in self.terms]
+        self.copied = [self.dims[t.groups].copied for t in self.terms]
+        # per shared variable, its groups' resampling levels (one row per group and level): the copies it spans
+        self._spans: dict[tuple[str, ...], tuple[np.ndarray, np.ndarray]] = {}
+        for g, dim in self.dims.items():
+            if not dim.copied:
+                pairs = np.unique(dim.codes.astype(np.int64) * design.n_levels + self.levels)
+                self._spans[g] = (pairs // design.n_levels, pairs % design.n_levels)
+        # per relabelled trend, each pair's sum of squares of centred time (the same in every copy)
+        self._pair_ss: dict[int, np.ndarray] = {}
+        for i, t in enumerate(self.terms):
+            if self.has_slope[i] and self.copied[i]:
+                assert self.time is not None
+                pair_level = self.dims[t.groups].pair_level
+                assert pair_level is not None
+                self._pair_ss[i] = _time_squares(self.time, self._pair(t.groups), self.w, len(pair_level))
+        self.n_levels = design.n_levels
+        self._level_components: dict[tuple[int, int], np.ndarray] = {}
+
+    def _pair(self, g: tuple[str, ...]) -> np.ndarray:
+        pair = self.dims[g].pair
+        assert pair is not None
+        return pair
+
+    def count(self, draw: Draw, by_sets: Sequence[tuple[tuple[str, ...], ...]]) -> tuple[int, dict]:
+        """``absorbed_df`` on the draw's stacked rows and ``nested_df`` for each set of cluster variables."""
+        counts = draw.counts
+        copies = counts[self.levels]
+        drawn = np.flatnonzero(copies > 0)
+        if not self.terms:
+            return 1, {by: 0 for by in by_sets}
+        state = _DrawState(self, counts, copies, drawn)
+        active = []
+        for i, term in enumerate(self.terms):
+            redundant = not term.has_slope and any(
+                j != i and _outranks(self.terms[j], state.nlev[j], j, state.nlev[i], i)
+                and state.nested(self.terms[j].groups, self.terms[i].groups)
+                for j in range(len(self.terms)))
+            if not redundant:
+                active.append(i)
+        absorbed = state.rank(active)
+        nested_df = {}
+        for by in by_sets:
+            if not by:
+                nested_df[by] = 0
+                continue
+            nested = [i for i in active if all(state.nested(self.terms[i].groups, d) for d in by)]
+            nested_df[by] = min(state.rank(nested), absorbed) if nested else 0
+        return absorbed, nested_df
+
+    def level_components(self, a: int, b: int) -> np.ndarray:
+        """Per resampling level, the components of two relabelled terms on its rows (each copy's)."""
+        if (a, b) not in self._level_components:
+            pa, pb = self._pair(self.terms[a].groups), self._pair(self.terms[b].groups)
+            na, nb = len(self.dims[self.terms[a].groups].pair_level), len(self.dims[self.terms[b].groups].pair_level)
+            graph = sp.coo_array((np.ones(len(pa)), (pa, pb + na)), shape=(na + nb, na + nb))
+            labels = connected_components(graph, directed=False)[1]
+            level_of_node = np.concatenate([self.dims[self.terms[a].groups].pair_level,
+                                            self.dims[self.terms[b].groups].pair_level])
+            first = np.unique(labels, return_index=True)[1]
+            self._level_components[(a, b)] = np.bincount(level_of_node[first], minlength=self.n_levels)
+        return self._level_components[(a, b)]
+
+
+class _DrawState:
+    """One draw's pieces of :class:`_CopiesDf`'s count."""
+
+    def __init__(self, df: _CopiesDf, counts: np.ndarray, copies: np.ndarray, drawn: np.ndarray) -> None:
+        self.df, self.counts, self.copies, self.drawn = df, counts, copies, drawn
+        self.nlev = [self.levels_of(t.groups) for t in df.terms]
+        self._ranks: dict[tuple[int, ...], int] = {}
+
+    def codes(self, g: tuple[str, ...]) -> np.ndarray:
+        """The variable's groups on the drawn rows (pairs for a relabelled one)."""
+        dim = self.df.dims[g]
+        return (dim.pair if dim.copied else dim.codes)[self.drawn]  # type: ignore[index]
+
+    def dense(self, g: tuple[str, ...]) -> np.ndarray:
+        """:meth:`codes` numbered densely."""
+        dim = self.df.dims[g]
+        return _dense(self.codes(g), len(dim.pair_level) if dim.pair_level is not None else dim.n)
+
+    def levels_of(self, g: tuple[str, ...]) -> int:
+        dim = self.df.dims[g]
+        if dim.copied:
+            assert dim.pair_level is not None
+            return int(self.counts[dim.pair_level].sum())
+        return int(np.count_nonzero(np.bincount(dim.codes[self.drawn], minlength=dim.n)))
+
+    def nested(self, inner: tuple[str, ...], outer: tuple[str, ...]) -> bool:
+        """Whether every group of ``inner`` lies within one group of ``outer`` on the stacked rows."""
+        if not self.df.dims[inner].copied and self.df.dims[outer].copied:
+            groups, levels = self.df._spans[inner]
+            spans = np.bincount(groups, self.counts[levels])
+            if np.any(spans > 1):  # a shared group in two copies or more
+                return False
+        return _nested(self.codes(inner), self.codes(outer))
+
+    def rank(self, members: Sequence[int]) -> int:
+        key = tuple(members)
+        if key not in self._ranks:
+            self._ranks[key] = self._count_rank(members)
+        return self._ranks[key]
+
+    def _count_rank(self, members: Sequence[int]) -> int:
+        df, terms = self.df, self.df.terms
+        total = 0
+        for i in members:
+            if df.has_slope[i]:
+                if df.copied[i]:
+                    ss = df._pair_ss[i]
+                    pair_level = df.dims[terms[i].groups].pair_level
+                    assert pair_level is not None
+                    mult = self.counts[pair_level]
+                    on = mult > 0
+                    threshold = 1e-12 * (1 + ss[on].max()) if on.any() else 0.0
+                    total += int(mult[ss > threshold].sum())
+                else:
+                    dim = df.dims[terms[i].groups]
+                    codes = dim.codes[self.drawn]
+                    assert df.time is not None
+                    ss = _time_squares(df.time[self.drawn], codes, self.copies[self.drawn] * df.w[self.drawn], dim.n)
+                    present = np.bincount(codes, minlength=dim.n) > 0
+                    ss = ss[present]
+                    total += int(np.count_nonzero(ss > 1e-12 * (1 + ss.max())))
+        cats = sorted(members, key=lambda i: -self.nlev[i])
+        for pos, i in enumerate(cats):
+            total += self.nlev[i] - (1 if pos >= 2 else 0)
+        if len(cats) >= 2:
+            a, b = cats[0], cats[1]
+            if df.copied[a] and df.copied[b]:
+                total -= int(self.counts @ df.level_components(a, b))
+            else:
+                ca, cb = self.dense(terms[a].groups), self.dense(terms[b].groups)
+                total -= _components(ca, int(ca.max()) + 1, cb, int(cb.max()) + 1)
+        for i in members:
+            if not df.has_slope[i]:
+                continue
+            assert df.time is not None
+            time = df.time[self.drawn]
+            if any(j != i and not terms[j].has_slope and _constant_within(time, self.codes(terms[j].groups))
+                   for j in members):
+                total -= 1
+        return total
+
+
 class _Unsupported(Exception):
     """A block or design that the reweighting does not handle: it takes the stacked refit."""
 
@@ -140,6 +404,8 @@ class _Dim:
     copied: bool  # the stacked panel relabels it per copy (it holds the unit or the resampling column)
     local: np.ndarray | None = None  # copied: dense rank of the code within its resampling level
     per_level: np.ndarray | None = None  # copied: distinct codes per resampling level
+    pair: np.ndarray | None = None  # copied: dense code of (resampling level, code) on the rows
+    pair_level: np.ndarray | None = None  # copied: the resampling level of each pair
 
     def stacked(self, rows: np.ndarray, position: np.ndarray, picks: np.ndarray) -> np.ndarray:
         """Dense codes on stacked rows (``rows`` index the design's rows)."""
@@ -202,6 +468,7 @@ class _Design:
         self.null = {s.spec_id: raw[:, self.pos[s.outcome]] * np.exp(-observed[s.spec_id] * raw[:, self.pos[s.focal]])
                      for s in specs if s.estimator.method == POISSON}
         self.term_codes = {t.groups: codes(t.groups) for t in settings.absorb}
+        self.start = {s.spec_id: self._poisson_start(s) for s in specs if s.estimator.method == POISSON}
         self.raw_centred = raw - raw.mean(axis=0)
         self.raw_squared = self.raw_centred**2
         self.raw_scale = 1.0 + np.max(np.abs(self.raw_centred), axis=0)
@@ -237,6 +504,17 @@ class _Design:
             self.within = np.ascontiguousarray(both[:, : raw.shape[1]])
             self.dummies = np.ascontiguousarray(both[:, raw.shape[1]:])
         self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
+        # least squares and 2SLS: a draw weights the rows by their copies (see _refit_weighted); with the
+        # dummy columns, from the rows' columns and cross products summed per resampling level once
+        self.poisson = any(s.estimator.method == POISSON for s in specs)
+        self.copies_df = _CopiesDf(self)
+        self.by_sets = sorted({s.inference.by for s in specs})
+        self.u = self.cross = None
+        self.level_ids = np.unique(self.levels)
+        if not self.reweighted:
+            self.u = np.ascontiguousarray(np.hstack([self.within, self.dummies]))
+            self.cross = _cross_per_level(self.u, self.w, np.searchsorted(self.level_ids, self.levels),
+                                          len(self.level_ids))
 
     def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
         n = int(codes.max()) + 1 if len(codes) else 0
@@ -247,7 +525,7 @@ class _Design:
         first_of_level = np.searchsorted(uniq // max(n, 1), np.arange(self.n_levels))
         local = inverse - first_of_level[levels]
         per_level = np.bincount(uniq // max(n, 1), minlength=self.n_levels)
-        return _Dim(codes, n, True, local.astype(np.int64), per_level)
+        return _Dim(codes, n, True, local.astype(np.int64), per_level, inverse.astype(np.int64), uniq // max(n, 1))
 
     def _singletons_agree(self, draw: Draw) -> bool:
         """Whether the stacked draw drops exactly the copies of the rows the original design drops."""
@@ -270,6 +548,159 @@ class _Design:
         """``(spec_id, estimate, std_error, df)`` per specification, or ``None`` to take the stacked refit."""
         if not self._singletons_agree(draw):
             return None
+        return self._refit_stacked(draw) if self.poisson else self._refit_weighted(draw)
+
+    def _refit_weighted(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
+        """Least squares and 2SLS on the design's rows, each weighted by its copies in the draw: the stacked
+        rows' cross products, residuals and cluster sums are those of the rows counted by their copies
+        (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy)."""
+        copies = draw.counts[self.levels]
+        m = len(self.columns)
+        transform: np.ndarray | None = None  # the columns (partialled) from the rows' stored columns
+        if self.reweighted:
+            try:
+                rows, u = self._demean_on_drawn(draw)
+            except _Unsupported:
+                return None
+            c = copies[rows].astype(float)
+            cw = c * self.w[rows]
+            gram = (u * cw[:, None]).T @ u
+        else:
+            assert self.u is not None
+            rows, u = None, self.u
+            c = copies.astype(float)
+            cw = c * self.w
+            q = u.shape[1]
+            if self.cross is not None:
+                big = (draw.counts[self.level_ids].astype(float) @ self.cross).reshape(q, q)
+            else:
+                big = (u * cw[:, None]).T @ u
+            big = (big + big.T) / 2
+            gram = big[:m, :m]
+            if q > m:  # the dummy columns partialled out, from the cross products
+                eigval, eigvec = np.linalg.eigh(big[m:, m:])
+                ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+                gamma = ((eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T) @ big[m:, :m]
+                gram = gram - big[:m, m:] @ gamma
+                transform = np.vstack([np.eye(m), -gamma])
+        gram = (gram + gram.T) / 2
+        norm = np.sqrt(np.maximum(np.diag(gram), 0.0))
+        raw_norm = self._raw_norm(draw)
+        if raw_norm is None:
+            return None
+        weighted = _Weighted(u, transform, rows, c, self.w if rows is None else self.w[rows], draw.counts)
+        absorbed_df: int | None = None
+        nested: dict[tuple[tuple[str, ...], ...], int] = {}
+        out = []
+        fits: dict[tuple[object, ...], tuple[_Coef, np.ndarray] | None] = {}
+        for spec in self.specs:
+            est = spec.estimator
+            key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
+            if key not in fits:  # one regression, whatever the covariance choice
+                coef = (self._two_stage(spec, gram, norm, raw_norm) if est.method == TWO_STAGE
+                        else self._regression(spec, gram, norm, raw_norm))
+                if coef is None:
+                    return None
+                # the residuals and the focal row of B X' on the rows, once for every covariance choice
+                fits[key] = (coef, weighted.at(np.column_stack([coef.e, coef.h]))) if coef.idx else None
+            got = fits[key]
+            if got is None:
+                out.append((spec.spec_id, float("nan"), float("nan"), float("nan")))
+                continue
+            if absorbed_df is None:  # the effects' df on the stacked rows, counted from the copies
+                absorbed_df, nested = self.copies_df.count(draw, self.by_sets)
+            out.append(self._weighted_inference(spec, *got, weighted, absorbed_df, nested[spec.inference.by]))
+        return out
+
+    def _raw_norm(self, draw: Draw) -> np.ndarray | None:
+        """The raw columns' weighted spread on the draw (``None`` when one is (nearly) constant: rounding
+        decides). Sums over the stacked rows are the base rows' sums weighted by their copies (the columns
+        centred on their base means, against cancellation)."""
+        copies = draw.counts[self.levels] * self.w
+        total = copies.sum()
+        first = copies @ self.raw_centred
+        raw_norm = np.sqrt(np.maximum(copies @ self.raw_squared - first * first / total, 0.0))
+        if np.any(raw_norm <= 1e-6 * np.sqrt(total) * self.raw_scale):
+            return None
+        return raw_norm
+
+    def _weighted_inference(self, spec: Spec, fit: _Coef, on_rows: np.ndarray, rows: _Weighted, absorbed_df: int,
+                            nested_df: int) -> tuple[str, float, float, float]:
+        """One covariance choice of a regression on the rows weighted by their copies: the formulas of the
+        engine's covariance kinds (:mod:`fegrid.covariance`) on the stacked rows, summed row by row with the
+        copies as counts (``N`` the copies' total; a cluster the copies relabel counts once per copy)."""
+        nan = float("nan")
+        beta = float(fit.beta[0])
+        kind = covariance_kind(spec.inference.kind)
+        n = float(rows.copies.sum())
+        p = len(fit.idx)
+        e = on_rows[:, 0]
+        try:
+            if isinstance(kind, Iid):
+                dof = _dof(n, p + absorbed_df)
+                variance, df = float(rows.copies @ (rows.w * e * e)) / dof * float(fit.bread[0, 0]), float(dof)
+            elif isinstance(kind, TwoWay):
+                dof = _dof(n, p + absorbed_df - nested_df)
+                scores = rows.at(fit.x) * (rows.w * e)[:, None]
+                by = spec.inference.by
+                meat = np.zeros((p, p))
+                counts = []
+                for dim, sign in zip((by[0], by[1], by[0] + by[1]), (1.0, 1.0, -1.0)):
+                    sums, mult, g = self._cluster_sums(dim, scores, rows)
+                    if g < 2:
+                        raise EstimationError("a cluster variable has a single group in this sample")
+                    meat += sign * g / (g - 1) * (n - 1) / dof * (sums.T @ (sums * mult[:, None]))
+                    counts.append(g)
+                v = fit.bread @ meat @ fit.bread
+                v = (v + v.T) / 2
+                eigval, eigvec = np.linalg.eigh(v)
+                if eigval.min() < 0:
+                    v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
+                variance, df = float(v[0, 0]), float(min(counts[0], counts[1]) - 1)
+            else:
+                he = rows.w * on_rows[:, 1] * e
+                if isinstance(kind, Robust):
+                    dof = _dof(n, p + absorbed_df)
+                    variance, df = n / dof * float(rows.copies @ (he * he)), float(dof)
+                else:
+                    assert isinstance(kind, OneWay)
+                    dof = _dof(n, p + absorbed_df - nested_df)
+                    sums, mult, g = self._cluster_sums(spec.inference.by[0], he, rows)
+                    if g < 2:
+                        raise EstimationError("the cluster variable has a single group in this sample")
+                    variance, df = g / (g - 1) * (n - 1) / dof * float(mult @ (sums * sums)), float(g - 1)
+        except EstimationError:
+            return spec.spec_id, beta, nan, nan
+        se = float(np.sqrt(variance))
+        if not (np.isfinite(beta) and np.isfinite(se)):
+            return spec.spec_id, nan, nan, nan
+        return spec.spec_id, beta, se, df
+
+    def _cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, rows: _Weighted
+                      ) -> tuple[np.ndarray, np.ndarray, int]:
+        """Sums of ``values`` (rows, or rows x k) over the clusters of ``dim`` on the weighted rows, each
+        cluster's count on the stacked rows, and the stacked rows' number of clusters."""
+        d = self.dims[dim]
+        if d.copied:  # each copy of a level holds its own cluster, whose sum is the rows' own
+            assert d.pair is not None and d.pair_level is not None
+            codes, size = rows.on(d.pair), len(d.pair_level)
+            mult = rows.counts[d.pair_level].astype(float)
+            weights = None
+        else:  # one cluster for all the copies: each row counted by its copies
+            codes, size = rows.on(d.codes), d.n
+            mult = None
+            weights = rows.copies
+        if values.ndim == 1:
+            sums = np.bincount(codes, values if weights is None else values * weights, minlength=size)
+        else:
+            scaled = values if weights is None else values * weights[:, None]
+            sums = np.column_stack([np.bincount(codes, scaled[:, j], minlength=size) for j in range(values.shape[1])])
+        if mult is None:
+            mult = (np.bincount(codes, rows.copies, minlength=size) > 0).astype(float)
+        return sums, mult, int(mult.sum())
+
+    def _refit_stacked(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
+        """The design's specifications on the draw's stacked rows (a design with Poisson PML specifications)."""
         b = self.base_index[draw.rows]
         on = b >= 0
         rows, position = b[on], draw.position[on]
@@ -281,9 +712,12 @@ class _Design:
 
         if self.reweighted:
             try:
-                z = scaled(self._demean_drawn(draw, rows))
+                drawn, values = self._demean_on_drawn(draw)
             except _Unsupported:
                 return None
+            where = np.full(len(self.levels), -1, dtype=np.int64)
+            where[drawn] = np.arange(len(drawn))
+            z = scaled(values[where[rows]])
         elif self.dummies.shape[1]:
             d = scaled(self.dummies[rows])
             dd = d.T @ d
@@ -300,11 +734,8 @@ class _Design:
         norm = np.sqrt(np.diag(gram))
         # the raw columns' weighted spread on the draw: sums over the stacked rows are the base rows'
         # sums weighted by their copies (the columns centred on their base means, against cancellation)
-        copies = draw.counts[self.levels] * self.w
-        total = copies.sum()
-        first = copies @ self.raw_centred
-        raw_norm = np.sqrt(np.maximum(copies @ self.raw_squared - first * first / total, 0.0))
-        if np.any(raw_norm <= 1e-6 * np.sqrt(total) * self.raw_scale):  # (nearly) constant: rounding decides
+        raw_norm = self._raw_norm(draw)
+        if raw_norm is None:
             return None
         codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self.dims.items()}
         absorber = Absorber(len(rows), self.settings.absorb, weights=w if self.settings.weights else None,
@@ -319,11 +750,11 @@ class _Design:
             key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
             if key not in fits:  # one regression, whatever the covariance choice
                 if est.method == POISSON:
-                    fits[key] = self._poisson(spec, z, gram, norm, raw_norm, draw, rows, position, codes)
-                elif est.method == TWO_STAGE:
-                    fits[key] = self._two_stage(spec, z, gram, norm, raw_norm)
+                    fits[key] = self._poisson(spec, gram, norm, raw_norm, draw, rows, position, codes)
                 else:
-                    fits[key] = self._regression(spec, z, gram, norm, raw_norm)
+                    coef = (self._two_stage(spec, gram, norm, raw_norm) if est.method == TWO_STAGE
+                            else self._regression(spec, gram, norm, raw_norm))
+                    fits[key] = None if coef is None else coef.on_rows(z)
                 if fits[key] is None:
                     return None
             by = spec.inference.by
@@ -339,12 +770,10 @@ class _Design:
             out.append(self._inference(spec, fit, absorber, nested[by], codes))
         return out
 
-    def _demean_drawn(self, draw: Draw, rows: np.ndarray) -> np.ndarray:
-        """The design's columns demeaned on the drawn rows, each weighted by its copies (and its weight),
-        on the stacked rows ``rows``."""
+    def _demean_on_drawn(self, draw: Draw) -> tuple[np.ndarray, np.ndarray]:
+        """The drawn rows of the design and its columns demeaned on them, each row weighted by its copies
+        (and its weight)."""
         drawn = np.flatnonzero(draw.counts[self.levels] > 0)
-        where = np.full(len(self.levels), -1, dtype=np.int64)
-        where[drawn] = np.arange(len(drawn))
         copies = draw.counts[self.levels[drawn]].astype(float)
         codes = {g: _dense(c[drawn], int(c.max()) + 1) for g, c in self.term_codes.items()}
         absorber = Absorber(len(drawn), self.settings.absorb, weights=copies * self.w[drawn],
@@ -355,7 +784,7 @@ class _Design:
         out = absorber.demean(self.raw[drawn])
         if not out.converged.all():
             raise _Unsupported("not converged")
-        return out.values[where[rows]]
+        return drawn, out.values
 
     def _absorbed(self, j: int, norm: np.ndarray, raw_norm: np.ndarray) -> bool | None:
         ratio = norm[j] / raw_norm[j]
@@ -408,21 +837,27 @@ class _Design:
             return None
         return [j, *kept] if identified else []
 
-    def _regression(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
-                    ) -> _Fit | None:
+    def _coef(self, idx: list[int], bread: np.ndarray, beta: np.ndarray, y: int, x: np.ndarray) -> _Coef:
+        """A regression of column ``y`` on the columns ``idx`` whose scores' regressors are ``z @ x``."""
+        e = np.zeros(len(self.columns))
+        e[y] = 1.0
+        e[idx] -= beta
+        return _Coef(idx, bread, beta, e, x @ bread[:, 0], x)
+
+    def _regression(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray) -> _Coef | None:
         """Least squares on the draw (not identified: the focal regressor is absorbed in this draw);
         ``None`` when a decision is near its threshold."""
         idx = self._regressors(spec, norm, raw_norm, gram)
         if not idx:
-            return None if idx is None else _NOT_IDENTIFIED
+            return None if idx is None else _NOT_IDENTIFIED_COEF
         y = self.pos[spec.outcome]
         bread = np.linalg.inv(gram[np.ix_(idx, idx)])
         beta = bread @ gram[idx, y]
-        x = z[:, idx]
-        return _Fit(idx, bread, beta, z[:, y] - x @ beta, x @ bread[:, 0], x)
+        x = np.zeros((len(self.columns), len(idx)))
+        x[idx, np.arange(len(idx))] = 1.0
+        return self._coef(idx, bread, beta, y, x)
 
-    def _two_stage(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray
-                   ) -> _Fit | None:
+    def _two_stage(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray) -> _Coef | None:
         """Two-stage least squares on the draw, with the engine's identification rules
         (:meth:`fegrid.estimate._Design.iv_regressors`); ``None`` when a decision is near its threshold."""
         est = spec.estimator
@@ -446,7 +881,7 @@ class _Design:
         if excluded is None:
             return None
         if not identified or len(excluded) < len(endog):
-            return _NOT_IDENTIFIED
+            return _NOT_IDENTIFIED_COEF
         ix, iw = endog + exog, excluded + exog
         pi = np.linalg.solve(gram[np.ix_(iw, iw)], gram[np.ix_(iw, ix)])  # X on the instruments
         a = gram[np.ix_(ix, iw)] @ pi
@@ -455,10 +890,11 @@ class _Design:
         bread = np.linalg.inv(a)
         y = self.pos[spec.outcome]
         beta = bread @ (pi.T @ gram[iw, y])
-        fitted = z[:, iw] @ pi
-        return _Fit(ix, bread, beta, z[:, y] - z[:, ix] @ beta, fitted @ bread[:, 0], fitted)
+        fitted = np.zeros((len(self.columns), len(ix)))
+        fitted[iw] = pi
+        return self._coef(ix, bread, beta, y, fitted)
 
-    def _poisson(self, spec: Spec, z: np.ndarray, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
+    def _poisson(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
                  draw: Draw, rows: np.ndarray, position: np.ndarray, codes: dict[tuple[str, ...], np.ndarray]
                  ) -> _Fit | None:
         """Poisson PML on the draw (its null imposed), fitted on the drawn rows weighted by their copies:
@@ -508,8 +944,10 @@ class _Design:
         flat = ratio <= self.ident_tol
         if flat[0]:
             return _NOT_IDENTIFIED
+        start = self.start[spec.spec_id]
         fit = irls(len(keep), y, x[:, ~flat], s.absorb, weights=c * w_user, time=time, time_values=time_values,
-                   tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep)
+                   tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep,
+                   start=None if start is None else start[keep])
         if not fit.converged:
             return None
         xs = fit.demeaned * np.sqrt(w_user * fit.mu)[:, None]
@@ -532,6 +970,32 @@ class _Design:
                             time_values=self.time[rows[on]] if self.time is not None else None,
                             codes_of=kept_codes.__getitem__)
         return _Fit(cols, bread, fit.coefficients, e[k[on]], xs_s @ bread[:, 0], xs_s, absorber, kept_codes)
+
+    def _poisson_start(self, spec: Spec) -> np.ndarray | None:
+        """The linear predictor of the specification's Poisson PML under its null on the design's rows outside
+        zero groups (all its regressors), where the draws' iterations start (a draw's kept rows are among
+        them: a zero group stays one in every draw); ``None`` (the draws start from their outcome) when
+        the fit does not converge or nearly separates rows."""
+        s = self.settings
+        y = self.null[spec.spec_id]
+        if not np.all(np.isfinite(y)) or bool((y < 0).any()) or not (y > 0).any():
+            return None
+        keep = np.flatnonzero(~zero_group_rows(y, s.absorb, self.term_codes.__getitem__)) if s.absorb else \
+            np.arange(len(y))
+        x = self.raw[np.ix_(keep, [self.pos[c] for c in (spec.focal, *spec.controls)])]
+        try:
+            fit = irls(len(keep), y[keep], x, s.absorb, weights=self.w[keep],
+                       time=s.time if self.time is not None else None,
+                       time_values=None if self.time is None else self.time[keep], tolerance=s.tolerance,
+                       max_iterations=s.max_iterations, codes_of=codes_on_rows(self.term_codes.__getitem__, keep))
+        except (np.linalg.LinAlgError, FegridError):
+            return None
+        if (not fit.converged or not np.all(np.isfinite(fit.mu))
+                or fit.mu.min() <= 1e-8 * np.average(y[keep], weights=self.w[keep])):
+            return None
+        eta = np.full(len(y), np.nan)
+        eta[keep] = np.log(fit.mu)
+        return eta
 
     def _copies_leave_singletons(self, copies: np.ndarray, keep: np.ndarray) -> bool:
         """Whether the copies of the design's rows ``keep`` hold an effect level with one row (a copied

@@ -170,12 +170,13 @@ def test_linearized_draws_are_one_job_and_their_own_key(tiny_project: Path, monk
 def test_fits_without_diagnostics_keep_every_number_the_draws_read(wage_panel) -> None:
     """The joint tests' draws fit without diagnostics (``fit_block(..., diagnostics=False)``): the
     estimate, SE and df equal a full fit's (bit for bit for 2SLS; to 1e-12 for the imputation estimator,
-    whose overall weights are then solved for alone, not beside each relative period's), while the 2SLS
-    first stage and Anderson-Rubin set (wage_panel) and the imputation estimator's test of parallel
-    trends and per-period estimates (the invented staggered panel) are left out."""
+    whose overall weights are then solved for alone, not beside each relative period's, and for the
+    group-time effects, whose overall estimate then comes from the post-adoption cells alone), while the
+    2SLS first stage and Anderson-Rubin set (wage_panel) and the imputation and group-time estimators'
+    tests of parallel trends and per-period estimates (the invented staggered panel) are left out."""
     for grid, frame in (_wage_grid(wage_panel), _staggered_grid()):
         for spec in grid.expand():
-            if spec.estimator.method not in ("two_stage_least_squares", "imputation"):
+            if spec.estimator.method not in ("two_stage_least_squares", "imputation", "group_time"):
                 continue
             part = frame.iloc[sample_rows(frame, spec.sample, grid.panel)]
             request = [without_wild(spec.request())]
@@ -183,7 +184,7 @@ def test_fits_without_diagnostics_keep_every_number_the_draws_read(wage_panel) -
             lean = fit_block(part, grid.block_settings(spec), request, coefficients=False,
                              diagnostics=False).results[0]
             assert full.status == lean.status == "ok", full.message
-            if spec.estimator.method == "imputation":
+            if spec.estimator.method in ("imputation", "group_time"):
                 np.testing.assert_allclose([lean.estimate, lean.std_error], [full.estimate, full.std_error],
                                            rtol=1e-12)
                 assert lean.df_inference == full.df_inference

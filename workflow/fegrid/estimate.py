@@ -1195,8 +1195,9 @@ def _fit_staggered(design: _Design, spec: SpecRequest) -> object:
     draws = options.draws if design.keep_all else 0
 
     def compute(clusters: np.ndarray) -> LinearEstimates:
+        # without the ledger's diagnostics (the joint tests' draws), the overall estimate alone
         got, _ = group_time(y, cohorts, clusters, replace(options, draws=draws), seed=seed, level=s.level,
-                            covariates=covariates)
+                            covariates=covariates, overall_only=not design.diagnostics)
         return got
 
     return _LinearPieces(compute)

@@ -617,7 +617,12 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     v[np.flatnonzero(untreated)] = v0
     e = np.zeros(n)
     e[untreated] = y0 - x0 @ gamma - fitted0
-    cell = pd.Series(tau).groupby([design.cohort[rows1], rel]).transform("mean").to_numpy()
+    # each imputed effect less its cohort x relative-period mean
+    cell = tau
+    if len(rows1):  # cohorts and relative periods are whole numbers of periods
+        c1, r1 = design.cohort[rows1].astype(np.int64), rel.astype(np.int64)
+        cells = pd.factorize((c1 - c1.min()) * (int(r1.max() - r1.min()) + 1) + (r1 - r1.min()))[0]
+        cell = (np.bincount(cells, tau) / np.bincount(cells))[cells]
     e[rows1] = tau - cell
     estimates = w1.T @ tau
     # first order: an untreated row moves the imputed counterfactuals (v e), a treated one the average
@@ -679,7 +684,8 @@ def _balanced_units(design: Cohorts, y: np.ndarray,
 
 
 def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: StaggeredOptions,
-               seed: int, level: float, covariates: np.ndarray | None = None) -> tuple[LinearEstimates, pd.DataFrame]:
+               seed: int, level: float, covariates: np.ndarray | None = None, overall_only: bool = False
+               ) -> tuple[LinearEstimates, pd.DataFrame]:
     """Callaway & Sant'Anna (2021), on the units observed in every period.
 
     ``ATT(g, t) = mean_{G=g}(Y_t - Y_{g-1}) - mean_C(Y_t - Y_{g-1})`` for every cohort ``g`` adopting
@@ -697,7 +703,8 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
     period ``g - 1``; its influence function counts the estimation of ``b``.
 
     Returns the aggregated estimates and the table of ``ATT(g, t)`` (cohort, period, relative,
-    estimate, std_error).
+    estimate, std_error). With ``overall_only`` (the joint tests' draws), the overall estimate alone,
+    from the post-adoption cells alone, and no table.
     """
     if covariates is not None:  # carried through the balancing with the outcome
         y = np.column_stack([y, covariates])
@@ -712,12 +719,13 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
     if covariates is not None:
         xmat = np.empty((n_units, n_periods, covariates.shape[1]))
         xmat[u, t] = covariates
-    start = pd.Series(design.cohort).groupby(u).first().to_numpy()
+    first_row = np.full(n_units, len(u))
+    np.minimum.at(first_row, u, np.arange(len(u)))  # each unit's first row (cohorts are constant within units)
+    start = design.cohort[first_row]
     group = np.where(np.isfinite(start), start, np.inf)
-    cl_unit = pd.Series(clusters).groupby(u).agg(["first", "nunique"])
-    if (cl_unit["nunique"] > 1).any():
+    unit_cluster = np.asarray(clusters)[first_row]
+    if not np.array_equal(unit_cluster[u], np.asarray(clusters)):
         raise ValueError("the clusters of group-time effects must be constant within units")
-    unit_cluster = cl_unit["first"].to_numpy()
     cohorts = [int(g) for g in np.unique(group[np.isfinite(group)]) if 0 < g < n_periods]
     if not cohorts:
         raise ValueError("no cohort adopts inside the sample's periods")
@@ -727,7 +735,7 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
         base = ymat[:, g - 1]
         mine = group == g
         for tt in range(n_periods):
-            if tt == g - 1:
+            if tt == g - 1 or (overall_only and tt < g):
                 continue
             if options.control == "never_treated":
                 ctrl = ~np.isfinite(group)
@@ -778,7 +786,7 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
     e0, i0 = aggregate((rel >= 0).astype(float), True)
     est.append(e0)
     infl.append(i0)
-    window = options.relative_periods()
+    window = [] if overall_only else options.relative_periods()
     for k in window:
         sel = (rel == k).astype(float)
         if sel.any():
@@ -786,7 +794,7 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
             names.append(term_of("rel", k))
             est.append(ek)
             infl.append(ik)
-    for gi, g in enumerate(cohorts):
+    for gi, g in enumerate([] if overall_only else cohorts):
         sel = ((coh == gi) & (rel >= 0)).astype(float)
         if sel.any():
             eg, ig = aggregate(sel, False)
@@ -809,11 +817,14 @@ def group_time(y: np.ndarray, design: Cohorts, clusters: np.ndarray, options: St
             signs = rng.choice((-1.0, 1.0), size=(options.draws, n_cl))
             stats = np.abs(signs @ sums[:, in_window][:, ok]) * math.sqrt(factor) / sd[ok]
             critical = float(np.quantile(stats.max(axis=1), level))
-    cell_sums, _ = cluster_sums(psi_m, cl_codes)
-    se_cells = np.sqrt((cell_sums ** 2).sum(axis=0) * factor)
-    table = pd.DataFrame({"cohort": [design.labels[c[1]] for c in cells],
-                          "period": [design.labels[c[2]] for c in cells], "relative": rel,
-                          "estimate": att, "std_error": se_cells})
+    if overall_only:
+        table = pd.DataFrame(columns=["cohort", "period", "relative", "estimate", "std_error"])
+    else:
+        cell_sums, _ = cluster_sums(psi_m, cl_codes)
+        se_cells = np.sqrt((cell_sums ** 2).sum(axis=0) * factor)
+        table = pd.DataFrame({"cohort": [design.labels[c[1]] for c in cells],
+                              "period": [design.labels[c[2]] for c in cells], "relative": rel,
+                              "estimate": att, "std_error": se_cells})
     message = (f"{left_out} unit(s) not observed in every period are left out (group-time effects use a "
                "balanced panel)" if left_out else "")
     # each unit's influence on the overall estimate, spread evenly over its rows (one per period)

@@ -54,6 +54,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 
 from .absorb import (
+    HUB_CELLS,
     Absorber,
     LevelCodes,
     _components,
@@ -257,6 +258,8 @@ class _CopiesDf:
                 self._pair_ss[i] = _time_squares(self.time, self._pair(t.groups), self.w, len(pair_level))
         self.n_levels = design.n_levels
         self._level_components: dict[tuple[int, int], np.ndarray] = {}
+        self._nesting: dict[tuple[tuple[str, ...], tuple[str, ...]], tuple[bool, np.ndarray | None]] = {}
+        self._hubs: dict[tuple[int, int], tuple[bool, np.ndarray]] = {}
 
     def _pair(self, g: tuple[str, ...]) -> np.ndarray:
         pair = self.dims[g].pair
@@ -289,6 +292,56 @@ class _CopiesDf:
             nested_df[by] = min(state.rank(nested), absorbed) if nested else 0
         return absorbed, nested_df
 
+    def nesting(self, inner: tuple[str, ...], outer: tuple[str, ...]) -> tuple[bool, np.ndarray | None]:
+        """Whether ``inner`` nests in ``outer`` on the design's rows (pairs for relabelled variables) and, if
+        not, two rows of one ``inner`` group in two ``outer`` groups (``None``: the rows drawn decide)."""
+        key = (inner, outer)
+        if key not in self._nesting:
+            ci, co = (self._pair(g) if self.dims[g].copied else self.dims[g].codes for g in (inner, outer))
+            if not len(ci):
+                self._nesting[key] = (True, None)
+            else:
+                last_outer = np.empty(int(ci.max()) + 1, dtype=np.int64)
+                last_outer[ci] = co
+                broken = np.flatnonzero(last_outer[ci] != co)
+                if not len(broken):
+                    self._nesting[key] = (True, None)
+                else:
+                    last_row = np.empty(int(ci.max()) + 1, dtype=np.int64)
+                    last_row[ci] = np.arange(len(ci))
+                    pair = np.array([broken[0], last_row[ci[broken[0]]]])
+                    self._nesting[key] = (False, pair if co[pair[0]] != co[pair[1]] else None)
+        return self._nesting[key]
+
+    def hub_drawn(self, a: int, b: int, counts: np.ndarray) -> bool:
+        """Whether the drawn rows hold a group of term ``a`` or ``b`` (one relabelled, one shared) that meets
+        every drawn group of the other term, so that the two form one component: a relabelled group that
+        meets every group of the shared term on the design's rows, once its level is drawn (all its rows
+        come with it); or a shared group that meets every relabelled group, whatever is drawn (each drawn
+        relabelled group brings its rows with the shared one)."""
+        if (a, b) not in self._hubs:
+            always, rows = False, np.zeros(0, dtype=np.int64)
+            for mine, other in ((a, b), (b, a)):
+                cm, co = (self._pair(self.terms[i].groups) if self.copied[i] else self.dims[self.terms[i].groups].codes
+                          for i in (mine, other))
+                n_mine, n_other = int(cm.max()) + 1, int(co.max()) + 1
+                if n_mine * n_other > HUB_CELLS:
+                    continue
+                table = np.zeros(n_mine * n_other, dtype=bool)
+                table[cm * n_other + co] = True
+                hubs = np.flatnonzero(table.reshape(n_mine, n_other).all(axis=1))
+                if not len(hubs):
+                    continue
+                if self.copied[mine]:
+                    first_row = np.full(n_mine, len(cm))
+                    np.minimum.at(first_row, cm, np.arange(len(cm)))
+                    rows = np.concatenate([rows, first_row[hubs]])  # drawn with its level
+                elif self.copied[other]:
+                    always = True
+            self._hubs[(a, b)] = (always, rows)
+        always, rows = self._hubs[(a, b)]
+        return always or bool(np.any(counts[self.levels[rows]] > 0))
+
     def level_components(self, a: int, b: int) -> np.ndarray:
         """Per resampling level, the components of two relabelled terms on its rows (each copy's)."""
         if (a, b) not in self._level_components:
@@ -309,6 +362,7 @@ class _DrawState:
     def __init__(self, df: _CopiesDf, counts: np.ndarray, copies: np.ndarray, drawn: np.ndarray) -> None:
         self.df, self.counts, self.copies, self.drawn = df, counts, copies, drawn
         self.nlev = [self.levels_of(t.groups) for t in df.terms]
+        self.twice = bool(np.any(copies > 1))
         self._ranks: dict[tuple[int, ...], int] = {}
 
     def codes(self, g: tuple[str, ...]) -> np.ndarray:
@@ -331,10 +385,17 @@ class _DrawState:
     def nested(self, inner: tuple[str, ...], outer: tuple[str, ...]) -> bool:
         """Whether every group of ``inner`` lies within one group of ``outer`` on the stacked rows."""
         if not self.df.dims[inner].copied and self.df.dims[outer].copied:
+            if self.twice:  # a level drawn twice: its shared groups are in two copies
+                return False
             groups, levels = self.df._spans[inner]
             spans = np.bincount(groups, self.counts[levels])
             if np.any(spans > 1):  # a shared group in two copies or more
                 return False
+        nested, witness = self.df.nesting(inner, outer)
+        if nested:  # nested on the design's rows: on the drawn rows too
+            return True
+        if witness is not None and bool(np.all(self.copies[witness] > 0)):  # two drawn rows break it
+            return False
         return _nested(self.codes(inner), self.codes(outer))
 
     def rank(self, members: Sequence[int]) -> int:
@@ -371,6 +432,8 @@ class _DrawState:
             a, b = cats[0], cats[1]
             if df.copied[a] and df.copied[b]:
                 total -= int(self.counts @ df.level_components(a, b))
+            elif df.hub_drawn(a, b, self.counts):  # a group meeting every drawn group of the other term
+                total -= 1
             else:
                 ca, cb = self.dense(terms[a].groups), self.dense(terms[b].groups)
                 total -= _components(ca, int(ca.max()) + 1, cb, int(cb.max()) + 1)
@@ -555,6 +618,8 @@ class _Design:
         rows' cross products, residuals and cluster sums are those of the rows counted by their copies
         (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy)."""
         copies = draw.counts[self.levels]
+        if not copies.any():  # none of the design's rows drawn: the stacked refit decides
+            return None
         m = len(self.columns)
         transform: np.ndarray | None = None  # the columns (partialled) from the rows' stored columns
         if self.reweighted:

@@ -138,7 +138,8 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
     every draw under the imposed null. Union membership as the outcome has workers never in a union
     (effect groups with a zero outcome throughout, dropped: the inference then runs on fewer rows than
     the draw's),
-    zeros elsewhere (the certificate of no separation), weights, singletons, every covariance kind."""
+    zeros elsewhere (the certificate of no separation), weights, singletons, every covariance kind; least
+    squares in the same designs (weighted by the copies, beside the Poisson fits' stacked inference)."""
     from fegrid import reweight
 
     frame = wage_panel.assign(wage=np.exp(wage_panel["lwage"]))  # the hourly wage: positive, no zero
@@ -149,7 +150,7 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
     raw["samples"] = {"all": {}, "after_1981": {"range": {"year": {"min": 1982}}},
                       "long_hours": {"range": {"hours": {"min": 2600}}}}
     raw["control_sets"] = {"combinations_of": ["expersq", "hours"]}
-    raw["estimators"] = {"pml": {"method": "poisson_pml"}}
+    raw["estimators"] = {"pml": {"method": "poisson_pml"}, "ls": {"method": "least_squares"}}
     grid = load_config(raw)
     specs = grid.expand()
     made: list[bool] = []
@@ -166,7 +167,8 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
     slow = draw_curves(grid, frame, specs, draws, seed=5, column="nr", reweight=False).sort_values(
         KEY, ignore_index=True)
     pd.testing.assert_frame_equal(fast[[*KEY, "imposed"]], slow[[*KEY, "imposed"]])
-    assert fast["imposed"].all()
+    method = fast["spec_id"].map({s.spec_id: s.estimator.method for s in specs})
+    assert (fast["imposed"] == (method == "poisson_pml")).all()
     se = slow["std_error"].to_numpy()
     for col in ("estimate", "std_error"):
         a, b = fast[col].to_numpy(), slow[col].to_numpy()
@@ -182,6 +184,7 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
     blocks, _ = prepare_blocks(grid, frame, specs, codes, len(levels), "nr", observed)
     starts = [start for b in blocks for d in b.designs for start in d.start.values()]
     assert np.mean([start is not None for start in starts]) > 0.9  # they started from the design's fit
+    assert all(len({s.estimator.method for s in d.specs}) == 2 for b in blocks for d in b.designs)
 
     ledger = _ledger(grid, frame, specs)
     assert (ledger["status"] == "ok").all()

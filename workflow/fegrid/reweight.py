@@ -157,13 +157,6 @@ class _Coef(NamedTuple):
     h: np.ndarray
     x: np.ndarray
 
-    def on_rows(self, z: np.ndarray) -> _Fit:
-        """The regression on the rows of ``z``."""
-        if not self.idx:
-            return _NOT_IDENTIFIED
-        x = z @ self.x
-        return _Fit(self.idx, self.bread, self.beta, z @ self.e, x @ self.bread[:, 0], x)
-
 
 _NOT_IDENTIFIED_COEF = _Coef([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
 
@@ -569,7 +562,6 @@ class _Design:
         self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
         # least squares and 2SLS: a draw weights the rows by their copies (see _refit_weighted); with the
         # dummy columns, from the rows' columns and cross products summed per resampling level once
-        self.poisson = any(s.estimator.method == POISSON for s in specs)
         self.copies_df = _CopiesDf(self)
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
@@ -611,12 +603,14 @@ class _Design:
         """``(spec_id, estimate, std_error, df)`` per specification, or ``None`` to take the stacked refit."""
         if not self._singletons_agree(draw):
             return None
-        return self._refit_stacked(draw) if self.poisson else self._refit_weighted(draw)
+        return self._refit_weighted(draw)
 
     def _refit_weighted(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
         """Least squares and 2SLS on the design's rows, each weighted by its copies in the draw: the stacked
         rows' cross products, residuals and cluster sums are those of the rows counted by their copies
-        (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy)."""
+        (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy).
+        Poisson PML specifications are fitted on the drawn rows (:meth:`_poisson`) and take their inference
+        on the stacked rows."""
         copies = draw.counts[self.levels]
         if not copies.any():  # none of the design's rows drawn: the stacked refit decides
             return None
@@ -658,9 +652,33 @@ class _Design:
         nested: dict[tuple[tuple[str, ...], ...], int] = {}
         out = []
         fits: dict[tuple[object, ...], tuple[_Coef, np.ndarray] | None] = {}
+        poisson: dict[tuple[object, ...], _Fit | None] = {}
+        stacked = None
+        stacked_nested: dict[tuple[tuple[str, ...], ...], int] = {}
         for spec in self.specs:
             est = spec.estimator
             key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
+            if est.method == POISSON:  # fitted on the drawn rows, its inference on the stacked rows
+                if stacked is None:
+                    stacked = self._stacked(draw)
+                rows_s, position, codes, absorber = stacked
+                if key not in poisson:
+                    poisson[key] = self._poisson(spec, gram, norm, raw_norm, draw, rows_s, position, codes)
+                    if poisson[key] is None:
+                        return None
+                fit = poisson[key]
+                assert fit is not None
+                by = spec.inference.by
+                if fit.absorber is not None:  # a Poisson fit on fewer rows: its own absorber and codes
+                    assert fit.codes is not None
+                    own = fit.absorber.nested_df([fit.codes[d] for d in by]) if by and self.settings.absorb else 0
+                    out.append(self._inference(spec, fit, fit.absorber, own, fit.codes))
+                    continue
+                if by not in stacked_nested:
+                    stacked_nested[by] = (absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb
+                                          else 0)
+                out.append(self._inference(spec, fit, absorber, stacked_nested[by], codes))
+                continue
             if key not in fits:  # one regression, whatever the covariance choice
                 coef = (self._two_stage(spec, gram, norm, raw_norm) if est.method == TWO_STAGE
                         else self._regression(spec, gram, norm, raw_norm))
@@ -764,76 +782,18 @@ class _Design:
             mult = (np.bincount(codes, rows.copies, minlength=size) > 0).astype(float)
         return sums, mult, int(mult.sum())
 
-    def _refit_stacked(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
-        """The design's specifications on the draw's stacked rows (a design with Poisson PML specifications)."""
+    def _stacked(self, draw: Draw) -> tuple[np.ndarray, np.ndarray, dict[tuple[str, ...], np.ndarray], Absorber]:
+        """The draw's stacked rows (positions in the design's rows), their copies, the codes of the absorbed
+        terms and cluster variables on them and their absorber: Poisson PML's inference runs on them."""
         b = self.base_index[draw.rows]
         on = b >= 0
         rows, position = b[on], draw.position[on]
-        w = self.w[rows]
-        sw = np.sqrt(w)
-
-        def scaled(a: np.ndarray) -> np.ndarray:  # rows times the square root of their weights (if any)
-            return a * sw[:, None] if self.settings.weights else a
-
-        if self.reweighted:
-            try:
-                drawn, values = self._demean_on_drawn(draw)
-            except _Unsupported:
-                return None
-            where = np.full(len(self.levels), -1, dtype=np.int64)
-            where[drawn] = np.arange(len(drawn))
-            z = scaled(values[where[rows]])
-        elif self.dummies.shape[1]:
-            d = scaled(self.dummies[rows])
-            dd = d.T @ d
-            eigval, eigvec = np.linalg.eigh((dd + dd.T) / 2)
-            ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
-            inverse = (eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T
-            z = scaled(self.within[rows])
-            for _ in range(2):  # one refinement step recovers the digits the normal equations lose
-                z = z - d @ (inverse @ (d.T @ z))
-        else:
-            z = scaled(self.within[rows])
-        z = np.asfortranarray(z)
-        gram = z.T @ z
-        norm = np.sqrt(np.diag(gram))
-        # the raw columns' weighted spread on the draw: sums over the stacked rows are the base rows'
-        # sums weighted by their copies (the columns centred on their base means, against cancellation)
-        raw_norm = self._raw_norm(draw)
-        if raw_norm is None:
-            return None
         codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self.dims.items()}
-        absorber = Absorber(len(rows), self.settings.absorb, weights=w if self.settings.weights else None,
+        absorber = Absorber(len(rows), self.settings.absorb, weights=self.w[rows] if self.settings.weights else None,
                             time=self.settings.time if self.time is not None else None,
                             time_values=self.time[rows] if self.time is not None else None,
                             codes_of=lambda g: codes[g])
-        out = []
-        fits: dict[tuple[object, ...], _Fit | None] = {}
-        nested: dict[tuple[tuple[str, ...], ...], int] = {}
-        for spec in self.specs:
-            est = spec.estimator
-            key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
-            if key not in fits:  # one regression, whatever the covariance choice
-                if est.method == POISSON:
-                    fits[key] = self._poisson(spec, gram, norm, raw_norm, draw, rows, position, codes)
-                else:
-                    coef = (self._two_stage(spec, gram, norm, raw_norm) if est.method == TWO_STAGE
-                            else self._regression(spec, gram, norm, raw_norm))
-                    fits[key] = None if coef is None else coef.on_rows(z)
-                if fits[key] is None:
-                    return None
-            by = spec.inference.by
-            fit = fits[key]
-            assert fit is not None
-            if fit.absorber is not None:  # a Poisson fit on fewer rows: its own absorber and codes
-                assert fit.codes is not None
-                own = fit.absorber.nested_df([fit.codes[d] for d in by]) if by and self.settings.absorb else 0
-                out.append(self._inference(spec, fit, fit.absorber, own, fit.codes))
-                continue
-            if by not in nested:
-                nested[by] = absorber.nested_df([codes[d] for d in by]) if by and self.settings.absorb else 0
-            out.append(self._inference(spec, fit, absorber, nested[by], codes))
-        return out
+        return rows, position, codes, absorber
 
     def _demean_on_drawn(self, draw: Draw) -> tuple[np.ndarray, np.ndarray]:
         """The drawn rows of the design and its columns demeaned on them, each row weighted by its copies

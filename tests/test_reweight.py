@@ -102,13 +102,19 @@ def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.Da
     pd.testing.assert_frame_equal(joint_tests(ledger, fast, 0.95), joint_tests(ledger, slow, 0.95))
 
 
-@pytest.mark.parametrize("column", ["nr", "occupation_block"])
-def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column: str, tmp_path: Path,
-                                                                         wage_panel: pd.DataFrame) -> None:
+@pytest.mark.parametrize(("column", "local"), [("nr", True), ("nr", False), ("occupation_block", True)])
+def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column: str, local: bool, tmp_path: Path,
+                                                                         wage_panel: pd.DataFrame, monkeypatch) -> None:
     """Resampling groups of workers (here workers grouped by the remainder of their id, a coarser
     column fixed within workers): clusters on workers and on the groups are per copy, the year
-    effects shared; group-by-year effects, too many for dummy columns, are demeaned on each draw's rows
-    weighted by their copies; the reweighted draws equal the stacked refits (linearmodels' wage_panel)."""
+    effects shared; group-by-year effects, too many for dummy columns on every row, are held per worker
+    (the dummies of its own group's years, partialled out group by group on each draw) or, when those
+    parts are too large, demeaned on each draw's rows weighted by their copies; the reweighted draws
+    equal the stacked refits (linearmodels' wage_panel)."""
+    from fegrid import reweight
+
+    if not local:
+        monkeypatch.setattr(reweight, "LOCAL_MAX_PART", 0)
     frame = wage_panel.assign(occupation_block=wage_panel["nr"] % 97)
     raw = wage_grid(tmp_path, frame)
     raw["clustering"] = {**raw["clustering"], "blocks": {"kind": "clustered", "by": "occupation_block"}}
@@ -122,7 +128,10 @@ def test_a_coarser_resampling_column_relabels_units_and_clusters_per_copy(column
     codes, levels = pd.factorize(frame[column], sort=True)
     blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), column)
     # resampling workers, the group-by-year effects cross the copies; resampling groups, they are nested
-    assert not rest and any(design.reweighted for block in blocks for design in block.designs) == (column == "nr")
+    designs = [design for block in blocks for design in block.designs]
+    assert not rest
+    assert any(design.local is not None for design in designs) == (column == "nr" and local)
+    assert any(design.reweighted for design in designs) == (column == "nr" and not local)
     fast = draw_curves(grid, frame, specs, range(3), seed=9, column=column).sort_values(KEY, ignore_index=True)
     slow = draw_curves(grid, frame, specs, range(3), seed=9, column=column, reweight=False).sort_values(
         KEY, ignore_index=True)

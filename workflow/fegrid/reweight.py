@@ -10,8 +10,10 @@ For least squares, the stacked fit is the original rows weighted by their copies
   their residuals are computed once per design, not once per draw;
 * the other absorbed terms (period effects: categorical, with few levels) enter through their
   dummies, made orthogonal to the nested terms once, and are partialled out on each draw from the
-  draw's cross products (with no nested term, the intercept is such a column); too many dummies
-  (region-by-period effects), and each draw demeans the drawn rows, weighted by their copies, instead;
+  draw's cross products (with no nested term, the intercept is such a column); with too many dummies
+  for every row (region-by-period effects), each row keeps those of its own resampling level's groups
+  and a draw solves for them part by part (:class:`_LocalDummies`); failing that (parts too large, a
+  trend crossing the copies), each draw demeans the drawn rows, weighted by their copies;
 * each specification's coefficients then come from the draw's small cross products: the rows' cross
   products summed per resampling level once per design, weighted by the levels' copies on each draw.
 
@@ -61,6 +63,7 @@ from .absorb import (
     _constant_within,
     _nested,
     _outranks,
+    _pinv_many,
     codes_on_rows,
     drop_singletons,
 )
@@ -79,6 +82,9 @@ REWEIGHTED_METHODS = (LEAST_SQUARES, TWO_STAGE, POISSON)
 
 #: Most dummy columns of the non-nested absorbed terms a design partials out per draw.
 MAX_DUMMIES = 64
+
+#: Most groups in one connected part of a design's crossing groups held as local dummies (:class:`_LocalDummies`).
+LOCAL_MAX_PART = 256
 
 #: Identification decisions within this factor of their threshold take the stacked refit.
 MARGIN = 100.0
@@ -173,9 +179,14 @@ class _Weighted(NamedTuple):
     copies: np.ndarray
     w: np.ndarray
     counts: np.ndarray
+    local: _LocalDummies | None = None  # with the crossing groups' coefficients of the columns (groups, m)
+    local_gamma: np.ndarray | None = None
 
     def at(self, v: np.ndarray) -> np.ndarray:
         """``z @ v`` on the rows."""
+        if self.local is not None:
+            assert self.local_gamma is not None
+            return self.u @ v - self.local.correction(self.local_gamma @ v)
         return self.u @ (v if self.transform is None else self.transform @ v)
 
     def on(self, codes: np.ndarray) -> np.ndarray:
@@ -441,6 +452,72 @@ class _DrawState:
         return total
 
 
+class _LocalDummies:
+    """The dummy columns of absorbed terms that cross the resampling levels, when they are too many to hold
+    for every row (region-by-period effects): a level's rows meet few of them, so each row keeps only the
+    dummies of its own level's groups (its level's ``slots``), made orthogonal to the nested terms once.
+    A draw sums their cross products per level, weighted by the copies, into the systems of the connected
+    parts of the groups that share a level (one per region), each solved by a pseudo-inverse."""
+
+    def __init__(self, ids: np.ndarray, n_ids: int, level_of_row: np.ndarray, n_levels: int) -> None:
+        n, t = ids.shape
+        pairs = np.unique(np.repeat(level_of_row.astype(np.int64), t) * n_ids + ids.ravel())
+        pair_level, pair_id = pairs // n_ids, pairs % n_ids
+        per_level = np.bincount(pair_level, minlength=n_levels)
+        self.k = int(per_level.max()) if len(per_level) else 0
+        first = np.concatenate([[0], np.cumsum(per_level)[:-1]])
+        rank = np.arange(len(pairs)) - first[pair_level]
+        # each level's groups by slot, n_ids where a level has fewer
+        self.slots = np.full((n_levels, self.k), n_ids, dtype=np.int64)
+        self.slots[pair_level, rank] = pair_id
+        self.n_ids = n_ids
+        slot = np.searchsorted(pairs, np.repeat(level_of_row.astype(np.int64), t) * n_ids + ids.ravel())
+        self.rows = np.zeros((n, self.k))
+        self.rows[np.repeat(np.arange(n), t), rank[slot]] = 1.0
+        self.level_of_row = level_of_row
+        # the connected parts of the groups (linked by the levels they share), and each part's block
+        graph = sp.coo_array((np.ones(len(pairs)), (pair_id, pair_level + n_ids)), shape=(n_ids + n_levels,) * 2)
+        parts = np.unique(connected_components(graph, directed=False)[1][:n_ids], return_inverse=True)[1].ravel()
+        self.sizes = np.bincount(parts)
+        order = np.argsort(parts, kind="stable")
+        local = np.empty(n_ids, dtype=np.int64)
+        local[order] = np.arange(n_ids) - np.repeat(np.concatenate([[0], np.cumsum(self.sizes)[:-1]]), self.sizes)
+        self.offsets = np.concatenate([[0], np.cumsum(self.sizes * self.sizes)[:-1]])
+        self.n_entries = int((self.sizes * self.sizes).sum())
+        self.members = np.split(order, np.cumsum(self.sizes)[:-1])
+        a, b = self.slots[:, :, None], self.slots[:, None, :]
+        real = (a < n_ids) & (b < n_ids)
+        pa, la, lb = parts[np.minimum(a, n_ids - 1)], local[np.minimum(a, n_ids - 1)], local[np.minimum(b, n_ids - 1)]
+        self.entry = np.where(real, self.offsets[pa] + la * self.sizes[pa] + lb, self.n_entries)
+
+    def solve(self, weighted: np.ndarray, m: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """From the per-level cross products weighted by the copies ``(levels, q, q)`` (the ``m`` columns,
+        then the slots): the cross products of the columns, those of the groups with the columns
+        ``(groups, m)`` and ``Gamma`` (groups, m), the columns' coefficients on the groups."""
+        zz = weighted[:, :m, :m].sum(axis=0)
+        flat = (self.slots[:, :, None] * m + np.arange(m)).ravel()  # the padding slots land past the groups
+        dz = np.bincount(flat, weighted[:, m:, :m].ravel(), minlength=(self.n_ids + 1) * m)
+        dz = dz[: self.n_ids * m].reshape(self.n_ids, m)
+        blocks = np.bincount(self.entry.ravel(), weighted[:, m:, m:].ravel(), minlength=self.n_entries + 1)
+        inverses = _pinv_many([blocks[o: o + k * k].reshape(k, k) for o, k in zip(self.offsets, self.sizes)])
+        gamma = np.zeros((self.n_ids, m))
+        for members, inverse in zip(self.members, inverses):
+            gamma[members] = inverse @ dz[members]
+        return zz, dz, gamma
+
+    def set_rows(self, rows: np.ndarray) -> None:
+        """The rows' local dummies made orthogonal to the nested terms, held as a sparse (rows, groups) matrix
+        (a padding slot points past the groups)."""
+        self.rows = rows
+        n = len(rows)
+        self.matrix = sp.csr_array((rows.ravel(), (np.repeat(np.arange(n), self.k),
+                                                   self.slots[self.level_of_row].ravel())), shape=(n, self.n_ids + 1))
+
+    def correction(self, g: np.ndarray) -> np.ndarray:
+        """``D g`` on the rows for the groups' values ``g`` (groups,) or (groups, k)."""
+        return self.matrix @ np.concatenate([g, np.zeros((1, *g.shape[1:]))])
+
+
 class _Unsupported(Exception):
     """A block or design that the reweighting does not handle: it takes the stacked refit."""
 
@@ -546,11 +623,25 @@ class _Design:
             block[np.flatnonzero(hit), c[hit] - 1] = 1.0
             dummies.append(block)
         d = None if dummies is None else np.hstack(dummies) if dummies else np.zeros((len(rows), 0))
-        # with many dummy columns, each draw demeans the drawn rows, weighted by their copies, instead
+        # with many dummy columns, each row keeps those of its resampling level's groups (_LocalDummies) or,
+        # failing that, each draw demeans the drawn rows, weighted by their copies
+        self.level_ids = np.unique(self.levels)
+        level_of_row = np.searchsorted(self.level_ids, self.levels)
+        self.local: _LocalDummies | None = None
+        crossing = [i for i in (absorber._active if settings.absorb else []) if i not in nested]
+        if d is None and nested and crossing and not any(settings.absorb[i].has_slope for i in crossing):
+            offsets = np.concatenate([[0], np.cumsum([absorber._nlev[i] for i in crossing])])
+            local = _LocalDummies(np.column_stack([offsets[j] + absorber._codes[i] for j, i in enumerate(crossing)]),
+                                  int(offsets[-1]), level_of_row, len(self.level_ids))
+            q = raw.shape[1] + local.k
+            if (local.k <= MAX_DUMMIES and int(local.sizes.max()) <= LOCAL_MAX_PART
+                    and len(self.level_ids) * q * q <= MAX_CROSS_CELLS):
+                self.local, d = local, local.rows
         self.reweighted = d is None
         if self.reweighted:
             self.within = self.dummies = np.zeros((len(rows), 0))
         else:
+            assert d is not None
             both = np.asfortranarray(np.hstack([raw, d]))
             if nested:
                 inner = Absorber(rows, tuple(settings.absorb[i] for i in nested),
@@ -559,17 +650,20 @@ class _Design:
                 both = inner.demean(both).values
             self.within = np.ascontiguousarray(both[:, : raw.shape[1]])
             self.dummies = np.ascontiguousarray(both[:, raw.shape[1]:])
+            if self.local is not None:  # the local dummies made orthogonal to the nested terms
+                self.local.set_rows(self.dummies)
         self.ident_tol = max(1e-9, 1e3 * settings.tolerance)
         # least squares and 2SLS: a draw weights the rows by their copies (see _refit_weighted); with the
         # dummy columns, from the rows' columns and cross products summed per resampling level once
         self.copies_df = _CopiesDf(self)
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
-        self.level_ids = np.unique(self.levels)
         if not self.reweighted:
             self.u = np.ascontiguousarray(np.hstack([self.within, self.dummies]))
-            self.cross = _cross_per_level(self.u, self.w, np.searchsorted(self.level_ids, self.levels),
-                                          len(self.level_ids))
+            self.cross = _cross_per_level(self.u, self.w, level_of_row, len(self.level_ids))
+            if self.local is not None and self.cross is None:  # too large: each draw demeans the drawn rows
+                self.reweighted, self.local, self.u = True, None, None
+                self.within = self.dummies = np.zeros((len(rows), 0))
 
     def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
         n = int(codes.max()) + 1 if len(codes) else 0
@@ -615,7 +709,8 @@ class _Design:
         if not copies.any():  # none of the design's rows drawn: the stacked refit decides
             return None
         m = len(self.columns)
-        transform: np.ndarray | None = None  # the columns (partialled) from the rows' stored columns
+        transform: np.ndarray | None = None
+        local_gamma: np.ndarray | None = None  # the columns (partialled) from the rows' stored columns
         if self.reweighted:
             try:
                 rows, u = self._demean_on_drawn(draw)
@@ -624,6 +719,15 @@ class _Design:
             c = copies[rows].astype(float)
             cw = c * self.w[rows]
             gram = (u * cw[:, None]).T @ u
+        elif self.local is not None:  # the crossing groups' dummies partialled out part by part
+            assert self.cross is not None
+            rows, u = None, self.within
+            c = copies.astype(float)
+            q = m + self.local.k
+            weighted = (self.cross * draw.counts[self.level_ids].astype(float)[:, None]).reshape(-1, q, q)
+            weighted = (weighted + weighted.transpose(0, 2, 1)) / 2
+            zz, dz, local_gamma = self.local.solve(weighted, m)
+            gram = zz - dz.T @ local_gamma
         else:
             assert self.u is not None
             rows, u = None, self.u
@@ -647,7 +751,8 @@ class _Design:
         raw_norm = self._raw_norm(draw)
         if raw_norm is None:
             return None
-        weighted = _Weighted(u, transform, rows, c, self.w if rows is None else self.w[rows], draw.counts)
+        weighted = _Weighted(u, transform, rows, c, self.w if rows is None else self.w[rows], draw.counts,
+                             self.local, local_gamma)
         absorbed_df: int | None = None
         nested: dict[tuple[tuple[str, ...], ...], int] = {}
         out = []

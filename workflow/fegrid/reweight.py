@@ -132,10 +132,10 @@ def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = Non
 
 
 class _Fit(NamedTuple):
-    """One regression of a draw: the kept columns (focal first; empty when the focal regressor is not
-    identified in this draw), ``B``, the coefficients, residuals ``e``, the focal row ``h`` of the
-    estimator's ``B X'`` and the scores' regressors (``X``, or the fitted ``PX`` of 2SLS), on the draw's
-    stacked rows; a Poisson fit that leaves some rows out brings the absorber and codes of the rest."""
+    """One Poisson PML fit of a draw: the kept columns (focal first; empty when the focal regressor is not
+    identified in this draw), ``B``, the coefficients, the scaled residuals ``e``, the focal row ``h`` of
+    ``B X'`` and the scores' regressors ``X``, on the draw's stacked rows; a fit that leaves some rows out
+    brings the absorber and codes of the rest."""
 
     idx: list[int]
     bread: np.ndarray
@@ -550,7 +550,8 @@ class _Dim:
 
 
 class _Design:
-    """One complete-case group of a block's least-squares and 2SLS specifications, prepared once."""
+    """One complete-case group of a block's least-squares, 2SLS and Poisson PML specifications, prepared
+    once per chunk of draws."""
 
     def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
                  settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str],
@@ -1161,8 +1162,9 @@ class _Design:
 
 
 class ReweightedBlock:
-    """The least-squares and 2SLS specifications of one block (sample, absorbed effects, weights), prepared
-    once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the stacked refit."""
+    """The least-squares, 2SLS and Poisson PML specifications of one block (sample, absorbed effects,
+    weights), prepared once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the
+    stacked refit."""
 
     def __init__(self, grid: Grid, frame: pd.DataFrame, specs: list[Spec], levels: np.ndarray, n_levels: int,
                  column: str, observed: Mapping[str, float]) -> None:

@@ -56,10 +56,11 @@ def _ledger(grid, frame, specs) -> pd.DataFrame:
 
 def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
     """Estimates, SEs and df of every least-squares and 2SLS draw equal the stacked refits' (estimates and SEs
-    to 1e-9 relative: the stacked path demeans by alternating projections where the effects have
-    three terms; df exactly), including each copy counted as its own cluster and its own effects,
-    the two-way and homoskedastic kinds, weights, singletons and the draws that empty a sample;
-    and the joint tests' p-values are the same."""
+    to 1e-8 relative, nearly all to 1e-9: the stacked path demeans by alternating projections to 1e-10
+    where the effects have three terms, and a nearly unidentified specification (a 2SLS draw with an
+    SE of 7e5) amplifies that up to the identification margin of 100; df exactly), including each copy
+    counted as its own cluster and its own effects, the two-way and homoskedastic kinds, weights,
+    singletons and the draws that empty a sample; and the joint tests' p-values are the same."""
     grid, specs = _grid(tmp_path, wage_panel)
     frame = wage_panel
     codes, levels = pd.factorize(frame["nr"], sort=True)
@@ -74,7 +75,8 @@ def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.Da
         a, b = fast[col].to_numpy(), slow[col].to_numpy()
         assert np.array_equal(np.isnan(a), np.isnan(b)), col
         ok = ~np.isnan(b)
-        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-9, atol=1e-12, err_msg=col)
+        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-8, atol=1e-12, err_msg=col)
+        assert np.quantile(np.abs(a[ok] - b[ok]) / np.maximum(np.abs(b[ok]), 1e-12), 0.99) < 1e-9, col
     pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
     # the cases the test is meant to cover did occur: a draw's sample is the copies of the sample's rows,
     # so a filter on the unit column keeps its meaning in every draw (before, it was applied again to the

@@ -659,12 +659,36 @@ class _Design:
         self.copies_df = _CopiesDf(self)
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
+        if not self.reweighted and self.dummies.shape[1]:
+            self.within = self._partialled(self.within, level_of_row)
         if not self.reweighted:
             self.u = np.ascontiguousarray(np.hstack([self.within, self.dummies]))
             self.cross = _cross_per_level(self.u, self.w, level_of_row, len(self.level_ids))
             if self.local is not None and self.cross is None:  # too large: each draw demeans the drawn rows
                 self.reweighted, self.local, self.u = True, None, None
                 self.within = self.dummies = np.zeros((len(rows), 0))
+
+    def _partialled(self, within: np.ndarray, level_of_row: np.ndarray) -> np.ndarray:
+        """The columns with the dummies partialled out on the design's own rows (each row once), twice: the
+        second pass recovers the digits the normal equations lose. A draw's partialling is then a small
+        correction, which its cross products give to full precision even for nearly collinear columns."""
+        m = within.shape[1]
+        for _ in range(2):
+            if self.local is not None:
+                q = m + self.local.k
+                cross = _cross_per_level(np.hstack([within, self.dummies]), self.w, level_of_row, len(self.level_ids))
+                if cross is None:
+                    return within
+                gamma = self.local.solve(cross.reshape(-1, q, q), m)[2]
+                within = within - self.local.correction(gamma)
+            else:
+                d = self.dummies
+                dw = d * self.w[:, None]
+                dd = d.T @ dw
+                eigval, eigvec = np.linalg.eigh((dd + dd.T) / 2)
+                ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
+                within = within - d @ (((eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T) @ (dw.T @ within))
+        return np.ascontiguousarray(within)
 
     def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
         n = int(codes.max()) + 1 if len(codes) else 0

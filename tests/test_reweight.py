@@ -301,3 +301,59 @@ def test_singletons_among_the_copies_are_those_the_stacked_rows_hold(tmp_path: P
         assert design._copies_leave_singletons(copies, keep) == expected, trial
         found[expected] += 1
     assert min(found.values()) > 20  # both answers were met
+
+
+def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, wage_panel: pd.DataFrame,
+                                                                monkeypatch) -> None:
+    """A least-squares design refits a batch of draws together (batched products, the same formulas) and
+    gives each draw's own refit to 1e-10, df exactly, None where the draw alone gives None: every
+    covariance kind, clusters relabelled per copy (the worker's) and shared (crews of workers, one of
+    them absent from the draws without its worker), weights,
+    singletons, not-identified regressions, and the draws whose decisions differ from the batch's.
+    linearmodels' wage_panel, with one column made worker-specific except for worker 13, so that a
+    control is absorbed by worker effects in the draws without worker 13 and kept in the others."""
+    from fegrid import reweight
+
+    frame = wage_panel.copy()
+    frame["mostly_fixed"] = (frame["nr"] % 7).astype(float) + np.where(frame["nr"] == 13, frame["exper"], 0.0)
+    frame["crew"] = np.where(frame["nr"] == 13, 99, frame["nr"] // 500)  # worker 13 alone in a crew
+    raw = wage_grid(tmp_path, frame, weights={"unweighted": None, "by_hours": "hours"})
+    raw["clustering"]["crew"] = {"kind": "clustered", "by": "crew"}
+    raw["samples"] = {"all": {}, "long_hours": {"range": {"hours": {"min": 2600}}}}
+    raw["control_sets"] = {"combinations_of": ["expersq", "mostly_fixed"]}
+    grid = load_config(raw)
+    specs = grid.expand()
+    codes, levels = pd.factorize(frame["nr"], sort=True)
+    blocks, _ = prepare_blocks(grid, frame, specs, codes, len(levels), "nr")
+    designs = [d for b in blocks for d in b.designs if d.batchable]
+    assert len(designs) > 5 and any(not d.batchable for b in blocks for d in b.designs)  # pooled: not batched
+    original, alone = reweight._Design._refit_weighted, []
+
+    def counted(self, draw):  # the draws that refit_many hands to the one-draw path
+        alone.append(self)
+        return original(self, draw)
+
+    draws = [draw_levels(codes, len(levels), np.random.default_rng([3, d])) for d in range(40)]
+    kinds, results = set(), 0
+    for design in designs:
+        monkeypatch.setattr(reweight._Design, "_refit_weighted", counted)
+        together = design.refit_many(draws)
+        monkeypatch.setattr(reweight._Design, "_refit_weighted", original)
+        one_by_one = [design.refit(d) for d in draws]
+        for a, b in zip(together, one_by_one):
+            assert (a is None) == (b is None)
+            if a is None:
+                continue
+            results += len(a)
+            assert [r[0] for r in a] == [r[0] for r in b]
+            got, want = np.array([r[1:] for r in a]), np.array([r[1:] for r in b])
+            assert np.array_equal(np.isnan(got), np.isnan(want))
+            ok = ~np.isnan(want)
+            np.testing.assert_allclose(got[ok], want[ok], rtol=1e-10, atol=1e-13)
+            np.testing.assert_array_equal(got[:, 2], want[:, 2])
+        kinds |= {s.inference.kind for s in design.specs}
+    assert {"hc1", "clustered", "two_way_clustered", "homoskedastic"} <= kinds and results > 1000
+    assert any(d.settings.weights for d in designs) and any(not d.check_singletons or not d.cc_keep.all()
+                                                            for d in designs)
+    # draws refitted alone inside refit_many: those with and without worker 13 decide differently on mostly_fixed
+    assert 0 < len(alone) < len(draws) * len(designs) / 2

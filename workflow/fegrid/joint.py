@@ -54,7 +54,7 @@ from .estimate import SpecRequest, fit_block
 from .estimators import POISSON
 from .grid import LINEARIZED, REFIT, Grid, Spec
 from .ledger import PAIR, STATUS_OK
-from .reweight import Draw, draw_levels, draw_picks, prepare_blocks
+from .reweight import BATCH_DRAWS, Draw, draw_levels, draw_picks, prepare_blocks
 from .samples import SampleDef, apply_sample, sample_rows
 
 __all__ = ["REFIT", "LINEARIZED", "method_text", "shared_cluster_caution", "resample_panel", "stack_draw",
@@ -169,13 +169,19 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
     by_block: dict[str, list[Spec]] = {}
     for spec in stacked:
         by_block.setdefault(spec.block_key, []).append(spec)
-    for d in draws:
-        draw = draw_levels(codes, len(levels), np.random.default_rng([seed, d]))
+    draws = list(draws)
+    made: dict[int, tuple[Draw, list[list[dict[str, Any]] | None]]] = {}
+    for j, d in enumerate(draws):
+        if j % BATCH_DRAWS == 0:  # the next batch of draws: each reweighted block refits them together
+            batch = draws[j: j + BATCH_DRAWS]
+            drawn = [draw_levels(codes, len(levels), np.random.default_rng([seed, b])) for b in batch]
+            refits = [block.refit_many(drawn) for block in blocks]
+            made = {k: (drawn[k], [r[k] for r in refits]) for k in range(len(batch))}
+        draw, refitted = made.pop(j % BATCH_DRAWS)
         boot: pd.DataFrame | None = None  # the stacked panel, made only when a block needs it
         samples: dict[str, pd.DataFrame | None] = {}
         todo = [by_block[k] for k in sorted(by_block)]
-        for block in blocks:
-            got = block.refit(draw)
+        for block, got in zip(blocks, refitted):
             if got is None:
                 todo.append(block.specs)
             else:

@@ -75,7 +75,8 @@ from .grid import Grid, Spec
 from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
 
-__all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "REWEIGHTED_METHODS", "ReweightedBlock", "prepare_blocks"]
+__all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "REWEIGHTED_METHODS", "BATCH_DRAWS", "ReweightedBlock",
+           "prepare_blocks"]
 
 #: The estimation methods whose draws are refitted as reweightings (the others take the stacked copies).
 REWEIGHTED_METHODS = (LEAST_SQUARES, TWO_STAGE, POISSON)
@@ -93,6 +94,14 @@ MARGIN = 100.0
 #: level once, so that a draw's cross products are those sums weighted by the levels' copies (8 MB); larger
 #: designs sum over their rows on each draw.
 MAX_CROSS_CELLS = 1_000_000
+
+#: Draws a least-squares design refits together (:meth:`_Design.refit_many`): one batched product per
+#: step for all of them instead of one per draw.
+BATCH_DRAWS = 50
+
+#: Most numbers (rows x draws x 8) of the row values a batch of draws holds at once (32 MB): larger designs
+#: take fewer draws per batch.
+BATCH_CELLS = 4_000_000
 
 
 class Draw(NamedTuple):
@@ -165,6 +174,21 @@ class _Coef(NamedTuple):
 
 
 _NOT_IDENTIFIED_COEF = _Coef([], np.empty((0, 0)), np.empty(0), np.empty(0), np.empty(0), np.empty((0, 0)))
+
+
+class _Batch(NamedTuple):
+    """One least-squares regression of a batch of draws (:meth:`_Design.refit_many`): the draws it was
+    computed on (positions in the batch), the kept columns (focal first), ``B`` and the focal coefficient
+    per draw, the residuals and the focal row of ``B X'`` on the design's rows (rows, draws), and the
+    draws' combinations giving the partialled columns (``None``: the stored columns)."""
+
+    draws: np.ndarray
+    idx: list[int]
+    bread: np.ndarray
+    beta: np.ndarray
+    e: np.ndarray
+    h: np.ndarray
+    transform: np.ndarray | None
 
 
 class _Weighted(NamedTuple):
@@ -657,6 +681,7 @@ class _Design:
         # least squares and 2SLS: a draw weights the rows by their copies (see _refit_weighted); with the
         # dummy columns, from the rows' columns and cross products summed per resampling level once
         self.copies_df = _CopiesDf(self)
+        self._indicators: dict[tuple[str, ...], sp.csr_array] = {}
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
         if not self.reweighted and self.dummies.shape[1]:
@@ -723,6 +748,249 @@ class _Design:
         if not self._singletons_agree(draw):
             return None
         return self._refit_weighted(draw)
+
+    @property
+    def batchable(self) -> bool:
+        """Whether :meth:`refit_many` refits draws together: least squares alone, from the design's stored
+        columns and their cross products summed per resampling level."""
+        return (self.u is not None and self.cross is not None and self.local is None and not self.reweighted
+                and all(s.estimator.method == LEAST_SQUARES for s in self.specs))
+
+    def refit_many(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
+        """:meth:`refit` of each draw. A least-squares design (:attr:`batchable`) refits the draws together,
+        each step one batched product for all of them (the same formulas, summed in another order); a draw
+        whose identification decisions differ from the batch's, or lie near a threshold, takes :meth:`refit`."""
+        if not self.batchable:
+            return [self.refit(d) for d in draws]
+        out: list[list[tuple[str, float, float, float]] | None] = [None] * len(draws)
+        # a draw with no copy of the design's rows, or whose singletons change, gives None (see refit)
+        todo = [i for i, d in enumerate(draws) if d.counts[self.levels].any() and self._singletons_agree(d)]
+        size = max(1, BATCH_CELLS // (8 * len(self.w)))
+        for start in range(0, len(todo), size):
+            part = todo[start: start + size]
+            got = self._refit_batch([draws[i] for i in part])
+            for i, g in zip(part, got):
+                out[i] = self._refit_weighted(draws[i]) if g is None else g
+        return out
+
+    def _refit_batch(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
+        """:meth:`_refit_weighted` of least-squares draws, together: ``None`` for a draw to refit alone."""
+        assert self.u is not None and self.cross is not None
+        nan = float("nan")
+        d_count, m, q = len(draws), len(self.columns), self.u.shape[1]
+        counts = np.stack([d.counts for d in draws]).astype(float)
+        copies = counts[:, self.levels]
+        # the raw columns' spread (as _raw_norm): a nearly constant column takes the draw's own refit
+        cw = copies * self.w
+        total = cw.sum(axis=1)
+        first = cw @ self.raw_centred
+        raw_norm = np.sqrt(np.maximum(cw @ self.raw_squared - first * first / total[:, None], 0.0))
+        alone = np.any(raw_norm <= 1e-6 * np.sqrt(total)[:, None] * self.raw_scale, axis=1)
+        # the draws' cross products, and the dummy columns partialled out of them (as _refit_weighted)
+        big = (counts[:, self.level_ids] @ self.cross).reshape(d_count, q, q)
+        big = (big + big.transpose(0, 2, 1)) / 2
+        gram = big[:, :m, :m]
+        transform: np.ndarray | None = None
+        if q > m:
+            eigval, eigvec = np.linalg.eigh(big[:, m:, m:])
+            ok = eigval > 1e-12 * np.maximum(eigval.max(axis=1), 1e-300)[:, None]
+            inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
+            gamma = ((eigvec * inverse[:, None, :]) @ eigvec.transpose(0, 2, 1)) @ big[:, m:, :m]
+            gram = gram - big[:, :m, m:] @ gamma
+            transform = np.concatenate([np.broadcast_to(np.eye(m), (d_count, m, m)), -gamma], axis=1)
+        gram = (gram + gram.transpose(0, 2, 1)) / 2
+        norm = np.sqrt(np.maximum(np.diagonal(gram, axis1=1, axis2=2), 0.0))
+        results: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        fits: dict[tuple[object, ...], _Batch | None] = {}
+        absorbed: np.ndarray | None = None
+        nested: dict[tuple[tuple[str, ...], ...], np.ndarray] = {}
+        for spec in self.specs:
+            key = (spec.outcome, spec.focal, spec.controls)
+            if key not in fits:
+                fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, transform)
+            fit = fits[key]
+            if fit is None:  # not identified in these draws (those deciding otherwise take their own refit)
+                results[spec.spec_id] = (np.full(d_count, nan), np.full(d_count, nan), np.full(d_count, nan))
+                continue
+            if absorbed is None:  # the effects' df on each draw's stacked rows, counted from the copies
+                absorbed = np.zeros(d_count)
+                nested = {by: np.zeros(d_count) for by in self.by_sets}
+                for i in np.flatnonzero(~alone):
+                    a, per_by = self.copies_df.count(draws[i], self.by_sets)
+                    absorbed[i] = a
+                    for by, v in per_by.items():
+                        nested[by][i] = v
+            assert absorbed is not None
+            results[spec.spec_id] = self._batch_inference(spec, fit, copies, counts, absorbed,
+                                                          nested[spec.inference.by])
+        out: list[list[tuple[str, float, float, float]] | None] = []
+        for i in range(d_count):
+            if alone[i]:
+                out.append(None)
+                continue
+            out.append([(s.spec_id, float(results[s.spec_id][0][i]), float(results[s.spec_id][1][i]),
+                         float(results[s.spec_id][2][i])) for s in self.specs])
+        return out
+
+    def _batch_decide(self, j: int, kept: Sequence[int], norm: np.ndarray, raw_norm: np.ndarray, gram: np.ndarray,
+                      alone: np.ndarray) -> bool | None:
+        """Whether column ``j`` is kept (not absorbed, and not collinear with ``kept``) in the draws, by the
+        rules of :meth:`_absorbed` and :meth:`_collinear`: the draws' common decision; a draw near a
+        threshold, or deciding otherwise, is marked in ``alone`` (``None``: no draw left)."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = norm[:, j] / raw_norm[:, j]
+        alone |= (self.ident_tol / MARGIN < ratio) & (ratio < self.ident_tol * MARGIN)
+        live = np.flatnonzero(~alone)
+        if not len(live):
+            return None
+        absorbed = ratio[live] <= self.ident_tol
+        common = bool(np.count_nonzero(absorbed) * 2 > len(live))
+        alone[live[absorbed != common]] = True
+        if common or not kept:
+            return not common
+        live = np.flatnonzero(~alone)
+        ks = list(kept)
+        g = gram[live]
+        try:
+            solved = np.linalg.solve(g[:, ks][:, :, ks], g[:, ks, j][:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            alone[live] = True
+            return None
+        r2 = g[:, j, j] - np.einsum("dk,dk->d", g[:, j, ks], solved)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            alone[live[~(np.sqrt(np.maximum(r2, 0.0)) / norm[live, j] >= 1e-4)]] = True
+        return True
+
+    def _batch_regression(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
+                          alone: np.ndarray, transform: np.ndarray | None) -> _Batch | None:
+        """:meth:`_regression` on the draws not marked ``alone`` (``None``: the focal regressor is absorbed)."""
+        kept: list[int] = []
+        for c in spec.controls:
+            keep = self._batch_decide(self.pos[c], kept, norm, raw_norm, gram, alone)
+            if keep:
+                kept.append(self.pos[c])
+        j = self.pos[spec.focal]
+        if not self._batch_decide(j, kept, norm, raw_norm, gram, alone):
+            return None
+        idx = [j, *kept]
+        live = np.flatnonzero(~alone)
+        y = self.pos[spec.outcome]
+        g = gram[live]
+        try:
+            bread = np.linalg.inv(g[:, idx][:, :, idx])
+        except np.linalg.LinAlgError:
+            alone[live] = True
+            return None
+        beta = (bread @ g[:, idx, y][:, :, None])[:, :, 0]
+        ev = np.zeros((len(live), len(self.columns)))
+        ev[:, y] = 1.0
+        ev[:, idx] -= beta
+        hv = np.zeros_like(ev)
+        hv[:, idx] = bread[:, :, 0]
+        both = np.stack([ev, hv], axis=2)  # (draws, m, 2)
+        tr = None if transform is None else transform[live]
+        if tr is not None:
+            both = tr @ both
+        assert self.u is not None
+        on_rows = (self.u @ both.transpose(1, 0, 2).reshape(self.u.shape[1], -1)).reshape(len(self.w), len(live), 2)
+        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], tr)
+
+    def _batch_inference(self, spec: Spec, fit: _Batch, copies: np.ndarray, counts: np.ndarray, absorbed: np.ndarray,
+                         nested: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`_weighted_inference` of one covariance choice for the draws of ``fit``: estimates, SEs and
+        df over all the batch's draws (NaN where not computed)."""
+        d_count = len(copies)
+        kind = covariance_kind(spec.inference.kind)
+        live = fit.draws
+        c = copies[live]
+        n = c.sum(axis=1)
+        p = len(fit.idx)
+        e = fit.e
+        w = self.w[:, None]
+        bad = np.zeros(len(live), dtype=bool)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if isinstance(kind, Iid):
+                dof = n - (p + absorbed[live])
+                variance = np.einsum("dn,nd->d", c, w * e * e) / dof * fit.bread[:, 0, 0]
+                df = dof
+            elif isinstance(kind, TwoWay):
+                dof = n - (p + absorbed[live] - nested[live])
+                assert self.u is not None
+                select = np.zeros((len(self.columns), p))
+                select[fit.idx, np.arange(p)] = 1.0
+                x = select[None] if fit.transform is None else fit.transform @ select
+                x = np.broadcast_to(x, (len(live), x.shape[1], p))
+                zx = self.u @ x.transpose(1, 0, 2).reshape(x.shape[1], -1)
+                scores = zx.reshape(len(self.w), len(live), p) * (w * e)[:, :, None]
+                by = spec.inference.by
+                meat = np.zeros((len(live), p, p))
+                groups = []
+                for dim, sign in zip((by[0], by[1], by[0] + by[1]), (1.0, 1.0, -1.0)):
+                    sums, mult, g = self._batch_cluster_sums(dim, scores, c, counts[live])
+                    bad |= g < 2
+                    factor = np.where(g < 2, 0.0, sign * g / (g - 1) * (n - 1) / dof)
+                    meat += factor[:, None, None] * np.einsum("gdi,dg,gdj->dij", sums, mult, sums)
+                    groups.append(g)
+                bad |= dof <= 0
+                meat[bad] = 0.0
+                v = fit.bread @ meat @ fit.bread
+                v = (v + v.transpose(0, 2, 1)) / 2
+                eigval, eigvec = np.linalg.eigh(v)
+                clip = eigval.min(axis=1) < 0
+                if clip.any():
+                    vecs = eigvec[clip]
+                    v[clip] = (vecs * np.clip(eigval[clip], 0, None)[:, None, :]) @ vecs.transpose(0, 2, 1)
+                variance, df = v[:, 0, 0], np.minimum(groups[0], groups[1]) - 1.0
+            else:
+                he = w * fit.h * e
+                if isinstance(kind, Robust):
+                    dof = n - (p + absorbed[live])
+                    variance, df = n / dof * np.einsum("dn,nd->d", c, he * he), dof
+                else:
+                    assert isinstance(kind, OneWay)
+                    dof = n - (p + absorbed[live] - nested[live])
+                    sums, mult, g = self._batch_cluster_sums(spec.inference.by[0], he, c, counts[live])
+                    bad |= g < 2
+                    variance = g / (g - 1) * (n - 1) / dof * np.einsum("dg,gd->d", mult, sums * sums)
+                    df = g - 1.0
+            bad |= dof <= 0
+            se = np.sqrt(variance)
+        beta = fit.beta.copy()
+        finite = np.isfinite(beta) & np.isfinite(se)
+        estimate, std_error, dfs = np.full(d_count, np.nan), np.full(d_count, np.nan), np.full(d_count, np.nan)
+        estimate[live] = np.where(bad | finite, beta, np.nan)
+        std_error[live] = np.where(bad | ~finite, np.nan, se)
+        dfs[live] = np.where(bad | ~finite, np.nan, df)
+        return estimate, std_error, dfs
+
+    def _indicator(self, dim: tuple[str, ...]) -> sp.csr_array:
+        """The design's rows' clusters of ``dim`` (pairs, for a variable the copies relabel), as a sparse
+        clusters x rows indicator matrix."""
+        if dim not in self._indicators:
+            d = self.dims[dim]
+            codes = d.pair if d.copied else d.codes
+            assert codes is not None
+            size = len(d.pair_level) if d.copied and d.pair_level is not None else d.n
+            n = len(codes)
+            self._indicators[dim] = sp.csr_array((np.ones(n), (codes, np.arange(n))), shape=(size, n))
+        return self._indicators[dim]
+
+    def _batch_cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, copies: np.ndarray, counts: np.ndarray
+                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:meth:`_cluster_sums` for draws together: ``values`` (rows, draws[, k]) summed per cluster (clusters,
+        draws[, k]), each cluster's count per draw (draws, clusters) and the draws' numbers of clusters."""
+        d = self.dims[dim]
+        ind = self._indicator(dim)
+        rows = values.shape[0]
+        if d.copied:
+            assert d.pair_level is not None
+            sums = ind @ values.reshape(rows, -1)
+            mult = counts[:, d.pair_level]
+        else:
+            scaled = values * (copies.T if values.ndim == 2 else copies.T[:, :, None])
+            sums = ind @ scaled.reshape(rows, -1)
+            mult = ((ind @ copies.T) > 0).T.astype(float)
+        return sums.reshape(ind.shape[0], *values.shape[1:]), mult, mult.sum(axis=1)
 
     def _refit_weighted(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
         """Least squares and 2SLS on the design's rows, each weighted by its copies in the draw: the stacked
@@ -1225,6 +1493,22 @@ class ReweightedBlock:
                         for s, b, se, df in got)
         return rows
 
+
+    def refit_many(self, draws: Sequence[Draw]) -> list[list[dict[str, Any]] | None]:
+        """:meth:`refit` of each draw, each design refitting the draws together (:meth:`_Design.refit_many`)."""
+        got: list[list[dict[str, Any]] | None] = [
+            [] if d.counts[self.levels_in_sample].any() else None for d in draws]
+        for design in self.designs:
+            chosen = [i for i, g in enumerate(got) if g is not None]
+            for i, rows in zip(chosen, design.refit_many([draws[i] for i in chosen])):
+                if rows is None:
+                    got[i] = None
+                    continue
+                out = got[i]
+                assert out is not None
+                out.extend({"spec_id": s, "estimate": b, "std_error": se, "df_inference": df,
+                            "imposed": s in self.imposed} for s, b, se, df in rows)
+        return got
 
 def prepare_blocks(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], levels: np.ndarray, n_levels: int,
                    column: str, observed: Mapping[str, float] | None = None

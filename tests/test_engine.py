@@ -633,3 +633,31 @@ def test_an_absorber_on_a_row_count_equals_one_on_the_frame(wage_panel: pd.DataF
     assert on_frame.nested_df([unit]) == on_count.nested_df([unit]) > 0
     with pytest.raises(ValueError, match="codes_of"):
         Absorber(len(wage_panel), terms, time="year")
+
+
+@pytest.mark.parametrize("unbalanced", [False, True])
+def test_indicators_demeaned_on_a_table_of_cells_equal_the_dummy_regression(wage_panel: pd.DataFrame,
+                                                                            unbalanced: bool) -> None:
+    """Indicators of cohort and relative year (cohort: the year a worker is first a union member, in
+    linearmodels' wage_panel) demeaned on the table of (class of alike workers, year) cells equal the
+    residuals of a regression on explicit worker and year dummies (numpy's least squares) to 1e-10, and
+    the alternating projections on every row to their tolerance; unbalanced: 1983 dropped for every third
+    worker, so that workers of one cohort fall into two classes. Where rows of alike workers differ (a
+    column of hours), under unequal weights or with a third term, the table does not apply."""
+    df = wage_panel[~((wage_panel["nr"] % 3 == 0) & (wage_panel["year"] == 1983))] if unbalanced else wage_panel
+    df = df.reset_index(drop=True)
+    cohort = df["nr"].map(df[df["union"] == 1].groupby("nr")["year"].min()).fillna(0).to_numpy()
+    rel = np.where(cohort > 0, df["year"].to_numpy() - cohort, -99)
+    x = np.column_stack([rel == k for k in range(-3, 4)] + [rel >= 4]).astype(float)
+    absorber = Absorber(df, parse_absorb(["nr", "year"]))
+    got = absorber.demean_cells(x)
+    assert got is not None and got.converged.all()
+    dummies = np.column_stack([pd.get_dummies(df["nr"]).to_numpy(dtype=float),
+                               pd.get_dummies(df["year"]).to_numpy(dtype=float)[:, 1:]])
+    reference = x - dummies @ np.linalg.lstsq(dummies, x, rcond=None)[0]
+    np.testing.assert_allclose(got.values, reference, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(got.values, absorber.demean(x).values, rtol=0, atol=1e-6)
+    assert absorber.demean_cells(np.column_stack([x, df["hours"].to_numpy(dtype=float)])) is None
+    weighted = Absorber(df, parse_absorb(["nr", "year"]), weights=df["hours"].to_numpy(dtype=float))
+    assert weighted.demean_cells(x) is None
+    assert Absorber(df, parse_absorb(["nr", "year", "occupation"])).demean_cells(x) is None

@@ -785,6 +785,59 @@ class Absorber:
             x = proj.apply(x)
         return x
 
+    def demean_cells(self, x: np.ndarray) -> DemeanOutcome | None:
+        """:meth:`demean` of columns in which rows of groups alike hold the same values, on a table of cells.
+
+        With two categorical terms, unit weights and at most one row per pair of their groups (a panel's
+        unit and period effects), two groups of the larger term are alike when they have rows at the same
+        levels of the smaller term with the same values of ``x`` there (units of one adoption cohort
+        observed in the same periods, for indicators of cohort and period). Alike groups take the same
+        effect in the least-squares projection (it is unique, and swapping them leaves it unchanged), so
+        the projection is that of the table of (class of alike groups, level) cells, each weighted by its
+        rows: the same residuals, from a table of a few hundred cells instead of every row. ``None`` when
+        this does not apply; every condition is checked exactly on the rows (the hashes that group the
+        candidates only propose)."""
+        x = np.asarray(x, dtype=float)
+        if x.ndim != 2 or len(self._projections) != 2 or any(p.slope is not None for p in self._projections) \
+                or not len(x) or not np.all(self.w == self.w[0]):
+            return None
+        big, small = sorted(self._active, key=lambda i: -self._nlev[i])
+        a, b = self._codes[big], self._codes[small]
+        na, nb = self._nlev[big], self._nlev[small]
+        n = len(a)
+        if na * nb > DENSE_CELLS or np.bincount(a.astype(np.int64) * nb + b, minlength=na * nb).max() > 1:
+            return None
+        rng = np.random.default_rng(20261203)  # fixed: the hashes only propose classes, checked below
+        level_hash = rng.uniform(1.0, 2.0, size=nb)
+        row_hash = (x @ rng.uniform(1.0, 2.0, size=x.shape[1])) * rng.uniform(1.0, 2.0, size=nb)[b]
+        signature = np.column_stack([np.bincount(a, minlength=na), np.bincount(a, level_hash[b], minlength=na),
+                                     np.bincount(a, row_hash, minlength=na)])
+        klass = np.unique(signature, axis=0, return_inverse=True)[1].ravel()
+        cells, cell = np.unique(klass[a].astype(np.int64) * nb + b, return_inverse=True)
+        cell = cell.ravel()
+        if len(cells) * 4 > n:  # little to gain
+            return None
+        rows_per_cell = np.bincount(cell)
+        if not np.array_equal(rows_per_cell, np.bincount(klass)[cells // nb]):  # alike groups share their levels
+            return None
+        first = np.empty(len(cells), dtype=np.int64)
+        first[cell[::-1]] = np.arange(n)[::-1]
+        table = x[first]
+        if not np.array_equal(table[cell], x):  # the same values in alike groups' rows
+            return None
+        # the table's projection, solved directly: its dummies weighted by the cells' rows
+        klass_of_cell = np.unique(cells // nb, return_inverse=True)[1].ravel()
+        level_of_cell = np.unique(cells % nb, return_inverse=True)[1].ravel()
+        n_cells, width = len(cells), int(klass_of_cell.max()) + int(level_of_cell.max()) + 2
+        root = np.sqrt(rows_per_cell.astype(float))
+        dummies = np.zeros((n_cells, width))
+        dummies[np.arange(n_cells), klass_of_cell] = root
+        dummies[np.arange(n_cells), int(klass_of_cell.max()) + 1 + level_of_cell] = root
+        scaled = table * root[:, None]
+        residual = (scaled - dummies @ (np.linalg.pinv(dummies) @ scaled)) / root[:, None]
+        k = x.shape[1]
+        return DemeanOutcome(residual[cell], np.ones(k, dtype=np.int64), np.ones(k, dtype=bool))
+
     def demean(self, x: np.ndarray) -> DemeanOutcome:
         """Residuals of the columns of ``x`` (n, k) on all absorbed terms.
 

@@ -310,7 +310,7 @@ class _Design:
         # one staggered-adoption fit per regression, shared by its covariance choices
         self._staggered: dict[tuple[object, ...], object] = {}
         # the indicators' absorber and the indicators demeaned, weight-scaled
-        self._indicators: dict[tuple[object, ...], tuple[Absorber, np.ndarray]] = {}
+        self._indicators: dict[tuple[object, ...], tuple[Absorber, np.ndarray, np.ndarray]] = {}
         self.keep_all = True  # whether every coefficient is kept (not in the joint tests' draws)
         self.diagnostics = True  # 2SLS first-stage diagnostics, the imputation pretrend test (not in draws)
         self._cohorts: Cohorts | None = None
@@ -1258,14 +1258,26 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
         absorber = design.absorber if whole else Absorber(
             sub, s.absorb, weights=w, time=s.time, tolerance=s.tolerance, max_iterations=s.max_iterations,
             codes_of=codes_on_rows(design.codes_of, np.flatnonzero(rows)))
-        design._indicators[key] = (absorber, absorber.demean(x).values * sw[:, None])
-    absorber, indicators = design._indicators[key]
+        # indicators of cohort and period: alike units' rows hold the same values, so a table of cells
+        # gives the same residuals (Absorber.demean_cells), when it applies
+        on_cells = absorber.demean_cells(x)
+        demeaned = np.asfortranarray((on_cells if on_cells is not None else absorber.demean(x)).values
+                                     * sw[:, None])
+        design._indicators[key] = (absorber, demeaned, demeaned.T @ demeaned)
+    absorber, indicators, indicators_gram = design._indicators[key]
     own = np.column_stack([sub[spec.outcome].to_numpy(dtype=float), float_columns(sub, spec.controls)])
     own = absorber.demean(own).values * sw[:, None]
-    yz = own[:, 0]
-    xz = np.asfortranarray(np.column_stack([indicators, own[:, 1:]]))
-    # the cross products, not a QR factor: many indicator columns, and a QR of them costs 30 times more
-    gram = xz.T @ xz
+    yz, controls = own[:, 0], own[:, 1:]
+    k = indicators.shape[1]
+
+    def times(v: np.ndarray) -> np.ndarray:
+        """``xz @ v``, the regressors (indicators, then controls) without stacking them."""
+        return indicators @ v[:k] + controls @ v[k:]
+
+    # the cross products, not a QR factor: many indicator columns, and a QR of them costs 30 times more;
+    # the indicators' own block once per design
+    cross = indicators.T @ controls
+    gram = np.block([[indicators_gram, cross], [cross.T, controls.T @ controls]])
     norms = np.sqrt(np.diag(gram))
     if len(norms) == 0 or norms.min() <= 1e-9 * max(norms.max(), 1e-300) or np.linalg.eigvalsh(
             gram / np.outer(norms, norms)).min() <= 1e-10:
@@ -1274,16 +1286,17 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
             "never-treated units, a two-way event study needs binned end points and a window inside the periods"))
     bread = np.linalg.inv(gram)
     bread = (bread + bread.T) / 2
-    beta = bread @ (xz.T @ yz)
-    e = yz - xz @ beta
-    full = np.zeros((combine.shape[0] + len(spec.controls), xz.shape[1]))
+    beta = bread @ np.concatenate([indicators.T @ yz, controls.T @ yz])
+    e = yz - times(beta)
+    full = np.zeros((combine.shape[0] + len(spec.controls), len(beta)))
     full[: combine.shape[0], : combine.shape[1]] = combine
     full[combine.shape[0]:, combine.shape[1]:] = np.eye(len(spec.controls))
     a = full[0]
     tss = float(yz @ yz)
-    pieces = FitPieces(estimate=float(a @ beta), e=e, h=xz @ (bread @ a), rss=float(e @ e), bread=bread,
+    pieces = FitPieces(estimate=float(a @ beta), e=e, h=times(bread @ a), rss=float(e @ e), bread=bread,
                        within_r2=1.0 - float(e @ e) / tss if tss > 0 else float("nan"),
-                       scores=lambda: np.asfortranarray(xz * e[:, None]), coefficients=beta)
+                       scores=lambda: np.asfortranarray(np.column_stack([indicators, controls]) * e[:, None]),
+                       coefficients=beta)
     share_part = None if shares is None else (shares[0], lambda clusters: shares[1](clusters, beta))
     share_first = None if share_args is None else (
         lambda: share_influence(share_args[0], share_args[1], beta[: share_args[2]]))

@@ -681,7 +681,7 @@ class _Design:
         # least squares and 2SLS: a draw weights the rows by their copies (see _refit_weighted); with the
         # dummy columns, from the rows' columns and cross products summed per resampling level once
         self.copies_df = _CopiesDf(self)
-        self._indicators: dict[tuple[str, ...], sp.csr_array] = {}
+        self._cluster_matrices: dict[tuple[str, ...], sp.csr_array] = {}
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
         if not self.reweighted and self.dummies.shape[1]:
@@ -966,14 +966,14 @@ class _Design:
     def _indicator(self, dim: tuple[str, ...]) -> sp.csr_array:
         """The design's rows' clusters of ``dim`` (pairs, for a variable the copies relabel), as a sparse
         clusters x rows indicator matrix."""
-        if dim not in self._indicators:
+        if dim not in self._cluster_matrices:
             d = self.dims[dim]
             codes = d.pair if d.copied else d.codes
             assert codes is not None
             size = len(d.pair_level) if d.copied and d.pair_level is not None else d.n
             n = len(codes)
-            self._indicators[dim] = sp.csr_array((np.ones(n), (codes, np.arange(n))), shape=(size, n))
-        return self._indicators[dim]
+            self._cluster_matrices[dim] = sp.csr_array((np.ones(n), (codes, np.arange(n))), shape=(size, n))
+        return self._cluster_matrices[dim]
 
     def _batch_cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, copies: np.ndarray, counts: np.ndarray
                             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -307,7 +307,8 @@ def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, 
                                                                 monkeypatch) -> None:
     """A least-squares design refits a batch of draws together (batched products, the same formulas) and
     gives each draw's own refit to 1e-10, df exactly, None where the draw alone gives None: every
-    covariance kind, clusters relabelled per copy (the worker's) and shared (crews of workers, one of
+    covariance kind, period effects partialled from the cross products and occupation-by-year effects as
+    local dummies, clusters relabelled per copy (the worker's) and shared (crews of workers, one of
     them absent from the draws without its worker), weights,
     singletons, not-identified regressions, and the draws whose decisions differ from the batch's.
     linearmodels' wage_panel, with one column made worker-specific except for worker 13, so that a
@@ -319,6 +320,7 @@ def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, 
     frame["crew"] = np.where(frame["nr"] == 13, 99, frame["nr"] // 500)  # worker 13 alone in a crew
     raw = wage_grid(tmp_path, frame, weights={"unweighted": None, "by_hours": "hours"})
     raw["clustering"]["crew"] = {"kind": "clustered", "by": "crew"}
+    raw["absorb"]["worker_occupation_year"] = ["nr", "occupation x year"]  # 72 crossing groups: local dummies
     raw["samples"] = {"all": {}, "long_hours": {"range": {"hours": {"min": 2600}}}}
     raw["control_sets"] = {"combinations_of": ["expersq", "mostly_fixed"]}
     grid = load_config(raw)
@@ -326,7 +328,7 @@ def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, 
     codes, levels = pd.factorize(frame["nr"], sort=True)
     blocks, _ = prepare_blocks(grid, frame, specs, codes, len(levels), "nr")
     designs = [d for b in blocks for d in b.designs if d.batchable]
-    assert len(designs) > 5 and any(not d.batchable for b in blocks for d in b.designs)  # pooled: not batched
+    assert len(designs) > 5 and any(d.local is not None for d in designs)
     original, alone = reweight._Design._refit_weighted, []
 
     def counted(self, draw):  # the draws that refit_many hands to the one-draw path

@@ -179,8 +179,8 @@ _NOT_IDENTIFIED_COEF = _Coef([], np.empty((0, 0)), np.empty(0), np.empty(0), np.
 class _Batch(NamedTuple):
     """One least-squares regression of a batch of draws (:meth:`_Design.refit_many`): the draws it was
     computed on (positions in the batch), the kept columns (focal first), ``B`` and the focal coefficient
-    per draw, the residuals and the focal row of ``B X'`` on the design's rows (rows, draws), and the
-    draws' combinations giving the partialled columns (``None``: the stored columns)."""
+    per draw, the residuals and the focal row of ``B X'`` on the design's rows (rows, draws), and what gives
+    the draws' partialled columns on the rows (:meth:`_Design._batch_rows`)."""
 
     draws: np.ndarray
     idx: list[int]
@@ -188,7 +188,7 @@ class _Batch(NamedTuple):
     beta: np.ndarray
     e: np.ndarray
     h: np.ndarray
-    transform: np.ndarray | None
+    basis: tuple[np.ndarray | None, np.ndarray | None]
 
 
 class _Weighted(NamedTuple):
@@ -682,6 +682,7 @@ class _Design:
         # dummy columns, from the rows' columns and cross products summed per resampling level once
         self.copies_df = _CopiesDf(self)
         self._cluster_matrices: dict[tuple[str, ...], sp.csr_array] = {}
+        self._local_maps: tuple[np.ndarray, sp.csr_array, sp.csr_array] | None = None
         self.by_sets = sorted({s.inference.by for s in specs})
         self.u = self.cross = None
         if not self.reweighted and self.dummies.shape[1]:
@@ -752,8 +753,8 @@ class _Design:
     @property
     def batchable(self) -> bool:
         """Whether :meth:`refit_many` refits draws together: least squares alone, from the design's stored
-        columns and their cross products summed per resampling level."""
-        return (self.u is not None and self.cross is not None and self.local is None and not self.reweighted
+        columns (and local dummies) and their cross products summed per resampling level."""
+        return (self.u is not None and self.cross is not None and not self.reweighted
                 and all(s.estimator.method == LEAST_SQUARES for s in self.specs))
 
     def refit_many(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
@@ -787,17 +788,20 @@ class _Design:
         raw_norm = np.sqrt(np.maximum(cw @ self.raw_squared - first * first / total[:, None], 0.0))
         alone = np.any(raw_norm <= 1e-6 * np.sqrt(total)[:, None] * self.raw_scale, axis=1)
         # the draws' cross products, and the dummy columns partialled out of them (as _refit_weighted)
-        big = (counts[:, self.level_ids] @ self.cross).reshape(d_count, q, q)
-        big = (big + big.transpose(0, 2, 1)) / 2
-        gram = big[:, :m, :m]
-        transform: np.ndarray | None = None
-        if q > m:
-            eigval, eigvec = np.linalg.eigh(big[:, m:, m:])
-            ok = eigval > 1e-12 * np.maximum(eigval.max(axis=1), 1e-300)[:, None]
-            inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
-            gamma = ((eigvec * inverse[:, None, :]) @ eigvec.transpose(0, 2, 1)) @ big[:, m:, :m]
-            gram = gram - big[:, :m, m:] @ gamma
-            transform = np.concatenate([np.broadcast_to(np.eye(m), (d_count, m, m)), -gamma], axis=1)
+        transform = local_gamma = None
+        if self.local is not None:  # the crossing groups' dummies partialled out part by part, draw by draw
+            gram, local_gamma = self._batch_local(counts[:, self.level_ids])
+        else:
+            big = (counts[:, self.level_ids] @ self.cross).reshape(d_count, q, q)
+            big = (big + big.transpose(0, 2, 1)) / 2
+            gram = big[:, :m, :m]
+            if q > m:
+                eigval, eigvec = np.linalg.eigh(big[:, m:, m:])
+                ok = eigval > 1e-12 * np.maximum(eigval.max(axis=1), 1e-300)[:, None]
+                inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
+                gamma = ((eigvec * inverse[:, None, :]) @ eigvec.transpose(0, 2, 1)) @ big[:, m:, :m]
+                gram = gram - big[:, :m, m:] @ gamma
+                transform = np.concatenate([np.broadcast_to(np.eye(m), (d_count, m, m)), -gamma], axis=1)
         gram = (gram + gram.transpose(0, 2, 1)) / 2
         norm = np.sqrt(np.maximum(np.diagonal(gram, axis1=1, axis2=2), 0.0))
         results: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
@@ -807,7 +811,7 @@ class _Design:
         for spec in self.specs:
             key = (spec.outcome, spec.focal, spec.controls)
             if key not in fits:
-                fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, transform)
+                fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, (transform, local_gamma))
             fit = fits[key]
             if fit is None:  # not identified in these draws (those deciding otherwise take their own refit)
                 results[spec.spec_id] = (np.full(d_count, nan), np.full(d_count, nan), np.full(d_count, nan))
@@ -862,7 +866,7 @@ class _Design:
         return True
 
     def _batch_regression(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
-                          alone: np.ndarray, transform: np.ndarray | None) -> _Batch | None:
+                          alone: np.ndarray, basis: tuple[np.ndarray | None, np.ndarray | None]) -> _Batch | None:
         """:meth:`_regression` on the draws not marked ``alone`` (``None``: the focal regressor is absorbed)."""
         kept: list[int] = []
         for c in spec.controls:
@@ -887,13 +891,67 @@ class _Design:
         ev[:, idx] -= beta
         hv = np.zeros_like(ev)
         hv[:, idx] = bread[:, :, 0]
-        both = np.stack([ev, hv], axis=2)  # (draws, m, 2)
-        tr = None if transform is None else transform[live]
-        if tr is not None:
-            both = tr @ both
+        own = tuple(None if b is None else b[live] for b in basis)
+        on_rows = self._batch_rows(own, np.stack([ev, hv], axis=2))
+        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], own)
+
+    def _batch_rows(self, basis: tuple[np.ndarray | None, np.ndarray | None], v: np.ndarray) -> np.ndarray:
+        """``z @ v`` on the rows for each draw (as :meth:`_Weighted.at`): ``v`` (draws, m, r) gives (rows,
+        draws, r); ``basis`` holds the draws' combinations of the stored columns (``z = u @ transform``) or
+        their local dummies' coefficients (``z = within - D gamma``), or neither (``z = u``)."""
+        transform, gamma = basis
+        d_count, m, r = v.shape
+        if gamma is not None:
+            assert self.local is not None
+            flat = (self.within @ v.transpose(1, 0, 2).reshape(m, -1)).reshape(len(self.w), d_count, r)
+            g = (gamma @ v).transpose(1, 0, 2).reshape(gamma.shape[1], -1)
+            return flat - self.local.correction(g).reshape(len(self.w), d_count, r)
         assert self.u is not None
-        on_rows = (self.u @ both.transpose(1, 0, 2).reshape(self.u.shape[1], -1)).reshape(len(self.w), len(live), 2)
-        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], tr)
+        if transform is not None:
+            v = transform @ v
+        return (self.u @ v.transpose(1, 0, 2).reshape(v.shape[1], -1)).reshape(len(self.w), d_count, r)
+
+    def _batch_local(self, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`_LocalDummies.solve` for draws together, from their copies of each level (draws, levels): the
+        columns' cross products with the local dummies partialled out (draws, m, m), and the columns'
+        coefficients on the groups (draws, groups, m)."""
+        assert self.local is not None and self.cross is not None
+        local, m = self.local, len(self.columns)
+        if self._local_maps is None:  # the per-level sums laid out once: each entry a level's share
+            q = m + local.k
+            per_level = self.cross.reshape(-1, q, q)
+            per_level = (per_level + per_level.transpose(0, 2, 1)) / 2
+            n_levels = len(per_level)
+            levels = np.arange(n_levels)
+            flat = (local.slots[:, :, None] * m + np.arange(m)).reshape(n_levels, -1)
+            dz = sp.csr_array((per_level[:, m:, :m].reshape(n_levels, -1).ravel(),
+                               (flat.ravel(), np.repeat(levels, flat.shape[1]))),
+                              shape=((local.n_ids + 1) * m, n_levels))
+            entry = local.entry.reshape(n_levels, -1)
+            blocks = sp.csr_array((per_level[:, m:, m:].reshape(n_levels, -1).ravel(),
+                                   (entry.ravel(), np.repeat(levels, entry.shape[1]))),
+                                  shape=(local.n_entries + 1, n_levels))
+            self._local_maps = (per_level[:, :m, :m].reshape(n_levels, -1), dz, blocks)
+        zz_map, dz_map, blocks_map = self._local_maps
+        d_count = len(counts)
+        zz = (counts @ zz_map).reshape(d_count, m, m)
+        dz = (dz_map @ counts.T)[: local.n_ids * m].T.reshape(d_count, local.n_ids, m)
+        blocks = (blocks_map @ counts.T).T
+        gamma = np.zeros_like(dz)
+        by_size: dict[int, list[int]] = {}
+        for k, size in enumerate(local.sizes):
+            by_size.setdefault(int(size), []).append(k)
+        for size, parts in by_size.items():
+            members = np.stack([local.members[k] for k in parts])  # (parts, size)
+            starts = local.offsets[parts]
+            cells = (starts[:, None] + np.arange(size * size)).reshape(len(parts), size, size)
+            stack = blocks[:, cells]  # (draws, parts, size, size)
+            eigval, eigvec = np.linalg.eigh((stack + stack.transpose(0, 1, 3, 2)) / 2)
+            ok = eigval > 1e-12 * np.maximum(eigval.max(axis=2), 1e-300)[:, :, None]
+            inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
+            pinv = (eigvec * inverse[:, :, None, :]) @ eigvec.transpose(0, 1, 3, 2)
+            gamma[:, members] = pinv @ dz[:, members]
+        return zz - dz.transpose(0, 2, 1) @ gamma, gamma
 
     def _batch_inference(self, spec: Spec, fit: _Batch, copies: np.ndarray, counts: np.ndarray, absorbed: np.ndarray,
                          nested: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -918,10 +976,8 @@ class _Design:
                 assert self.u is not None
                 select = np.zeros((len(self.columns), p))
                 select[fit.idx, np.arange(p)] = 1.0
-                x = select[None] if fit.transform is None else fit.transform @ select
-                x = np.broadcast_to(x, (len(live), x.shape[1], p))
-                zx = self.u @ x.transpose(1, 0, 2).reshape(x.shape[1], -1)
-                scores = zx.reshape(len(self.w), len(live), p) * (w * e)[:, :, None]
+                zx = self._batch_rows(fit.basis, np.broadcast_to(select, (len(live), *select.shape)))
+                scores = zx * (w * e)[:, :, None]
                 by = spec.inference.by
                 meat = np.zeros((len(live), p, p))
                 groups = []

@@ -189,6 +189,7 @@ class _Batch(NamedTuple):
     e: np.ndarray
     h: np.ndarray
     basis: tuple[np.ndarray | None, np.ndarray | None]
+    memo: dict[object, Any]
 
 
 class _Weighted(NamedTuple):
@@ -640,6 +641,7 @@ class _Design:
         self.dims = {d: self._dim(codes(d), self.levels, d) for d in dims}
         self.time = rows[settings.time].to_numpy(dtype=float) if settings.time and settings.time in rows else None
         self.w = rows[settings.weights].to_numpy(dtype=float) if settings.weights else np.ones(len(rows))
+        self.unit_weights = bool(np.all(self.w == 1.0))
         self.columns = sorted({c for s in specs for c in (s.outcome, s.focal, *s.controls, *s.estimator.columns())})
         self.pos = {c: j for j, c in enumerate(self.columns)}
         raw = rows[self.columns].to_numpy(dtype=float)
@@ -917,7 +919,7 @@ class _Design:
         hv[:, idx] = bread[:, :, 0]
         own = tuple(None if b is None else b[live] for b in basis)
         on_rows = self._batch_rows(own, np.stack([ev, hv], axis=2))
-        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], own)
+        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], own, {})
 
     def _batch_rows(self, basis: tuple[np.ndarray | None, np.ndarray | None], v: np.ndarray) -> np.ndarray:
         """``z @ v`` on the rows for each draw (as :meth:`_Weighted.at`): ``v`` (draws, m, r) gives (rows,
@@ -980,36 +982,49 @@ class _Design:
     def _batch_inference(self, spec: Spec, fit: _Batch, copies: np.ndarray, counts: np.ndarray, absorbed: np.ndarray,
                          nested: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`_weighted_inference` of one covariance choice for the draws of ``fit``: estimates, SEs and
-        df over all the batch's draws (NaN where not computed)."""
+        df over all the batch's draws (NaN where not computed). What several covariance choices of one
+        regression share (sums over the rows, cluster sums) is computed once (``fit.memo``)."""
         d_count = len(copies)
         kind = covariance_kind(spec.inference.kind)
         live = fit.draws
-        c = copies[live]
-        n = c.sum(axis=1)
+        memo = fit.memo
+
+        def once(key: object, make: Any) -> Any:
+            if key not in memo:
+                memo[key] = make()
+            return memo[key]
+
+        c = once("copies", lambda: np.ascontiguousarray(copies[live].T))  # (rows, draws)
+        n = once("n", lambda: c.sum(axis=0))
         p = len(fit.idx)
         e = fit.e
-        w = self.w[:, None]
+        w = None if self.unit_weights else self.w[:, None]
+        cl = counts[live]
         bad = np.zeros(len(live), dtype=bool)
         with np.errstate(divide="ignore", invalid="ignore"):
             if isinstance(kind, Iid):
                 dof = n - (p + absorbed[live])
-                variance = np.einsum("dn,nd->d", c, w * e * e) / dof * fit.bread[:, 0, 0]
+                sse = once("sse", lambda: (c * (e * e if w is None else w * e * e)).sum(axis=0))
+                variance = sse / dof * fit.bread[:, 0, 0]
                 df = dof
             elif isinstance(kind, TwoWay):
                 dof = n - (p + absorbed[live] - nested[live])
-                assert self.u is not None
-                select = np.zeros((len(self.columns), p))
-                select[fit.idx, np.arange(p)] = 1.0
-                zx = self._batch_rows(fit.basis, np.broadcast_to(select, (len(live), *select.shape)))
-                scores = zx * (w * e)[:, :, None]
+
+                def scores() -> np.ndarray:
+                    select = np.zeros((len(self.columns), p))
+                    select[fit.idx, np.arange(p)] = 1.0
+                    zx = self._batch_rows(fit.basis, np.broadcast_to(select, (len(live), *select.shape)))
+                    return zx * (e if w is None else w * e)[:, :, None]
+
                 by = spec.inference.by
                 meat = np.zeros((len(live), p, p))
                 groups = []
                 for dim, sign in zip((by[0], by[1], by[0] + by[1]), (1.0, 1.0, -1.0)):
-                    sums, mult, g = self._batch_cluster_sums(dim, scores, c, counts[live])
+                    part, g = once(("two-way", dim),
+                                   lambda dim=dim: self._batch_meat(dim, once("scores", scores), c, cl))
                     bad |= g < 2
                     factor = np.where(g < 2, 0.0, sign * g / (g - 1) * (n - 1) / dof)
-                    meat += factor[:, None, None] * np.einsum("gdi,dg,gdj->dij", sums, mult, sums)
+                    meat += factor[:, None, None] * part
                     groups.append(g)
                 bad |= dof <= 0
                 meat[bad] = 0.0
@@ -1022,16 +1037,22 @@ class _Design:
                     v[clip] = (vecs * np.clip(eigval[clip], 0, None)[:, None, :]) @ vecs.transpose(0, 2, 1)
                 variance, df = v[:, 0, 0], np.minimum(groups[0], groups[1]) - 1.0
             else:
-                he = w * fit.h * e
+                he = once("he", lambda: fit.h * e if w is None else w * fit.h * e)
                 if isinstance(kind, Robust):
                     dof = n - (p + absorbed[live])
-                    variance, df = n / dof * np.einsum("dn,nd->d", c, he * he), dof
+                    variance, df = n / dof * once("robust", lambda: (c * he * he).sum(axis=0)), dof
                 else:
                     assert isinstance(kind, OneWay)
                     dof = n - (p + absorbed[live] - nested[live])
-                    sums, mult, g = self._batch_cluster_sums(spec.inference.by[0], he, c, counts[live])
+                    dim = spec.inference.by[0]
+
+                    def one_way() -> tuple[np.ndarray, np.ndarray]:
+                        sums, mult, groups = self._batch_cluster_sums(dim, he, c, cl)
+                        return np.einsum("dg,gd->d", mult, sums * sums), groups
+
+                    squares, g = once(("one-way", dim), one_way)
                     bad |= g < 2
-                    variance = g / (g - 1) * (n - 1) / dof * np.einsum("dg,gd->d", mult, sums * sums)
+                    variance = g / (g - 1) * (n - 1) / dof * squares
                     df = g - 1.0
             bad |= dof <= 0
             se = np.sqrt(variance)
@@ -1042,6 +1063,13 @@ class _Design:
         std_error[live] = np.where(bad | ~finite, np.nan, se)
         dfs[live] = np.where(bad | ~finite, np.nan, df)
         return estimate, std_error, dfs
+
+    def _batch_meat(self, dim: tuple[str, ...], scores: np.ndarray, copies: np.ndarray, counts: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+        """One cluster variable's part of the two-way meat before its factor (draws, k, k), and its numbers
+        of clusters."""
+        sums, mult, groups = self._batch_cluster_sums(dim, scores, copies, counts)
+        return np.einsum("gdi,dg,gdj->dij", sums, mult, sums), groups
 
     def _indicator(self, dim: tuple[str, ...]) -> sp.csr_array:
         """The design's rows' clusters of ``dim`` (pairs, for a variable the copies relabel), as a sparse
@@ -1058,7 +1086,8 @@ class _Design:
     def _batch_cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, copies: np.ndarray, counts: np.ndarray
                             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`_cluster_sums` for draws together: ``values`` (rows, draws[, k]) summed per cluster (clusters,
-        draws[, k]), each cluster's count per draw (draws, clusters) and the draws' numbers of clusters."""
+        draws[, k]), each cluster's count per draw (draws, clusters) and the draws' numbers of clusters;
+        ``copies`` (rows, draws), ``counts`` (draws, levels)."""
         d = self.dims[dim]
         ind = self._indicator(dim)
         rows = values.shape[0]
@@ -1067,9 +1096,9 @@ class _Design:
             sums = ind @ values.reshape(rows, -1)
             mult = counts[:, d.pair_level]
         else:
-            scaled = values * (copies.T if values.ndim == 2 else copies.T[:, :, None])
+            scaled = values * (copies if values.ndim == 2 else copies[:, :, None])
             sums = ind @ scaled.reshape(rows, -1)
-            mult = ((ind @ copies.T) > 0).T.astype(float)
+            mult = ((ind @ copies) > 0).T.astype(float)
         return sums.reshape(ind.shape[0], *values.shape[1:]), mult, mult.sum(axis=1)
 
     def _refit_weighted(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:

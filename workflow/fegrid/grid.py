@@ -12,13 +12,14 @@ from __future__ import annotations
 import difflib
 import itertools
 import json
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
 from typing import Any
 
 import jsonschema
+import numpy as np
 import pandas as pd
 import yaml
 
@@ -257,14 +258,11 @@ class Grid:
         samples = self.sample_defs(levels)
         panel = {"unit": self.panel.unit, "time": self.panel.time}
         specs: dict[str, Spec] = {}
-        dims = (self.outcomes, self.focals, self.absorb, self.clustering, samples, self.controls,
-                self.weights, self.estimators)
-        for combo in itertools.product(*dims):
+        dims = [list(d) for d in (self.outcomes, self.focals, self.absorb, self.clustering, samples, self.controls,
+                                  self.weights, self.estimators)]
+        for combo in _kept_combinations(dims, [samples[s][0] for s in dims[4]], self.exclude):
             outcome, focal, absorb, clus, sample, controls, weights, est_name = combo
             names = dict(zip(DIMENSIONS, combo))
-            declared = dict(names, sample=samples[sample][0])
-            if any(_matches(rule, names, declared) for rule in self.exclude):
-                continue
             # a regression of a variable on itself, or controlling for the focal regressor or the
             # outcome, makes no sense: such combinations are left out of the grid (see self_controlled)
             if focal == outcome or {focal, outcome} & set(self.controls[controls]):
@@ -406,18 +404,35 @@ def _describe(names: Sequence[tuple[str, str]]) -> str:
     return "(" + ", ".join(f"{d}={n}" for d, n in names) + ")"
 
 
-def _matches(rule: Mapping[str, Any], names: Mapping[str, str], declared: Mapping[str, str]) -> bool:
-    for dim, sel in rule.items():
-        value, parent = names[dim], declared[dim]
-        if isinstance(sel, str):
-            ok = sel in (value, parent)
-        elif isinstance(sel, list):
-            ok = value in sel or parent in sel
-        else:
-            ok = value not in sel["not"] and parent not in sel["not"]
-        if not ok:
-            return False
-    return True
+def _selects(sel: Any, value: str, parent: str) -> bool:
+    """Whether one dimension's selector of an exclude rule picks a choice (``parent``: the declared name
+    of an expanded sample, else the choice itself)."""
+    if isinstance(sel, str):
+        return sel in (value, parent)
+    if isinstance(sel, list):
+        return value in sel or parent in sel
+    return value not in sel["not"] and parent not in sel["not"]
+
+
+def _kept_combinations(dims: Sequence[Sequence[str]], sample_parents: Sequence[str],
+                       exclude: Sequence[Mapping[str, Any]]) -> Iterator[tuple[str, ...]]:
+    """The combinations of the dimensions' choices (in ``itertools.product`` order) that no exclude rule
+    matches: each rule's matches marked on the whole table of combinations at once, from its selectors'
+    verdicts on each dimension's choices (a grid's table can hold hundreds of thousands of combinations,
+    nearly all excluded)."""
+    shape = tuple(len(d) for d in dims)
+    excluded = np.zeros(shape, dtype=bool)
+    sample_axis = DIMENSIONS.index("sample")
+    for rule in exclude:
+        hit = np.ones((1,) * len(shape), dtype=bool)
+        for dim, sel in rule.items():
+            axis = DIMENSIONS.index(dim)
+            parents = sample_parents if axis == sample_axis else dims[axis]
+            picked = np.array([_selects(sel, v, p) for v, p in zip(dims[axis], parents)], dtype=bool)
+            hit = hit & picked.reshape(tuple(-1 if a == axis else 1 for a in range(len(shape))))
+        excluded |= hit
+    for index in zip(*np.nonzero(~excluded)):
+        yield tuple(d[i] for d, i in zip(dims, index))
 
 
 def _choices(raw: Mapping[str, Any], key: str, default: Any = None) -> Any:

@@ -97,13 +97,20 @@ def choice_medians(ledger: pd.DataFrame) -> pd.DataFrame:
             if dim in PAIR:
                 continue
             others = [d for d in DIMENSIONS if d != dim]
-            table = part.assign(**{dim: part[dim].astype(str)}).pivot_table(
-                index=others, columns=dim, values="estimate", aggfunc="first", dropna=False)
+            # each specification's match: the one with every other choice equal and the reference choice here
+            match = part.groupby(others, sort=False, dropna=False).ngroup().to_numpy()
+            choices = part[dim].astype(str).to_numpy()
+            estimate = part["estimate"].to_numpy(dtype=float)
             reference = _reference_choice(part, dim)
+            on_reference = np.full(int(match.max()) + 1 if len(match) else 0, np.nan)
+            at = np.flatnonzero(choices == reference)[::-1]  # the first one where a match repeats
+            on_reference[match[at]] = estimate[at]
             meds = part.groupby(part[dim].astype(str), sort=True)["estimate"].agg(["median", "size"])
             dim_rows = []
             for choice, row in meds.iterrows():
-                diffs = (table[choice] - table[reference]).dropna() if reference in table else pd.Series([])
+                mine = choices == choice
+                diffs = estimate[mine] - on_reference[match[mine]]
+                diffs = pd.Series(diffs[~np.isnan(diffs)])
                 dim_rows.append({
                     "outcome": outcome, "focal": focal, "curve": curve,
                     "dimension": dim, "choice": choice, "reference": reference,

@@ -834,6 +834,7 @@ class _Design:
         fits: dict[tuple[object, ...], _Batch | None] = {}
         absorbed: np.ndarray | None = None
         nested: dict[tuple[tuple[str, ...], ...], np.ndarray] = {}
+        copies_t: np.ndarray | None = None  # (rows, draws)
         for spec in self.specs:
             key = (spec.outcome, spec.focal, spec.controls)
             if key not in fits:
@@ -851,7 +852,9 @@ class _Design:
                     for by, v in per_by.items():
                         nested[by][i] = v
             assert absorbed is not None
-            results[spec.spec_id] = self._batch_inference(spec, fit, copies, counts, absorbed,
+            if copies_t is None:
+                copies_t = np.ascontiguousarray(copies.T)
+            results[spec.spec_id] = self._batch_inference(spec, fit, copies_t, counts, absorbed,
                                                           nested[spec.inference.by])
         out: list[list[tuple[str, float, float, float]] | None] = []
         for i in range(d_count):
@@ -983,8 +986,9 @@ class _Design:
                          nested: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """:meth:`_weighted_inference` of one covariance choice for the draws of ``fit``: estimates, SEs and
         df over all the batch's draws (NaN where not computed). What several covariance choices of one
-        regression share (sums over the rows, cluster sums) is computed once (``fit.memo``)."""
-        d_count = len(copies)
+        regression share (sums over the rows, cluster sums) is computed once (``fit.memo``); ``copies`` (rows,
+        draws)."""
+        d_count = copies.shape[1]
         kind = covariance_kind(spec.inference.kind)
         live = fit.draws
         memo = fit.memo
@@ -994,7 +998,7 @@ class _Design:
                 memo[key] = make()
             return memo[key]
 
-        c = once("copies", lambda: np.ascontiguousarray(copies[live].T))  # (rows, draws)
+        c = once("copies", lambda: copies if len(live) == d_count else copies[:, live])  # (rows, draws)
         n = once("n", lambda: c.sum(axis=0))
         p = len(fit.idx)
         e = fit.e
@@ -1048,7 +1052,7 @@ class _Design:
 
                     def one_way() -> tuple[np.ndarray, np.ndarray]:
                         sums, mult, groups = self._batch_cluster_sums(dim, he, c, cl)
-                        return np.einsum("dg,gd->d", mult, sums * sums), groups
+                        return (sums * sums * mult.T).sum(axis=0), groups
 
                     squares, g = once(("one-way", dim), one_way)
                     bad |= g < 2
@@ -1069,7 +1073,8 @@ class _Design:
         """One cluster variable's part of the two-way meat before its factor (draws, k, k), and its numbers
         of clusters."""
         sums, mult, groups = self._batch_cluster_sums(dim, scores, copies, counts)
-        return np.einsum("gdi,dg,gdj->dij", sums, mult, sums), groups
+        weighted = sums * mult.T[:, :, None]  # (clusters, draws, k)
+        return np.matmul(weighted.transpose(1, 2, 0), sums.transpose(1, 0, 2)), groups
 
     def _indicator(self, dim: tuple[str, ...]) -> sp.csr_array:
         """The design's rows' clusters of ``dim`` (pairs, for a variable the copies relabel), as a sparse

@@ -1261,8 +1261,9 @@ def _fit_indicators(design: _Design, spec: SpecRequest, base: SpecResult, cohort
         # indicators of cohort and period: alike units' rows hold the same values, so a table of cells
         # gives the same residuals (Absorber.demean_cells), when it applies
         on_cells = absorber.demean_cells(x)
-        demeaned = np.asfortranarray((on_cells if on_cells is not None else absorber.demean(x)).values
-                                     * sw[:, None])
+        demeaned = (on_cells if on_cells is not None else absorber.demean(x)).values
+        if w is not None:
+            demeaned = demeaned * sw[:, None]
         design._indicators[key] = (absorber, demeaned, demeaned.T @ demeaned)
     absorber, indicators, indicators_gram = design._indicators[key]
     own = np.column_stack([sub[spec.outcome].to_numpy(dtype=float), float_columns(sub, spec.controls)])

@@ -567,6 +567,15 @@ def _effects_updated(start: np.ndarray, y: np.ndarray, w: np.ndarray, codes: Seq
     return eta if np.all(np.isfinite(eta)) else np.asarray(start, dtype=float)
 
 
+def _pinv_stacked(stack: np.ndarray) -> np.ndarray:
+    """The pseudo-inverse of each symmetric matrix of a stack (..., k, k), by the rule of
+    :func:`fegrid.absorb._pinv`: eigenvalues below 1e-12 of the matrix's largest count as zero."""
+    eigval, eigvec = np.linalg.eigh(stack)
+    ok = eigval > 1e-12 * np.maximum(eigval.max(axis=-1), 1e-300)[..., None]
+    inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
+    return (eigvec * inverse[..., None, :]) @ np.swapaxes(eigvec, -1, -2)
+
+
 class _Unsupported(Exception):
     """A block or design that the reweighting does not handle: it takes the stacked refit."""
 
@@ -822,10 +831,7 @@ class _Design:
             big = (big + big.transpose(0, 2, 1)) / 2
             gram = big[:, :m, :m]
             if q > m:
-                eigval, eigvec = np.linalg.eigh(big[:, m:, m:])
-                ok = eigval > 1e-12 * np.maximum(eigval.max(axis=1), 1e-300)[:, None]
-                inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
-                gamma = ((eigvec * inverse[:, None, :]) @ eigvec.transpose(0, 2, 1)) @ big[:, m:, :m]
+                gamma = _pinv_stacked(big[:, m:, m:]) @ big[:, m:, :m]
                 gram = gram - big[:, :m, m:] @ gamma
                 transform = np.concatenate([np.broadcast_to(np.eye(m), (d_count, m, m)), -gamma], axis=1)
         gram = (gram + gram.transpose(0, 2, 1)) / 2
@@ -975,11 +981,7 @@ class _Design:
             starts = local.offsets[parts]
             cells = (starts[:, None] + np.arange(size * size)).reshape(len(parts), size, size)
             stack = blocks[:, cells]  # (draws, parts, size, size)
-            eigval, eigvec = np.linalg.eigh((stack + stack.transpose(0, 1, 3, 2)) / 2)
-            ok = eigval > 1e-12 * np.maximum(eigval.max(axis=2), 1e-300)[:, :, None]
-            inverse = np.divide(1.0, eigval, out=np.zeros_like(eigval), where=ok)
-            pinv = (eigvec * inverse[:, :, None, :]) @ eigvec.transpose(0, 1, 3, 2)
-            gamma[:, members] = pinv @ dz[:, members]
+            gamma[:, members] = _pinv_stacked((stack + stack.transpose(0, 1, 3, 2)) / 2) @ dz[:, members]
         return zz - dz.transpose(0, 2, 1) @ gamma, gamma
 
     def _batch_inference(self, spec: Spec, fit: _Batch, copies: np.ndarray, counts: np.ndarray, absorbed: np.ndarray,

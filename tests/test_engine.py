@@ -10,8 +10,17 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from fegrid import estimate
-from fegrid.absorb import DIRECT_AFTER, Absorber, EffectTerm, TrendTerm, drop_singletons, factorize, parse_absorb
+from fegrid import covariance, estimate
+from fegrid.absorb import (
+    DIRECT_AFTER,
+    DIRECT_AFTER_DENSE,
+    Absorber,
+    EffectTerm,
+    TrendTerm,
+    drop_singletons,
+    factorize,
+    parse_absorb,
+)
 from fegrid.covariance import cluster_sums
 from fegrid.errors import ConfigError, EstimationError
 from fegrid.estimate import BlockSettings, Inference, SpecRequest, fit_block, fit_one
@@ -370,10 +379,11 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
     jobtraining, unbalanced once missing scrap rates are dropped; a dummy and a slope per worker plus
     year dummies on linearmodels' wage_panel less some worker-years; worker dummies and group-by-year
     dummies, the groups holding whole workers, on the same: 37 separate systems). Two terms of which
-    one is a categorical effect with few levels in each connected part are solved directly once the
-    alternating projections have not converged in one sweep (ten when the system splits into many
-    parts): one more sweep confirms the solution, which is exact to rounding (alternating projections
-    stop at the tolerance, up to 1e-8 away on these data at the default tolerance)."""
+    one is a categorical effect with few levels in each connected part are solved directly: at once
+    when they form one dense system (after one sweep when the columns start warm, as in a Poisson
+    fit's steps), after ten sweeps when the system splits into many parts; one more sweep confirms
+    the solution, which is exact to rounding (alternating projections stop at the tolerance, up to
+    1e-8 away on these data at the default tolerance)."""
     small = "year"
     if case == "trend_and_year":
         df = _unbalanced(wage_panel[wage_panel["nr"] < 3000]).assign(t=lambda d: d["year"] - 1980.0)
@@ -399,11 +409,14 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
     x = df[cols].to_numpy(dtype=float)
     exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
     assert absorber._direct is not None
-    after = absorber._direct_setup[2]  # one sweep for one dense system, ten for many parts
-    assert after == (DIRECT_AFTER if case == "worker_and_group_by_year" else 1)
+    after = absorber._direct_setup[2]  # no sweep for one dense system, ten for many parts
+    assert after == (DIRECT_AFTER if case == "worker_and_group_by_year" else DIRECT_AFTER_DENSE)
     assert np.all(out.iterations <= after + 1) and out.iterations.max() == after + 1
     assert np.all(out.converged)
     assert np.max(np.abs(out.values - exact)) <= 1e-11 * np.max(np.abs(x))
+    warm = absorber.demean(x, warm=True)  # a warm start sweeps at least once before the jump
+    assert warm.iterations.max() == max(after, 1) + 1 and np.all(warm.converged)
+    assert np.max(np.abs(warm.values - exact)) <= 1e-11 * np.max(np.abs(x))
     for j in range(len(cols)):  # a column alone gives the same bytes (see the test above)
         assert np.array_equal(absorber.demean(x[:, [j]]).values[:, 0], out.values[:, j])
 
@@ -455,6 +468,29 @@ def test_cluster_sums_of_sorted_codes_equal_the_unsorted_path(wage_panel: pd.Dat
         assert fits[0].status == fits[1].status == "ok"
         assert fits[0].estimate == pytest.approx(fits[1].estimate, rel=1e-10)
         assert fits[0].std_error == pytest.approx(fits[1].std_error, rel=1e-10)
+
+
+def test_cluster_sums_over_runs_equal_plain_group_sums(wage_panel: pd.DataFrame) -> None:
+    """Source: numpy's bincount per column (the plain computation). Clusters holding whole workers
+    (worker number modulo 37), rows sorted by worker: the sums run over each worker's rows first,
+    then over the groups; clusters by year (no runs) take the plain path. Each codes array's layout is
+    kept while the array lives and dropped with it."""
+    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    values = np.random.default_rng(5).normal(size=(len(rows), 4))
+    for column in ("group", "year"):
+        key = rows["nr"] % 37 if column == "group" else rows["year"]
+        codes = pd.factorize(key, sort=True)[0]
+        g = int(codes.max()) + 1
+        plain = np.column_stack([np.bincount(codes, values[:, j], minlength=g) for j in range(4)])
+        sums, got_g = cluster_sums(values, codes)
+        assert got_g == g and np.allclose(sums, plain, rtol=1e-12, atol=1e-12), column
+        one, _ = cluster_sums(values[:, 0], codes)
+        assert np.allclose(one, plain[:, 0], rtol=1e-12, atol=1e-12), column
+        assert (covariance._layout(codes).run_starts is not None) == (column == "group")
+        key_id = id(codes)
+        assert key_id in covariance._LAYOUTS
+        del codes
+        assert key_id not in covariance._LAYOUTS
 
 
 def test_a_fitted_block_leaves_no_design_alive(monkeypatch, wage_panel: pd.DataFrame) -> None:

@@ -261,6 +261,11 @@ class LevelCodes:
         return self._codes[columns]
 
     def on_rows(self, positions: np.ndarray) -> CodesOf:
+        """The codes on the rows at ``positions`` (increasing, as ``np.flatnonzero`` gives them); the
+        frame's own codes when they are every row."""
+        n = len(self.frame)
+        if len(positions) == n and (n == 0 or (positions[0] == 0 and positions[-1] == n - 1)):
+            return self  # n increasing positions from 0 to n - 1: every row, in order
         return codes_on_rows(self, positions)
 
 
@@ -370,11 +375,12 @@ DIRECT_MAX_LEVELS = 128
 #: the two terms form one connected system.
 DENSE_CELLS = 4_000_000
 
-#: Sweeps of alternating projections before a column still moving jumps to the direct solution: one
-#: when the two terms form one system held densely (building it costs about a sweep), ten when it
-#: splits into many parts (building those costs about as much as ten sweeps; unbalanced panels and
-#: unit trends can take hundreds).
-DIRECT_AFTER_DENSE = 1
+#: Sweeps of alternating projections before a column still moving jumps to the direct solution: none
+#: when the two terms form one system held densely (a column fresh from the data is never demeaned by
+#: one sweep, and the direct solution costs about as much as one; a warm start, see
+#: :meth:`Absorber.demean`, sweeps once first), ten when it splits into many parts (building those costs
+#: about as much as ten sweeps; unbalanced panels and unit trends can take hundreds).
+DIRECT_AFTER_DENSE = 0
 DIRECT_AFTER = 10
 
 
@@ -838,7 +844,7 @@ class Absorber:
         k = x.shape[1]
         return DemeanOutcome(residual[cell], np.ones(k, dtype=np.int64), np.ones(k, dtype=bool))
 
-    def demean(self, x: np.ndarray) -> DemeanOutcome:
+    def demean(self, x: np.ndarray, *, warm: bool = False) -> DemeanOutcome:
         """Residuals of the columns of ``x`` (n, k) on all absorbed terms.
 
         One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
@@ -846,6 +852,9 @@ class Absorber:
         products), which minimises the distance to the solution along the sweep's direction. Columns
         not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps jump to the
         direct solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
+        ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
+        fit starts from the previous step's): at least one sweep comes before the jump, since it may
+        already confirm them.
         """
         x = np.array(x, dtype=float, order="F")
         if x.ndim == 1:
@@ -860,15 +869,17 @@ class Absorber:
         iterations = np.ones(k, dtype=np.int64)
         converged = np.ones(k, dtype=bool)
         if len(self._projections) <= 1:  # exact in one projection, on our own copy
-            for proj in self._projections:
-                proj.apply(x, out=x)
+            if self.terms:  # (the intercept alone: the centring was its projection)
+                self._projections[0].apply(x, out=x)
             return DemeanOutcome(x, iterations, converged)
         unweighted = bool(np.all(self.w == 1.0))
 
         def wdot(a: np.ndarray, b: np.ndarray) -> float:
             return float(np.dot(a, b)) if unweighted else float(np.dot(self.w * a, b))
 
-        jump = self._direct_setup[2] + 1 if self._direct_setup is not None else 0
+        jump = 0
+        if self._direct_setup is not None:
+            jump = max(self._direct_setup[2], 1 if warm else 0) + 1
         converged[:] = False
         # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
         for j in range(k):

@@ -29,14 +29,16 @@ which spec ids hash, so that renaming a kind never changes an id.
 
 from __future__ import annotations
 
+import weakref
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
 from .errors import EstimationError
 
-__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_sums"]
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_sums", "n_clusters"]
 
 
 @dataclass(frozen=True)
@@ -70,15 +72,64 @@ class CovarianceOutcome:
     psd_adjusted: bool = False
 
 
+class _Layout(NamedTuple):
+    """How the rows of one array of cluster codes are laid out, for summing values per cluster."""
+
+    n_groups: int
+    starts: np.ndarray | None  # where each cluster's run begins, when the codes are sorted and all present
+    run_starts: np.ndarray | None  # where each run of equal codes begins, when runs are long (unsorted codes)
+    run_codes: np.ndarray | None  # each run's code
+
+
+#: Cluster codes' layouts, by the id of the codes array (dropped when the array is freed): a design's
+#: cluster variables serve every specification and covariance choice on its rows.
+_LAYOUTS: dict[int, tuple[weakref.ref, _Layout]] = {}
+
+#: Unsorted codes are first summed over runs of equal codes when there are at most this share of runs
+#: per row (a region's units, each unit's rows together in a panel sorted by unit).
+RUNS_SHARE = 0.25
+
+
+def _layout(codes: np.ndarray) -> _Layout:
+    """The layout of ``codes`` (computed once per array; codes arrays are never changed in place)."""
+    key = id(codes)
+    got = _LAYOUTS.get(key)
+    if got is not None and got[0]() is codes:
+        return got[1]
+    n = len(codes)
+    n_groups = int(codes.max()) + 1 if n else 0
+    starts = run_starts = run_codes = None
+    if 1 < n and n_groups < n:
+        breaks = np.flatnonzero(codes[1:] != codes[:-1]) + 1
+        if len(breaks) + 1 == n_groups and bool(np.all(codes[breaks] > codes[breaks - 1])) and codes[0] == 0:
+            starts = np.concatenate([[0], breaks])  # sorted, every code present: one run per cluster
+        elif len(breaks) + 1 <= RUNS_SHARE * n:
+            run_starts = np.concatenate([[0], breaks])
+            run_codes = codes[run_starts]
+    layout = _Layout(n_groups, starts, run_starts, run_codes)
+    try:
+        ref = weakref.ref(codes, lambda _, key=key: _LAYOUTS.pop(key, None))
+    except TypeError:  # not weakly referable: computed each time
+        return layout
+    _LAYOUTS[key] = (ref, layout)
+    return layout
+
+
+def n_clusters(codes: np.ndarray) -> int:
+    """The number of clusters of ``codes`` (``0..G-1``)."""
+    return _layout(codes).n_groups
+
+
 def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
     """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``."""
-    n_groups = int(codes.max()) + 1
+    layout = _layout(codes)
+    n_groups = layout.n_groups
     if n_groups == len(codes):  # one observation per cluster (e.g. unit x period): the sums are the rows
         return values, n_groups
-    if len(codes) > 1 and bool(np.all(codes[1:] >= codes[:-1])):  # sorted (a panel sorted by unit): runs
-        starts = np.flatnonzero(np.concatenate([[True], codes[1:] != codes[:-1]]))
-        if len(starts) == n_groups:  # every code present, in order: one sum per run
-            return np.add.reduceat(values, starts, axis=0), n_groups
+    if layout.starts is not None:  # sorted (a panel sorted by unit): one sum per run
+        return np.add.reduceat(values, layout.starts, axis=0), n_groups
+    if layout.run_starts is not None:  # long runs of one cluster: their sums first
+        values, codes = np.add.reduceat(values, layout.run_starts, axis=0), layout.run_codes
     if values.ndim == 1:
         return np.bincount(codes, values, minlength=n_groups), n_groups
     return np.column_stack([np.bincount(codes, values[:, j], minlength=n_groups)
@@ -112,7 +163,7 @@ class _Kind:
         """The df of the t (and F) distributions: ``N - K`` or, clustered, the fewest clusters less one."""
         if not self.dimensions:
             return float(_dof(n, k_total))
-        return float(min(int(c.max()) + 1 for c in clusters[: self.dimensions]) - 1)
+        return float(min(n_clusters(c) for c in clusters[: self.dimensions]) - 1)
 
     def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
              clusters: Sequence[np.ndarray]) -> np.ndarray:
@@ -211,7 +262,7 @@ class TwoWay(_Kind):
 
     def with_matrix(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         """The focal variance is the clipped matrix's first element: one meat for both."""
-        counts = [int(c.max()) + 1 if len(c) else 0 for c in clusters]
+        counts = [n_clusters(c) for c in clusters]
         meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
                          clusters=clusters)
         v = fit.bread @ meat @ fit.bread

@@ -815,7 +815,8 @@ def _evaluate(design: _Design, spec: SpecRequest, keep: bool) -> tuple[SpecResul
                               all_codes, design.frame, design.settings, terms, keep, design.checks)
     if result.status != STATUS_OK:
         return result, kept
-    _record_influence(design, spec, None, pieces.h * pieces.e)
+    if design.influence is not None:
+        _record_influence(design, spec, None, pieces.h * pieces.e)
     if two_stage:
         assert isinstance(regressors, _IvRegressors)
         if design.diagnostics:
@@ -971,7 +972,7 @@ def _evaluate_poisson(design: _Design, spec: SpecRequest, keep: bool) -> tuple[S
     nested = fit.absorber.nested_df(codes) if codes else 0  # type: ignore[attr-defined]
     result, kept = _inference(base, spec, got.pieces, fit.absorber, nested, codes,  # type: ignore[attr-defined]
                               _covariance_codes(spec, codes, cluster_of), sub, design.settings, list(got.names), keep)
-    if result.status == STATUS_OK:
+    if result.status == STATUS_OK and design.influence is not None:
         _record_influence(design, spec, rows, got.pieces.h * got.pieces.e)
     if spec.inference.bootstrap is not None and result.status == STATUS_OK:
         result = _without_wild(result)

@@ -186,7 +186,7 @@ def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequenc
             omega = w_user * mu
             absorber = absorber.reweighted(omega)
         start = np.column_stack([z, x]) - absorbed
-        tilde = absorber.demean(start).values
+        tilde = absorber.demean(start, warm=True).values
         absorbed = np.column_stack([z, x]) - tilde
         zt, xt = tilde[:, 0], tilde[:, 1:]
         sw = np.sqrt(omega)
@@ -208,5 +208,5 @@ def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequenc
             break
     # the regressors demeaned with the final weights (the scores' and bread's weights)
     absorber = absorber.reweighted(w_user * mu)
-    xt = absorber.demean(xt).values if x.shape[1] else xt
+    xt = absorber.demean(xt, warm=True).values if x.shape[1] else xt
     return PoissonFit(beta, mu, xt, absorber, steps, converged, dev_old)

@@ -326,6 +326,7 @@ class DemeanOutcome:
     values: np.ndarray  # (n, k), Fortran order
     iterations: np.ndarray  # (k,)
     converged: np.ndarray  # (k,) bool
+    centred_norms: np.ndarray | None = None  # (k,) each column's weighted norm once centred, before projecting
 
 
 class _Projection:
@@ -844,7 +845,7 @@ class Absorber:
         k = x.shape[1]
         return DemeanOutcome(residual[cell], np.ones(k, dtype=np.int64), np.ones(k, dtype=bool))
 
-    def demean(self, x: np.ndarray, *, warm: bool = False) -> DemeanOutcome:
+    def demean(self, x: np.ndarray, *, warm: bool = False, overwrite: bool = False) -> DemeanOutcome:
         """Residuals of the columns of ``x`` (n, k) on all absorbed terms.
 
         One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
@@ -854,28 +855,32 @@ class Absorber:
         direct solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
         fit starts from the previous step's): at least one sweep comes before the jump, since it may
-        already confirm them.
+        already confirm them. ``overwrite`` lets the result take the place of ``x`` when it is a float
+        array in Fortran order that the caller no longer needs (no copy of the columns).
         """
-        x = np.array(x, dtype=float, order="F")
+        x = np.asarray(x, dtype=float, order="F") if overwrite else np.array(x, dtype=float, order="F")
         if x.ndim == 1:
             x = x[:, None]
+        unweighted = bool(np.all(self.w == 1.0))
+
+        def wdot(a: np.ndarray, b: np.ndarray) -> float:
+            return float(np.dot(a, b)) if unweighted else float(np.dot(self.w * a, b))
+
         # every choice absorbs the intercept, so centring first changes nothing but the precision.
         # Every reduction below runs column by column, so that a column's result does not depend on
         # which other columns are demeaned with it (a refit of some columns gives the same bytes).
         wsum = self.w.sum()
-        for j in range(x.shape[1]):
-            x[:, j] -= np.dot(self.w, x[:, j]) / wsum
         k = x.shape[1]
+        norms = np.empty(k)
+        for j in range(k):
+            x[:, j] -= np.dot(self.w, x[:, j]) / wsum
+            norms[j] = np.sqrt(wdot(x[:, j], x[:, j]))
         iterations = np.ones(k, dtype=np.int64)
         converged = np.ones(k, dtype=bool)
         if len(self._projections) <= 1:  # exact in one projection, on our own copy
             if self.terms:  # (the intercept alone: the centring was its projection)
                 self._projections[0].apply(x, out=x)
-            return DemeanOutcome(x, iterations, converged)
-        unweighted = bool(np.all(self.w == 1.0))
-
-        def wdot(a: np.ndarray, b: np.ndarray) -> float:
-            return float(np.dot(a, b)) if unweighted else float(np.dot(self.w * a, b))
+            return DemeanOutcome(x, iterations, converged, norms)
 
         jump = 0
         if self._direct_setup is not None:
@@ -884,7 +889,7 @@ class Absorber:
         # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
         for j in range(k):
             cur = x[:, j].copy()
-            scale = np.sqrt(wdot(cur, cur)) or 1.0
+            scale = norms[j] or 1.0
             for it in range(1, self.max_iterations + 1):
                 if it == jump and self._direct is not None:
                     # slow to converge: jump to the direct solution (a projection of the column,
@@ -903,4 +908,4 @@ class Absorber:
                 cur -= d * step
             else:
                 x[:, j] = cur
-        return DemeanOutcome(x, iterations, converged)
+        return DemeanOutcome(x, iterations, converged, norms)

@@ -316,6 +316,8 @@ class _Design:
         self._cohorts: Cohorts | None = None
         self._cohort_counts: dict[str, int] | None = None
         self._column_keys: dict[str, str] = {}
+        self._centred_norms: dict[str, float] = {}  # see prepare
+        self._demeaned: tuple[list[str], np.ndarray] | None = None  # the last columns demeaned together
         self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
         self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
         self.positions = np.arange(len(frame))  # the rows' positions in the frame given to fit_block
@@ -356,11 +358,13 @@ class _Design:
                     reused += 1
             todo = missing
         if todo:
-            raw = float_columns(self.frame, todo)
-            out = self.absorber.demean(raw)
+            out = self.absorber.demean(float_columns(self.frame, todo), overwrite=True)
+            self._demeaned = (list(todo), out.values)
+            assert out.centred_norms is not None
             for j, c in enumerate(todo):
                 vals = np.ascontiguousarray(out.values[:, j])
                 self.tilde[c] = vals
+                self._centred_norms[c] = float(out.centred_norms[j])
                 self.iterations[c] = int(out.iterations[j])
                 self.converged[c] = bool(out.converged[j])
                 if store is not None:
@@ -383,17 +387,23 @@ class _Design:
         self.pos = {c: j for j, c in enumerate(self.columns)}
         n, m = len(self.frame), len(self.columns)
         unweighted = self.settings.weights is None
-        self.Z = np.empty((n, m), order="F")
+        # the columns demeaned together, in this order, already are Z (unweighted): no copy
+        same = self._demeaned is not None and self._demeaned[0] == self.columns
+        self.Z = self._demeaned[1] if same and unweighted else np.empty((n, m), order="F")  # type: ignore[index]
+        self._demeaned = None
         self.raw_norm = np.empty(m)
         wsum = self.w.sum()
         for j, c in enumerate(self.columns):
-            if unweighted:
-                self.Z[:, j] = self.tilde[c]
-            else:
+            if not unweighted:
                 np.multiply(self.tilde[c], self.sqrt_w, out=self.Z[:, j])
+            elif not same:
+                self.Z[:, j] = self.tilde[c]
+            if c in self._centred_norms:  # the weighted norm of the centred column, from the demeaning
+                self.raw_norm[j] = self._centred_norms[c]
+                continue
             raw = self.frame[c].to_numpy(dtype=float)
-            centred = raw - (raw.mean() if unweighted else np.dot(self.w, raw) / wsum)
-            self.raw_norm[j] = np.sqrt(np.dot(self.w * centred, centred)) if not unweighted else np.linalg.norm(centred)
+            centred = raw - np.dot(self.w, raw) / wsum
+            self.raw_norm[j] = np.sqrt(np.dot(self.w * centred, centred))
         self.R = tall_r(self.Z)
         self.norm = np.linalg.norm(self.R, axis=0)
 

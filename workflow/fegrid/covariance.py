@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import weakref
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
@@ -49,7 +49,8 @@ class FitPieces:
     square root of the weights), so that the focal element of every sandwich ``B M B`` is a sum
     over observations or clusters of ``h e``: one pass over the data per clustering, whatever the
     number of controls. ``scores()`` gives ``X * e`` (Fortran order), for the kinds that need the
-    whole covariance matrix.
+    whole covariance matrix; :meth:`score_sums` their sums per cluster, computed once per cluster
+    variable for all of the regression's covariance choices.
     """
 
     estimate: float
@@ -60,6 +61,16 @@ class FitPieces:
     within_r2: float
     scores: Callable[[], np.ndarray]
     coefficients: np.ndarray | None = None  # every kept coefficient, focal first
+    _sums: dict[int, tuple[np.ndarray, tuple[np.ndarray, int]]] = field(default_factory=dict, repr=False,
+                                                                        compare=False)
+
+    def score_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
+        """:func:`cluster_sums` of the scores by ``codes``, kept for the next covariance choice."""
+        got = self._sums.get(id(codes))
+        if got is None or got[0] is not codes:  # (the codes are held with their sums: an id stays theirs)
+            got = (codes, cluster_sums(self.scores(), codes))
+            self._sums[id(codes)] = got
+        return got[1]
 
 
 @dataclass(frozen=True)
@@ -142,6 +153,10 @@ def _dof(n: int, k_total: int) -> int:
     return n - k_total
 
 
+#: The scores' cluster sums (and the number of clusters) by a cluster variable's codes.
+SumsOf = Callable[[np.ndarray], tuple[np.ndarray, int]]
+
+
 class _Kind:
     """A covariance kind: callable on the fitted pieces of one specification.
 
@@ -166,9 +181,10 @@ class _Kind:
         return float(min(n_clusters(c) for c in clusters[: self.dimensions]) - 1)
 
     def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
-             clusters: Sequence[np.ndarray]) -> np.ndarray:
+             clusters: Sequence[np.ndarray], sums_of: SumsOf | None = None) -> np.ndarray:
         """The scaled middle ``M`` of the sandwich ``B M B`` for scores ``X * e`` (n, k), with the
-        kind's small-sample factors (the homoskedastic kind has none: see :meth:`matrix`)."""
+        kind's small-sample factors (the homoskedastic kind has none: see :meth:`matrix`).
+        ``sums_of(codes)`` gives the scores' cluster sums when they are kept (default: summed here)."""
         raise NotImplementedError
 
     def with_matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
@@ -184,7 +200,7 @@ class _Kind:
         if isinstance(self, Iid):
             return fit.rss / _dof(len(fit.e), n_params + absorbed_df) * b
         m = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
-                      clusters=clusters)
+                      clusters=clusters, sums_of=fit.score_sums)
         v = b @ m @ b
         v = (v + v.T) / 2
         if psd and isinstance(self, TwoWay):
@@ -217,7 +233,7 @@ class Robust(_Kind):
         he = fit.h * fit.e
         return CovarianceOutcome(n / dof * float(he @ he), dof, ())
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
         return n / _dof(n, n_params + absorbed_df) * (scores.T @ scores)
 
@@ -237,10 +253,10 @@ class OneWay(_Kind):
             raise EstimationError("the cluster variable has a single group in this sample")
         return CovarianceOutcome(g / (g - 1) * (n - 1) / dof * float(sums @ sums), g - 1, (g,))
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
         dof = _dof(n, n_params + absorbed_df - nested_df)
-        u, g = cluster_sums(scores, clusters[0])
+        u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
         return g / (g - 1) * (n - 1) / dof * (u.T @ u)
@@ -264,7 +280,7 @@ class TwoWay(_Kind):
         """The focal variance is the clipped matrix's first element: one meat for both."""
         counts = [n_clusters(c) for c in clusters]
         meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
-                         clusters=clusters)
+                         clusters=clusters, sums_of=fit.score_sums)
         v = fit.bread @ meat @ fit.bread
         v = (v + v.T) / 2
         eigval, eigvec = np.linalg.eigh(v)
@@ -274,12 +290,12 @@ class TwoWay(_Kind):
         return CovarianceOutcome(float(v[0, 0]), min(counts[0], counts[1]) - 1, (counts[0], counts[1]),
                                  adjusted), v
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
         dof = _dof(n, n_params + absorbed_df - nested_df)
         meat = np.zeros((scores.shape[1], scores.shape[1]))
         for codes, sign in zip(clusters, (1.0, 1.0, -1.0)):
-            u, g = cluster_sums(scores, codes)
+            u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
             meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)

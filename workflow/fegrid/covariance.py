@@ -32,7 +32,7 @@ from __future__ import annotations
 import weakref
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -155,6 +155,8 @@ def _dof(n: int, k_total: int) -> int:
 
 #: The scores' cluster sums (and the number of clusters) by a cluster variable's codes.
 SumsOf = Callable[[np.ndarray], tuple[np.ndarray, int]]
+#: A number, or an array of them (one per draw)
+Num = Any
 
 
 class _Kind:
@@ -174,11 +176,43 @@ class _Kind:
                  clusters: Sequence[np.ndarray]) -> CovarianceOutcome:
         raise NotImplementedError
 
-    def t_df(self, n: int, k_total: int, clusters: Sequence[np.ndarray]) -> float:
+    # The conventions of the module docstring, each stated once. They take numbers, or arrays of them (the
+    # joint tests' draws, refitted together in fegrid.reweight, compute their sums their own way and
+    # combine them here).
+
+    def residual_df(self, n: Num, n_params: Num, absorbed_df: Num, nested_df: Num) -> Num:
+        """``N - K``: the observations less the kept regressors and the absorbed df, of which the clustered
+        kinds do not count those nested in the clusters."""
+        if self.dimensions:
+            return n - (n_params + absorbed_df - nested_df)
+        return n - (n_params + absorbed_df)
+
+    def scaled(self, total: np.ndarray | float, n: Num, dof: Num, groups: Num = 0) -> np.ndarray | float:
+        """``total`` (the sum over observations or clusters of ``h e`` squared, or of the scores' cross
+        products) times the kind's small-sample factor: ``1 / (N - K)`` (homoskedastic, ``total`` the
+        residuals' sum of squares), ``N / (N - K)`` (HC1), ``G / (G - 1) * (N - 1) / (N - K)`` (clustered,
+        ``groups`` the clusters ``G`` of the variable summed over). Arrays of draws broadcast over the
+        trailing axes of ``total``."""
+        def lead(a: Num) -> Num:
+            return np.reshape(a, np.shape(a) + (1,) * (np.ndim(total) - np.ndim(a))) if np.ndim(a) else a
+
+        if self.name == "homoskedastic":
+            return total / lead(dof)
+        if not self.dimensions:
+            return lead(n / dof) * total
+        return lead(groups / (groups - 1) * (n - 1) / dof) * total
+
+    def inference_df(self, dof: Num, groups: Sequence[Num] = ()) -> Num:
         """The df of the t (and F) distributions: ``N - K`` or, clustered, the fewest clusters less one."""
         if not self.dimensions:
+            return dof
+        return groups[0] - 1 if self.dimensions == 1 else np.minimum(groups[0], groups[1]) - 1
+
+    def t_df(self, n: int, k_total: int, clusters: Sequence[np.ndarray]) -> float:
+        """:meth:`inference_df` from the cluster variables' codes."""
+        if not self.dimensions:
             return float(_dof(n, k_total))
-        return float(min(n_clusters(c) for c in clusters[: self.dimensions]) - 1)
+        return float(self.inference_df(0, [n_clusters(c) for c in clusters[: self.dimensions]]))
 
     def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
              clusters: Sequence[np.ndarray], sums_of: SumsOf | None = None) -> np.ndarray:
@@ -198,16 +232,22 @@ class _Kind:
         """The covariance matrix of every kept coefficient (focal first)."""
         b = fit.bread
         if isinstance(self, Iid):
-            return fit.rss / _dof(len(fit.e), n_params + absorbed_df) * b
+            n = len(fit.e)
+            return self.scaled(fit.rss, n, self.checked_df(n, n_params, absorbed_df, nested_df)) * b
         m = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
                       clusters=clusters, sums_of=fit.score_sums)
         v = b @ m @ b
         v = (v + v.T) / 2
         if psd and isinstance(self, TwoWay):
-            eigval, eigvec = np.linalg.eigh(v)
-            if eigval.min() < 0:
-                v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
+            v = clip_negative(v)[0]
         return v
+
+    def checked_df(self, n: int, n_params: int, absorbed_df: int, nested_df: int) -> int:
+        """:meth:`residual_df`, which must be positive."""
+        dof = self.residual_df(n, n_params, absorbed_df, nested_df)
+        if dof <= 0:
+            raise EstimationError("no residual degrees of freedom are left")
+        return dof
 
 
 class Iid(_Kind):
@@ -217,8 +257,9 @@ class Iid(_Kind):
     canonical_name = "iid"
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
-        dof = _dof(len(fit.e), n_params + absorbed_df)
-        return CovarianceOutcome(fit.rss / dof * float(fit.bread[0, 0]), dof, ())
+        n = len(fit.e)
+        dof = self.checked_df(n, n_params, absorbed_df, nested_df)
+        return CovarianceOutcome(self.scaled(fit.rss, n, dof) * float(fit.bread[0, 0]), dof, ())
 
 
 class Robust(_Kind):
@@ -229,13 +270,13 @@ class Robust(_Kind):
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
-        dof = _dof(n, n_params + absorbed_df)
+        dof = self.checked_df(n, n_params, absorbed_df, nested_df)
         he = fit.h * fit.e
-        return CovarianceOutcome(n / dof * float(he @ he), dof, ())
+        return CovarianceOutcome(self.scaled(float(he @ he), n, dof), dof, ())
 
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
-        return n / _dof(n, n_params + absorbed_df) * (scores.T @ scores)
+        return self.scaled(scores.T @ scores, n, self.checked_df(n, n_params, absorbed_df, nested_df))
 
 
 class OneWay(_Kind):
@@ -247,19 +288,19 @@ class OneWay(_Kind):
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
-        dof = _dof(n, n_params + absorbed_df - nested_df)
+        dof = self.checked_df(n, n_params, absorbed_df, nested_df)
         sums, g = cluster_sums(fit.h * fit.e, clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
-        return CovarianceOutcome(g / (g - 1) * (n - 1) / dof * float(sums @ sums), g - 1, (g,))
+        return CovarianceOutcome(self.scaled(float(sums @ sums), n, dof, g), self.inference_df(dof, [g]), (g,))
 
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
-        dof = _dof(n, n_params + absorbed_df - nested_df)
+        dof = self.checked_df(n, n_params, absorbed_df, nested_df)
         u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
-        return g / (g - 1) * (n - 1) / dof * (u.T @ u)
+        return self.scaled(u.T @ u, n, dof, g)
 
 
 class TwoWay(_Kind):
@@ -282,24 +323,38 @@ class TwoWay(_Kind):
         meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
                          clusters=clusters, sums_of=fit.score_sums)
         v = fit.bread @ meat @ fit.bread
-        v = (v + v.T) / 2
-        eigval, eigvec = np.linalg.eigh(v)
-        adjusted = bool(eigval.min() < 0)
-        if adjusted:
-            v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
-        return CovarianceOutcome(float(v[0, 0]), min(counts[0], counts[1]) - 1, (counts[0], counts[1]),
-                                 adjusted), v
+        v, adjusted = clip_negative((v + v.T) / 2)
+        return CovarianceOutcome(float(v[0, 0]), int(self.inference_df(0, counts)), (counts[0], counts[1]),
+                                 bool(adjusted)), v
 
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
-        dof = _dof(n, n_params + absorbed_df - nested_df)
+        dof = self.checked_df(n, n_params, absorbed_df, nested_df)
         meat = np.zeros((scores.shape[1], scores.shape[1]))
-        for codes, sign in zip(clusters, (1.0, 1.0, -1.0)):
+        for codes, sign in zip(clusters, TWO_WAY_SIGNS):
             u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
-            meat += sign * g / (g - 1) * (n - 1) / dof * (u.T @ u)
+            meat += sign * self.scaled(u.T @ u, n, dof, g)
         return meat
+
+
+#: The signs of the two-way meat's parts: the first variable's, the second's, their intersection's.
+TWO_WAY_SIGNS = (1.0, 1.0, -1.0)
+
+
+def clip_negative(v: np.ndarray) -> tuple[np.ndarray, np.ndarray | bool]:
+    """A symmetric matrix (k, k), or a stack of them (d, k, k), with negative eigenvalues set to zero
+    (Cameron, Gelbach & Miller 2011, section 2.3), and whether each was changed."""
+    eigval, eigvec = np.linalg.eigh(v)
+    clip = eigval.min(axis=-1) < 0
+    if v.ndim == 2:
+        return ((eigvec * np.clip(eigval, 0, None)) @ eigvec.T if clip else v), bool(clip)
+    if clip.any():
+        v = v.copy()
+        vecs = eigvec[clip]
+        v[clip] = (vecs * np.clip(eigval[clip], 0, None)[:, None, :]) @ vecs.transpose(0, 2, 1)
+    return v, clip
 
 
 #: Registry of covariance kinds: the config's name -> estimator.

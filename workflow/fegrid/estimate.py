@@ -1391,10 +1391,11 @@ def _with_wild(design: _Design, spec: SpecRequest, pieces: FitPieces, idx: list[
     boot = spec.inference.bootstrap
     assert boot is not None
     n = len(pieces.e)
-    k_total = pieces.bread.shape[0] + design.absorber.absorbed_df - design.nested_df(spec.inference.by)
+    kind = covariance_kind(spec.inference.kind)  # one-way clustered: the wild bootstrap's clusters
+    dof = kind.residual_df(n, pieces.bread.shape[0], design.absorber.absorbed_df, design.nested_df(spec.inference.by))
     wild = wild_cluster_test(
         y=design.Z[:, design.pos[spec.outcome]], x=design.Z[:, idx], bread=pieces.bread, codes=codes,
-        factor=n_groups / (n_groups - 1) * (n - 1) / (n - k_total), estimate=result.estimate,
+        factor=kind.scaled(1.0, n, dof, n_groups), estimate=result.estimate,
         std_error=result.std_error, settings=boot, key=spec.spec_id, level=design.settings.level,
         partial_out=None if design.absorber.nested_in(codes) else design.partial_out)
     return replace(result, wild_p_value=wild.p_value, wild_ci_low=wild.ci_low, wild_ci_high=wild.ci_high,

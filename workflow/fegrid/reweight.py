@@ -67,7 +67,7 @@ from .absorb import (
     codes_on_rows,
     drop_singletons,
 )
-from .covariance import FitPieces, Iid, OneWay, Robust, TwoWay, _dof, covariance_kind
+from .covariance import TWO_WAY_SIGNS, FitPieces, Iid, OneWay, Robust, TwoWay, clip_negative, covariance_kind
 from .errors import EstimationError, FegridError
 from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE
@@ -1008,13 +1008,12 @@ class _Design:
         cl = counts[live]
         bad = np.zeros(len(live), dtype=bool)
         with np.errstate(divide="ignore", invalid="ignore"):
+            dof = kind.residual_df(n, p, absorbed[live], nested[live])
             if isinstance(kind, Iid):
-                dof = n - (p + absorbed[live])
                 sse = once("sse", lambda: (c * (e * e if w is None else w * e * e)).sum(axis=0))
-                variance = sse / dof * fit.bread[:, 0, 0]
+                variance = kind.scaled(sse, n, dof) * fit.bread[:, 0, 0]
                 df = dof
             elif isinstance(kind, TwoWay):
-                dof = n - (p + absorbed[live] - nested[live])
 
                 def scores() -> np.ndarray:
                     select = np.zeros((len(self.columns), p))
@@ -1025,31 +1024,23 @@ class _Design:
                 by = spec.inference.by
                 meat = np.zeros((len(live), p, p))
                 groups = []
-                for dim, sign in zip((by[0], by[1], by[0] + by[1]), (1.0, 1.0, -1.0)):
+                for dim, sign in zip((by[0], by[1], by[0] + by[1]), TWO_WAY_SIGNS):
                     part, g = once(("two-way", dim),
                                    lambda dim=dim: self._batch_meat(dim, once("scores", scores), c, cl))
                     bad |= g < 2
-                    factor = np.where(g < 2, 0.0, sign * g / (g - 1) * (n - 1) / dof)
-                    meat += factor[:, None, None] * part
+                    meat += np.where((g < 2)[:, None, None], 0.0, sign * kind.scaled(part, n, dof, g))
                     groups.append(g)
                 bad |= dof <= 0
                 meat[bad] = 0.0
                 v = fit.bread @ meat @ fit.bread
-                v = (v + v.transpose(0, 2, 1)) / 2
-                eigval, eigvec = np.linalg.eigh(v)
-                clip = eigval.min(axis=1) < 0
-                if clip.any():
-                    vecs = eigvec[clip]
-                    v[clip] = (vecs * np.clip(eigval[clip], 0, None)[:, None, :]) @ vecs.transpose(0, 2, 1)
-                variance, df = v[:, 0, 0], np.minimum(groups[0], groups[1]) - 1.0
+                v = clip_negative((v + v.transpose(0, 2, 1)) / 2)[0]
+                variance, df = v[:, 0, 0], kind.inference_df(dof, groups)
             else:
                 he = once("he", lambda: fit.h * e if w is None else w * fit.h * e)
                 if isinstance(kind, Robust):
-                    dof = n - (p + absorbed[live])
-                    variance, df = n / dof * once("robust", lambda: (c * he * he).sum(axis=0)), dof
+                    variance, df = kind.scaled(once("robust", lambda: (c * he * he).sum(axis=0)), n, dof), dof
                 else:
                     assert isinstance(kind, OneWay)
-                    dof = n - (p + absorbed[live] - nested[live])
                     dim = spec.inference.by[0]
 
                     def one_way() -> tuple[np.ndarray, np.ndarray]:
@@ -1058,8 +1049,7 @@ class _Design:
 
                     squares, g = once(("one-way", dim), one_way)
                     bad |= g < 2
-                    variance = g / (g - 1) * (n - 1) / dof * squares
-                    df = g - 1.0
+                    variance, df = kind.scaled(squares, n, dof, g), kind.inference_df(dof, [g])
             bad |= dof <= 0
             se = np.sqrt(variance)
         beta = fit.beta.copy()
@@ -1233,45 +1223,39 @@ class _Design:
         p = len(fit.idx)
         e = on_rows[:, 0]
         try:
+            dof = kind.checked_df(n, p, absorbed_df, nested_df)  # type: ignore[arg-type]
             if isinstance(kind, Iid):
-                dof = _dof(n, p + absorbed_df)
-                variance, df = float(rows.copies @ (rows.w * e * e)) / dof * float(fit.bread[0, 0]), float(dof)
+                variance, df = kind.scaled(float(rows.copies @ (rows.w * e * e)), n, dof) * float(fit.bread[0, 0]), dof
             elif isinstance(kind, TwoWay):
-                dof = _dof(n, p + absorbed_df - nested_df)
                 scores = rows.at(fit.x) * (rows.w * e)[:, None]
                 by = spec.inference.by
                 meat = np.zeros((p, p))
                 counts = []
-                for dim, sign in zip((by[0], by[1], by[0] + by[1]), (1.0, 1.0, -1.0)):
+                for dim, sign in zip((by[0], by[1], by[0] + by[1]), TWO_WAY_SIGNS):
                     sums, mult, g = self._cluster_sums(dim, scores, rows)
                     if g < 2:
                         raise EstimationError("a cluster variable has a single group in this sample")
-                    meat += sign * g / (g - 1) * (n - 1) / dof * (sums.T @ (sums * mult[:, None]))
+                    meat += sign * kind.scaled(sums.T @ (sums * mult[:, None]), n, dof, g)
                     counts.append(g)
                 v = fit.bread @ meat @ fit.bread
-                v = (v + v.T) / 2
-                eigval, eigvec = np.linalg.eigh(v)
-                if eigval.min() < 0:
-                    v = (eigvec * np.clip(eigval, 0, None)) @ eigvec.T
-                variance, df = float(v[0, 0]), float(min(counts[0], counts[1]) - 1)
+                v = clip_negative((v + v.T) / 2)[0]
+                variance, df = float(v[0, 0]), kind.inference_df(dof, counts)
             else:
                 he = rows.w * on_rows[:, 1] * e
                 if isinstance(kind, Robust):
-                    dof = _dof(n, p + absorbed_df)
-                    variance, df = n / dof * float(rows.copies @ (he * he)), float(dof)
+                    variance, df = kind.scaled(float(rows.copies @ (he * he)), n, dof), dof
                 else:
                     assert isinstance(kind, OneWay)
-                    dof = _dof(n, p + absorbed_df - nested_df)
                     sums, mult, g = self._cluster_sums(spec.inference.by[0], he, rows)
                     if g < 2:
                         raise EstimationError("the cluster variable has a single group in this sample")
-                    variance, df = g / (g - 1) * (n - 1) / dof * float(mult @ (sums * sums)), float(g - 1)
+                    variance, df = kind.scaled(float(mult @ (sums * sums)), n, dof, g), kind.inference_df(dof, [g])
         except EstimationError:
             return spec.spec_id, beta, nan, nan
         se = float(np.sqrt(variance))
         if not (np.isfinite(beta) and np.isfinite(se)):
             return spec.spec_id, nan, nan, nan
-        return spec.spec_id, beta, se, df
+        return spec.spec_id, beta, se, float(df)
 
     def _cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, rows: _Weighted
                       ) -> tuple[np.ndarray, np.ndarray, int]:

@@ -493,6 +493,39 @@ def test_cluster_sums_over_runs_equal_plain_group_sums(wage_panel: pd.DataFrame)
         assert key_id not in covariance._LAYOUTS
 
 
+def test_covariance_conventions_take_numbers_and_arrays_of_draws_alike() -> None:
+    """The small-sample conventions' one home (covariance.py) serves the engine (numbers) and the
+    batched draws (arrays, one entry per draw): each draw's entry equals the number computed alone, and
+    the factors are those stated in the module docstring (Cameron & Miller 2015 for the clustered one)."""
+    rng = np.random.default_rng(11)
+    d, k = 5, 3
+    n = rng.integers(40, 60, size=d).astype(float)
+    groups = rng.integers(2, 9, size=d).astype(float)
+    absorbed, nested = rng.integers(1, 6, size=d).astype(float), rng.integers(0, 2, size=d).astype(float)
+    totals = rng.normal(size=(d, k, k))
+    for kind in covariance.COVARIANCE_KINDS.values():
+        dof = kind.residual_df(n, 2, absorbed, nested)
+        stacked = kind.scaled(totals, n, dof, groups)
+        df = kind.inference_df(dof, [groups, groups + 1])
+        for i in range(d):
+            one = kind.residual_df(n[i], 2, absorbed[i], nested[i])
+            assert one == dof[i]
+            assert np.array_equal(stacked[i], kind.scaled(totals[i], n[i], one, groups[i]))
+            assert df[i] == kind.inference_df(one, [groups[i], groups[i] + 1])
+        i = 0
+        expected = {"homoskedastic": 1 / (n[i] - 2 - absorbed[i]), "hc1": n[i] / (n[i] - 2 - absorbed[i]),
+                    "clustered": groups[i] / (groups[i] - 1) * (n[i] - 1) / (n[i] - 2 - absorbed[i] + nested[i])}
+        expected["two_way_clustered"] = expected["clustered"]
+        assert kind.scaled(1.0, n[i], dof[i], groups[i]) == pytest.approx(expected[kind.name], rel=1e-14)
+    v = rng.normal(size=(d, k, k))
+    v = v @ v.transpose(0, 2, 1) - 2.0 * np.eye(k)  # some with negative eigenvalues
+    clipped, changed = covariance.clip_negative(v)
+    for i in range(d):
+        alone, flag = covariance.clip_negative(v[i])
+        assert flag == changed[i] and np.allclose(alone, clipped[i], rtol=1e-12, atol=1e-12)
+        assert np.linalg.eigvalsh(clipped[i]).min() >= -1e-12
+
+
 def test_a_fitted_block_leaves_no_design_alive(monkeypatch, wage_panel: pd.DataFrame) -> None:
     """A block's designs (each holding its demeaned columns, n x m) are freed when the block is done,
     without waiting for Python's cycle collector: before, a residual closure referred back to its

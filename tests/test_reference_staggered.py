@@ -475,3 +475,41 @@ def test_event_study_standard_error_is_the_combination_of_its_indicators(jobtrai
     v = coefs.covariance[np.ix_(rows, rows)]
     assert result.estimate == pytest.approx(float(a @ coefs.estimates[rows]), abs=1e-12)
     assert result.std_error == pytest.approx(float(np.sqrt(a @ v @ a)), rel=1e-10)
+
+
+@pytest.mark.parametrize("controls", [[], ["hours", "married"]])
+def test_direct_solve_of_the_untreated_fit_equals_explicit_dummies(wage_panel, controls):
+    """Source: numpy least squares on explicit worker and year dummies (linearmodels' wage_panel, made
+    unbalanced by dropping worker-years; by SVD: ``Z g`` is the least-norm solution of ``Z'u = rhs``). The
+    imputation estimator's systems ``Z'Z g = rhs`` (Z: the two effects' dummies and the controls) are
+    solved directly (large effect eliminated, a small dense system left); ``Z g`` must equal the
+    dummies' solution, for a right-hand side ``Z'y`` (a projection)
+    and for the treated rows' level sums (the weights on untreated rows), and the conjugate-gradient
+    path's, which stays for three effects or many small levels."""
+    from fegrid.staggered import _group_cg, _group_solve, _sums
+
+    df = wage_panel.iloc[np.random.default_rng(8).permutation(len(wage_panel))[: len(wage_panel) - 400]]
+    unit = pd.factorize(df["nr"], sort=True)[0]
+    year = pd.factorize(df["year"], sort=True)[0]
+    codes, sizes = [unit, year], [int(unit.max()) + 1, int(year.max()) + 1]
+    x = df[controls].to_numpy(dtype=float) if controls else np.zeros((len(df), 0))
+    z = np.hstack([np.eye(sizes[0])[unit], np.eye(sizes[1])[year], x])
+    y = df[["lwage"]].to_numpy(dtype=float)
+    treated = np.random.default_rng(9).random(len(df)) < 0.2  # some rows play the treated ones
+    w1 = np.column_stack([np.full(treated.sum(), 1 / treated.sum()), np.random.default_rng(10).random(treated.sum())])
+    rows0 = ~treated
+    for rhs_of, rows in (("projection", slice(None)), ("treated sums", rows0)):
+        c = [k[rows] for k in codes]
+        xr, zr = x[rows], z[rows]
+        if rhs_of == "projection":
+            rhs = np.vstack([_sums(c, sizes, y[rows]), xr.T @ y[rows]])
+        else:
+            rhs = np.vstack([_sums([k[treated] for k in codes], sizes, w1), x[treated].T @ w1])
+        # columns scaled to unit norm: the same span, a better conditioned SVD
+        d = np.maximum(np.linalg.norm(zr, axis=0), 1e-300)
+        exact = np.linalg.lstsq((zr / d).T, rhs / d[:, None], rcond=None)[0]  # u in Z's span with Z'u = rhs: Z g
+        direct = _group_solve(c, sizes, xr, rhs)
+        iterated = _group_cg(c, sizes, xr, rhs)
+        scale = np.abs(exact).max()
+        assert np.abs(direct - exact).max() <= 1e-10 * scale, rhs_of
+        assert np.abs(direct - iterated).max() <= 1e-9 * scale, rhs_of

@@ -43,6 +43,7 @@ from typing import NamedTuple
 import numpy as np
 import pandas as pd
 
+from .absorb import DENSE_CELLS, DIRECT_MAX_LEVELS, _pinv
 from .covariance import cluster_sums
 from .errors import ConfigError, DataError
 
@@ -443,6 +444,45 @@ def wald_p_value(estimates: np.ndarray, covariance: np.ndarray, df: float) -> fl
     return float(fdtrc(q, df, stat)) if np.isfinite(df) and df > 0 else float("nan")
 
 
+def _group_solve(codes: list[np.ndarray], sizes: list[int], x: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """``Z g`` for a solution ``g`` of ``Z'Z g = rhs`` with ``Z = [dummies of each code, x]`` (a consistent,
+    possibly singular system; ``Z g`` is the same for every solution).
+
+    With two codes of which the smaller has at most :data:`fegrid.absorb.DIRECT_MAX_LEVELS` levels (a
+    panel's units and periods), solved directly: the large code's dummies are eliminated (their block is
+    diagonal), leaving the small code's levels and ``x`` in a small dense system (the Schur complement),
+    whose pseudo-inverse (scaled to a unit diagonal) solves it; the ``x`` part of that system is built
+    from ``x`` demeaned within the large code's levels, not by subtracting cross products. Otherwise, by
+    conjugate gradients (:func:`_group_cg`)."""
+    if len(codes) != 2 or min(sizes) > DIRECT_MAX_LEVELS or sizes[0] * sizes[1] > DENSE_CELLS:
+        return _group_cg(codes, sizes, x, rhs)
+    big = 0 if sizes[0] >= sizes[1] else 1
+    ca, cb = codes[big], codes[1 - big]
+    na, nb = sizes[big], sizes[1 - big]
+    split = np.cumsum([0, *sizes])
+    ra, rb, rc = rhs[split[big]:split[big + 1]], rhs[split[1 - big]:split[2 - big]], rhs[split[2]:]
+    count_a = np.bincount(ca, minlength=na).astype(float)
+    inv_a = np.divide(1.0, count_a, out=np.zeros(na), where=count_a > 0)
+    table = np.bincount(ca * nb + cb, minlength=na * nb).reshape(na, nb).astype(float)
+    p = x.shape[1]
+    sums_a = np.column_stack([np.bincount(ca, x[:, j], minlength=na) for j in range(p)]) if p else np.zeros((na, 0))
+    means_a = sums_a * inv_a[:, None]
+    within = x - means_a[ca]  # x demeaned within the large code's levels
+    m = nb + p
+    system = np.empty((m, m))
+    system[:nb, :nb] = np.diag(np.bincount(cb, minlength=nb).astype(float)) - table.T @ (table * inv_a[:, None])
+    if p:
+        cross = np.column_stack([np.bincount(cb, within[:, j], minlength=nb) for j in range(p)])
+        system[:nb, nb:], system[nb:, :nb], system[nb:, nb:] = cross, cross.T, within.T @ within
+    reduced = np.vstack([rb - table.T @ (ra * inv_a[:, None]), rc - means_a.T @ ra])
+    scale = np.sqrt(np.clip(np.diag(system), 0.0, None))
+    scale = np.where(scale > 0, scale, 1.0)
+    solution = (_pinv(system / np.outer(scale, scale)) @ (reduced / scale[:, None])) / scale[:, None]
+    gb, gc = solution[:nb], solution[nb:]
+    ga = inv_a[:, None] * (ra - table @ gb - sums_a @ gc)
+    return ga[ca] + gb[cb] + x @ gc
+
+
 def _group_cg(codes: list[np.ndarray], sizes: list[int], x: np.ndarray, rhs: np.ndarray,
               tolerance: float = 1e-13, max_iterations: int = 10_000) -> np.ndarray:
     """Solve ``Z'Z g = rhs`` for ``Z = [dummies of each code, x]`` (a consistent, possibly singular
@@ -587,13 +627,13 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     y0 = y[untreated]
     # least squares on the untreated rows: controls' coefficients by Frisch-Waugh-Lovell, then the effects
     if x0.shape[1]:
-        resid_x = x0 - _group_cg(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, x0))
-        resid_y = y0 - _group_cg(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, y0[:, None]))[:, 0]
+        resid_x = x0 - _group_solve(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, x0))
+        resid_y = y0 - _group_solve(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, y0[:, None]))[:, 0]
         gamma = np.linalg.lstsq(resid_x, resid_y, rcond=None)[0]
     else:
         gamma = np.zeros(0)
     z = y0 - x0 @ gamma
-    fitted0 = _group_cg(codes0, sizes, np.zeros((len(z), 0)), _sums(codes0, sizes, z[:, None]))[:, 0]
+    fitted0 = _group_solve(codes0, sizes, np.zeros((len(z), 0)), _sums(codes0, sizes, z[:, None]))[:, 0]
     effects = _fitted_effects(codes0, sizes, fitted0)
     rows1 = np.flatnonzero(imputable)
     y0_hat = controls[rows1] @ gamma + sum(e[lk[rows1]] for e, lk in zip(effects, lookup))
@@ -611,7 +651,7 @@ def imputation_pieces(y: np.ndarray, design: Cohorts, effect_codes: list[np.ndar
     z1_sums = _sums([lk[rows1] for lk in lookup], sizes, w1)
     if x0.shape[1]:
         z1_sums = np.vstack([z1_sums, controls[rows1].T @ w1])
-    v0 = -_group_cg(codes0, sizes, x0, z1_sums)
+    v0 = -_group_solve(codes0, sizes, x0, z1_sums)
     v = np.zeros((n, len(names)))
     v[rows1] = w1
     v[np.flatnonzero(untreated)] = v0
@@ -647,7 +687,7 @@ def _imputation_pretrend(y0: np.ndarray, x0: np.ndarray, codes0: list[np.ndarray
         return None
     regs = np.column_stack([*(np.where(np.isfinite(rel0) & (rel0 == k), 1.0, 0.0) for k in ks), x0])
     both = np.column_stack([y0, regs])
-    resid = both - _group_cg(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, both))
+    resid = both - _group_solve(codes0, sizes, np.zeros((len(y0), 0)), _sums(codes0, sizes, both))
     r = resid[:, 1:]
     q_, r_ = np.linalg.qr(r)
     scale = np.abs(np.diag(r_))

@@ -12,12 +12,12 @@ A choice of absorbed effects is a tuple of *terms*. Two kinds of term exist, hel
 
 Terms are compiled on a fixed set of rows into projections; their joint residual maker is computed
 by alternating projections (Gaure 2013) with the line-search acceleration of Gearhart & Koshy
-(1989). One term alone is projected out exactly in one sweep. When two terms converge slowly and
-the smaller is a categorical effect with few levels in each connected part of the two (unit and
-period effects, the commonest case, or unit and region-by-period effects), the iterations jump to
-the direct solution: the large term's residuals, less their projection on the small term's dummies
-made orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; one more sweep
-confirms the tolerance.
+(1989). One term alone is projected out exactly in one sweep. When two terms are left and the
+smaller is a categorical effect with few levels in each connected part of the two (unit and period
+effects, the commonest case, or unit and region-by-period effects), the iterations jump to the
+direct solution: the large term's residuals, less their projection on the small term's dummies made
+orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; one more sweep
+confirms the tolerance. One dense system jumps at once, many parts after ten sweeps.
 """
 
 from __future__ import annotations

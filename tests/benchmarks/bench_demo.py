@@ -17,14 +17,13 @@ import json
 import os
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
 import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).parent))
-from bench_pipeline import slurm_plugin_seconds  # noqa: E402
+from bench_pipeline import slurm_plugin_seconds, work_folder  # noqa: E402
 
 #: issue 12's target for the demo, cold, on 2 cores (wall seconds)
 TARGET_SECONDS = 90.0
@@ -52,8 +51,7 @@ def main() -> None:
     ap.add_argument("--cores", type=int, default=2)
     ap.add_argument("--folder", help="an empty work folder (default: a temporary one)")
     args = ap.parse_args()
-    folder = Path(args.folder or tempfile.mkdtemp(prefix="fegrid-demo-"))
-    folder.mkdir(parents=True, exist_ok=True)
+    folder = work_folder(args.folder, "fegrid-demo-")
     if any(folder.iterdir()):
         sys.exit(f"{folder} is not empty: the demo is timed cold")
     started = time.time()

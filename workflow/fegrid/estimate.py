@@ -16,12 +16,13 @@ weights. :func:`fit_block` evaluates all of them with as little repeated work as
 
 from __future__ import annotations
 
+import copy
 import functools
 import json
 import zlib
 from collections.abc import Callable, Collection, Sequence
 from dataclasses import asdict, dataclass, field, fields, replace
-from typing import NamedTuple, Protocol
+from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 import pandas as pd
@@ -244,6 +245,22 @@ class BlockFit:
     #: with ``influence=True``: per specification fitted, the positions of its rows in the frame
     #: passed and the first-order influence of each row on the focal estimate (see :func:`fit_block`)
     influence: dict[str, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+
+
+_RESULT_FIELDS = frozenset(f.name for f in fields(SpecResult))
+
+
+def _updated(result: SpecResult, **changes: Any) -> SpecResult:
+    """``dataclasses.replace(result, **changes)`` without calling ``__init__`` on the result's many fields
+    (it has no ``__post_init__``): a shallow copy with the changes, as ``replace`` passes the other fields
+    on. About 3 us instead of 17 us; every specification takes it several times."""
+    unknown = changes.keys() - _RESULT_FIELDS
+    if unknown:
+        raise TypeError(f"SpecResult has no field(s) {', '.join(sorted(unknown))}")
+    new = copy.copy(result)
+    for name, value in changes.items():
+        object.__setattr__(new, name, value)
+    return new
 
 
 def _fmt_counts(pairs: dict[str, int]) -> str:
@@ -886,7 +903,7 @@ def _inference(base: SpecResult, spec: SpecRequest, pieces: FitPieces, absorber:
     if cov.psd_adjusted:
         notes.append("two-way covariance was not positive semi-definite: negative eigenvalues set to zero")
     clusters = {" x ".join(dim): g for dim, g in zip(spec.inference.by, cov.n_clusters)}
-    result = _with_std_error(replace(
+    result = _with_std_error(_updated(
         base, status=STATUS_OK, message="; ".join(notes), estimate=beta, df_inference=float(cov.df),
         n_clusters=min(cov.n_clusters) if cov.n_clusters else 0, clusters=_fmt_counts(clusters),
         within_r2=r2, psd_adjusted=cov.psd_adjusted), beta, se, cov.df, s.level)
@@ -1221,7 +1238,7 @@ def _linear_result(base: SpecResult, spec: SpecRequest, got: LinearEstimates, la
     if not (np.isfinite(est) and np.isfinite(se)):
         return replace(base, message="the estimate or its standard error is not finite"), None
     notes = [m for m in (base.message, got.message, note) if m]
-    result = _with_std_error(replace(
+    result = _with_std_error(_updated(
         base, status=STATUS_OK, message="; ".join(notes), estimate=est, df_inference=got.df, n_obs=got.n_obs,
         n_clusters=got.n_clusters, clusters=f"{label}={got.n_clusters}", pretrend_p_value=pretrend,
         uniform_critical=got.uniform_critical), est, se, got.df, level)
@@ -1372,8 +1389,8 @@ def _with_std_error(result: SpecResult, estimate: float, se: float, df: float, l
     result gets them."""
     crit = float(stdtrit(df, 0.5 + level / 2))
     t = estimate / se if se > 0 else float("nan")
-    return replace(result, std_error=se, t_stat=t, p_value=float(2 * stdtr(df, -abs(t))) if se > 0 else float("nan"),
-                   ci_low=estimate - crit * se, ci_high=estimate + crit * se)
+    return _updated(result, std_error=se, t_stat=t, p_value=float(2 * stdtr(df, -abs(t))) if se > 0 else float("nan"),
+                    ci_low=estimate - crit * se, ci_high=estimate + crit * se)
 
 
 def _record_indicator_influence(design: _Design, spec: SpecRequest, fit: _IndicatorFit) -> None:
@@ -1418,7 +1435,8 @@ def _cluster_checks(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, co
     if key not in cache:
         cache[key] = _cluster_profile(spec, frame, s, codes)
     notes, share, treated = cache[key]
-    return replace(result, inference_warning="; ".join(notes), largest_cluster_share=share, treated_clusters=treated)
+    return _updated(result, inference_warning="; ".join(notes), largest_cluster_share=share,
+                    treated_clusters=treated)
 
 
 def _cluster_profile(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings,

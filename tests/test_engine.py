@@ -421,6 +421,72 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
         assert np.array_equal(absorber.demean(x[:, [j]]).values[:, 0], out.values[:, j])
 
 
+
+def test_parts_systems_are_solved_by_shifted_cholesky_as_by_the_pseudo_inverse() -> None:
+    """Source: numpy's pseudo-inverse (``np.linalg.pinv``, hermitian) of each connected part's system. The
+    direct solver inverts ``A + a 11' / k`` (``A 1 = 0``) by a batched Cholesky factorization, parts of
+    several sizes padded to the largest: on right-hand sides summing to zero it must give the
+    pseudo-inverse's solution, the padding must stay zero, and a part that is not connected (a second
+    null direction: the shifted system stays singular) must take the pseudo-inverse itself."""
+    from fegrid.absorb import _part_inverses
+
+    rng = np.random.default_rng(7)
+    sizes = [5, 3, 5, 4]
+    k = max(sizes)
+    stack, real = np.zeros((len(sizes), k, k)), np.zeros((len(sizes), k), dtype=bool)
+    systems = []
+    for p, size in enumerate(sizes):
+        # a part's system D'W M_P D: groups of the large term spread over the part's levels
+        counts = rng.uniform(0.0, 3.0, size=(12, size)) * (rng.random((12, size)) < 0.7)
+        counts[:, 0] += 0.5  # every group meets the first level: one connected part
+        if p == 3:  # two separate halves: not connected
+            counts = np.zeros((12, size))
+            counts[:6, :2] = rng.uniform(0.5, 2.0, size=(6, 2))
+            counts[6:, 2:] = rng.uniform(0.5, 2.0, size=(6, size - 2))
+        a = np.diag(counts.sum(axis=0)) - (counts / counts.sum(axis=1, keepdims=True)).T @ counts
+        systems.append(a)
+        stack[p, :size, :size] = a
+        real[p, :size] = True
+    inverses = _part_inverses(stack, real)
+    for p, (size, a) in enumerate(zip(sizes, systems)):
+        assert np.all(inverses[p][~real[p]] == 0.0) and np.all(inverses[p][:, ~real[p]] == 0.0)
+        rhs = rng.normal(size=size)
+        rhs -= rhs.mean() if p != 3 else 0.0
+        if p == 3:  # zero sum within each half: in the range of A
+            rhs[:2] -= rhs[:2].mean()
+            rhs[2:] -= rhs[2:].mean()
+        expected = np.linalg.pinv(a, hermitian=True) @ rhs
+        got = inverses[p][:size, :size] @ rhs
+        # the same solution up to a constant over the part (which the large term absorbs)
+        assert np.allclose(a @ got, rhs, atol=1e-10)
+        assert np.allclose(got - got.mean(), expected - expected.mean(), atol=1e-10)
+    assert np.allclose(inverses[3][:4, :4], np.linalg.pinv(systems[3], hermitian=True), atol=1e-10)
+
+
+def test_a_reweighted_absorber_jumps_at_once_when_it_inherits_the_layout(wage_panel: pd.DataFrame) -> None:
+    """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel
+    less some worker-years: 37 separate systems). A fresh absorber sweeps ten times before the direct
+    solution; one reweighted from it (a Poisson step) inherits the layout and jumps after its first
+    sweep (warm), with the same exact solution; reweighted from an absorber that never built the layout,
+    it sweeps ten times as a fresh one does."""
+    df = _unbalanced(wage_panel).assign(group_year=lambda d: d["nr"] % 37 * 10000 + d["year"])
+    terms = parse_absorb(["nr", "group_year"])
+    x = df[["lwage", "union", "hours"]].to_numpy(dtype=float)
+    w = 1.0 + (df["nr"] % 5).to_numpy(dtype=float) / 4
+    fresh = Absorber(df, terms, tolerance=1e-12)
+    never = fresh.reweighted(w)
+    assert fresh.demean(x).iterations.max() == DIRECT_AFTER + 1
+    inherited = fresh.reweighted(w)
+    warm, cold = inherited.demean(x, warm=True), never.demean(x, warm=True)
+    assert warm.iterations.max() == 2 and cold.iterations.max() == DIRECT_AFTER + 1
+    d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("nr", "group_year")])
+    sw = np.sqrt(w)[:, None]
+    exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
+    for got in (warm, cold):
+        assert np.all(got.converged)
+        assert np.max(np.abs(got.values - exact)) <= 1e-11 * np.max(np.abs(x))
+
+
 # ---- shortcuts of the engine's fast paths give the plain computation's numbers ------------------
 
 def test_codes_by_counting_equal_pandas_sorted_factorize() -> None:

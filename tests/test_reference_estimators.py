@@ -305,6 +305,35 @@ def test_poisson_pml_on_hours_worked_matches_statsmodels_glm(wages) -> None:
     assert r.std_error == pytest.approx(ref.bse["union"], rel=1e-6)
 
 
+
+def test_poisson_pml_with_worker_and_group_by_year_effects_matches_statsmodels_glm(wages) -> None:
+    """Source: statsmodels GLM(family=Poisson()) with worker and group-by-year dummy columns: annual hours
+    worked on union membership, wage_panel's first 150 workers less some worker-years, the workers in 7
+    invented groups (worker number modulo 7). The two effects form 7 separate systems (one per group),
+    solved directly after alternating projections; each later step reuses the systems' layout and
+    jumps to the direct solution after its first sweep."""
+    d = wages[~((wages["year"] == 1983 + wages["nr"] % 3) & (wages["nr"] % 5 == 0))]
+    d = d.assign(group_year=(d["nr"] % 7) * 10000 + d["year"])
+    r = fit_one(d, "hours", "union", controls=["expersq"], absorb=parse_absorb(["nr", "group_year"]),
+                inference=Inference("clustered", (("nr",),)), estimator=Estimator("poisson_pml"), unit="nr",
+                time="year")
+    assert r.status == "ok", r.message
+    kept = d[d.groupby("nr")["union"].transform("size") > 1]
+    assert r.n_obs == len(kept)
+    # full rank: a constant, the workers but the first, each group's years but its first
+    group_years = pd.get_dummies(kept["group_year"]).astype(float)
+    firsts = kept.groupby(kept["nr"] % 7)["group_year"].min()
+    x = pd.concat([kept[["union", "expersq"]], _dummies(kept, ["nr"]),
+                   group_years.drop(columns=list(firsts))], axis=1)
+    assert np.linalg.matrix_rank(x.to_numpy(dtype=float)) == x.shape[1]
+    ref = sm.GLM(kept["hours"], x, family=sm.families.Poisson()).fit(
+        tol=1e-13, cov_type="cluster", cov_kwds={"groups": pd.factorize(kept["nr"])[0]})
+    assert r.estimate == pytest.approx(ref.params["union"], rel=1e-7)
+    # statsmodels counts every column in K; fegrid leaves out the worker effects, nested in the clusters
+    n, k_all, g = len(kept), x.shape[1], kept["nr"].nunique()
+    assert r.std_error == pytest.approx(ref.bse["union"] * math.sqrt((n - k_all) / (n - (k_all - g))), rel=1e-6)
+
+
 def test_the_wild_bootstrap_is_left_to_least_squares_and_says_so(wages) -> None:
     """A clustering choice with a wild cluster bootstrap gives 2SLS and Poisson PML their clustered
     inference and a message, never a least-squares bootstrap p-value under their name."""

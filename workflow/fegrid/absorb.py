@@ -17,7 +17,8 @@ smaller is a categorical effect with few levels in each connected part of the tw
 effects, the commonest case, or unit and region-by-period effects), the iterations jump to the
 direct solution: the large term's residuals, less their projection on the small term's dummies made
 orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; one more sweep
-confirms the tolerance. One dense system jumps at once, many parts after ten sweeps.
+confirms the tolerance. One dense system jumps at once, many parts after ten sweeps (at once when
+their layout is at hand: the later steps of an iteratively reweighted fit).
 """
 
 from __future__ import annotations
@@ -379,8 +380,11 @@ DENSE_CELLS = 4_000_000
 #: Sweeps of alternating projections before a column still moving jumps to the direct solution: none
 #: when the two terms form one system held densely (a column fresh from the data is never demeaned by
 #: one sweep, and the direct solution costs about as much as one; a warm start, see
-#: :meth:`Absorber.demean`, sweeps once first), ten when it splits into many parts (building those costs
-#: about as much as ten sweeps; unbalanced panels and unit trends can take hundreds).
+#: :meth:`Absorber.demean`, sweeps once first), ten when it splits into many parts (building their
+#: layout costs about as much as ten sweeps; unbalanced panels and unit trends can take hundreds), none
+#: for many parts whose layout is at hand (an absorber :meth:`~Absorber.reweighted` from one that built it:
+#: the systems' new entries and inverses cost a few sweeps, and columns that needed the jump under the
+#: last weights rarely converge in ten under the next).
 DIRECT_AFTER_DENSE = 0
 DIRECT_AFTER = 10
 
@@ -407,6 +411,47 @@ def _pinv_many(grams: Sequence[np.ndarray]) -> list[np.ndarray]:
             keep = val > 1e-12 * max(float(val.max()), 1e-300)
             out[k] = (vec[:, keep] / val[keep]) @ vec[:, keep].T
     return out
+
+
+def _part_inverses(stack: np.ndarray, real: np.ndarray) -> np.ndarray:
+    """Inverses of the systems of connected parts of :class:`_TwoTerms` (parts, k, k), for right-hand sides
+    summing to zero; ``real`` (parts, k) marks each part's own levels, the rest padding (rows and columns of
+    zeros, whose inverse entries are zero). Each system ``A`` is symmetric positive semi-definite with
+    ``A 1 = 0`` (its levels' dummies sum to the part's rows, which the large term absorbs), so
+    ``(A + a 11' / k)^-1``, ``a`` its mean diagonal, solves it exactly on such right-hand sides (the
+    pseudo-inverse's solution): one batched Cholesky factorization and inverse instead of
+    eigendecompositions, several times cheaper. A part whose shifted system is not clearly positive
+    definite (a pivot below 1e-12 of the largest: a nearly disconnected part) takes the pseudo-inverse
+    (:func:`_pinv_many`). A component along ``1`` of a right-hand side moves the small term's effects by a
+    constant over the part, which the large term's residuals do not see."""
+    stack = (stack + stack.transpose(0, 2, 1)) / 2
+    sizes = real.sum(axis=1)
+    mean = np.trace(stack, axis1=1, axis2=2) / np.maximum(sizes, 1)
+    ones = real.astype(float)
+    shifted = stack + (mean / np.maximum(sizes, 1))[:, None, None] * (ones[:, :, None] * ones[:, None, :])
+    pad = ~real
+    shifted[pad[:, :, None] & np.eye(real.shape[1], dtype=bool)] = np.broadcast_to(mean[:, None], real.shape)[pad]
+    ok = _positive_definite(shifted)
+    if ok is None:  # some system is not: each is factorized alone
+        ok = np.array([bool(_positive_definite(shifted[i: i + 1])) for i in range(len(stack))])
+    out = np.zeros_like(stack)
+    if ok.any():
+        out[ok] = np.linalg.inv(shifted[ok])
+        out[ok & pad.any(axis=1)] *= (ones[:, :, None] * ones[:, None, :])[ok & pad.any(axis=1)]
+    for i in np.flatnonzero(~ok):
+        own = np.flatnonzero(real[i])
+        out[i][np.ix_(own, own)] = _pinv_many([stack[i][np.ix_(own, own)]])[0]
+    return out
+
+
+def _positive_definite(stack: np.ndarray) -> np.ndarray | None:
+    """Per matrix of ``stack``, whether its Cholesky factorization has no pivot below 1e-12 of its largest
+    (``None`` when some matrix does not factorize)."""
+    try:
+        pivots = np.diagonal(np.linalg.cholesky(stack), axis1=1, axis2=2) ** 2
+    except np.linalg.LinAlgError:
+        return None
+    return pivots.min(axis=1) > 1e-12 * pivots.max(axis=1)
 
 
 #: Most pairs of cells (a large-term group's small-term levels, two at a time) that :class:`_TwoTermsLayout`
@@ -440,7 +485,16 @@ class _TwoTermsLayout:
                                                            self.sizes)
         self.offsets = np.concatenate([[0], np.cumsum(self.sizes * self.sizes)[:-1]])
         self.n_entries = int((self.sizes * self.sizes).sum())
-        self.members_of = np.split(order, np.cumsum(self.sizes)[:-1])
+        # the parts padded to the largest: each part's levels (parts, k), ``n_small`` past its own, and its
+        # system's entries in the blocks laid end to end (parts, k, k), ``n_entries`` (a zero) past its own
+        k = int(self.sizes.max(initial=0))
+        position = np.arange(k)
+        self.real = position[None, :] < self.sizes[:, None]
+        self.members = np.full((n_parts, k), n_small, dtype=np.int64)
+        self.members[self.real] = order
+        inside = self.real[:, :, None] & self.real[:, None, :]
+        self.cells = np.where(inside, self.offsets[:, None, None] + position[:, None] * self.sizes[:, None, None]
+                              + position[None, None, :], self.n_entries)
         # every pair (a, b) of cells of one group, by group: counting their products into the blocks sums
         # each entry over the groups in order, as the sparse product does (the same bytes)
         per_group = np.bincount(self.group, minlength=n_groups)
@@ -503,7 +557,7 @@ class _TwoTerms:
                 timed = np.bincount(cells, w * large.slope, minlength=n_groups * n_small).reshape(n_groups, n_small)
                 self.slopes = timed * large.inv_ss[:, None]
                 gram -= self.slopes.T @ timed
-            self.parts = [(np.arange(n_small), _pinv(gram))]
+            self.parts = [(np.arange(n_small)[None, :], _part_inverses(gram[None], np.ones((1, n_small), bool)))]
             return
         # the values of the (groups x small levels) tables on their cells
         counts = np.bincount(layout.cell_of_row, w, minlength=layout.n_cells)
@@ -514,10 +568,8 @@ class _TwoTerms:
             timed = np.bincount(layout.cell_of_row, w * large.slope, minlength=layout.n_cells)
             self.slopes = timed * large.inv_ss[layout.group]
             blocks -= layout.products(self.slopes, timed)
-        sizes, offsets = layout.sizes, layout.offsets
-        inverses = _pinv_many([blocks[offsets[k]: offsets[k] + sizes[k] ** 2].reshape(sizes[k], sizes[k])
-                               for k in range(len(sizes))])
-        self.parts = list(zip(layout.members_of, inverses))
+        # the parts together, padded (see _TwoTermsLayout): their levels and their systems' inverses
+        self.parts = [(layout.members, _part_inverses(np.append(blocks, 0.0)[layout.cells], layout.real))]
 
     def _spread(self, table: np.ndarray, g: np.ndarray) -> np.ndarray:
         """``table @ g`` on each row's group of the large term (``table`` dense, or its cells' values)."""
@@ -533,9 +585,11 @@ class _TwoTerms:
         for j in range(x.shape[1]):
             col = xt[:, j]
             rhs = np.bincount(self.small, col if self.large.unweighted else col * self.w, minlength=self.n_small)
-            g = np.zeros(self.n_small)
-            for members, inverse in self.parts:
-                g[members] = inverse @ rhs[members]
+            g = np.zeros(self.n_small + 1)  # (a slot past the levels for the parts' padding)
+            rhs = np.append(rhs, 0.0)
+            for members, inverses in self.parts:
+                g[members] = (inverses @ rhs[members][:, :, None])[:, :, 0]
+            g = g[:-1]
             col -= g.take(self.small)
             col += self._spread(self.shares, g)
             if self.slopes is not None:
@@ -675,6 +729,7 @@ class Absorber:
         self._slopes = slopes
         self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
+        self._layout_inherited = False  # whether the direct solver's layout came from a reweighted absorber
 
     def _project(self) -> list[_Projection]:
         if not self.terms:
@@ -687,6 +742,7 @@ class Absorber:
         depend on the weights, are reused; everything else is computed as a new absorber would."""
         new = copy.copy(self)
         new.w = np.asarray(weights, dtype=float)
+        new._layout_inherited = "_direct_layout" in self.__dict__  # its columns jump at once (DIRECT_AFTER)
         for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
             new.__dict__.pop(weighted, None)
         new._ranks = {}  # a trend's slopes count the groups where time varies with weight
@@ -851,8 +907,9 @@ class Absorber:
         One projection is exact in one sweep. Several are iterated: ``x <- x - t (x - T x)`` with
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction. Columns
-        not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps jump to the
-        direct solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
+        not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps (none when the
+        absorber was :meth:`reweighted` from one that built the direct solver) jump to the direct solution of two terms
+        (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
         fit starts from the previous step's): at least one sweep comes before the jump, since it may
         already confirm them. ``overwrite`` lets the result take the place of ``x`` when it is a float
@@ -883,8 +940,9 @@ class Absorber:
             return DemeanOutcome(x, iterations, converged, norms)
 
         jump = 0
-        if self._direct_setup is not None:
-            jump = max(self._direct_setup[2], 1 if warm else 0) + 1
+        if self._direct_setup is not None:  # (decided before any column: each column's bytes are its own)
+            after = DIRECT_AFTER_DENSE if self._layout_inherited else self._direct_setup[2]
+            jump = max(after, 1 if warm else 0) + 1
         converged[:] = False
         # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
         for j in range(k):

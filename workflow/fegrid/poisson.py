@@ -153,9 +153,12 @@ def _deviance(y: np.ndarray, mu: np.ndarray, w: np.ndarray) -> float:
 
 def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequence[Term], *,
          weights: np.ndarray | None, time: str | None, tolerance: float, max_iterations: int, codes_of: CodesOf,
-         max_steps: int = 200, time_values: np.ndarray | None = None, start: np.ndarray | None = None) -> PoissonFit:
+         max_steps: int = 200, time_values: np.ndarray | None = None, start: np.ndarray | None = None,
+         absorber: Absorber | None = None) -> PoissonFit:
     """Poisson PML of ``y`` on ``x`` (n, k) with the absorbed ``terms`` (see the module docstring); ``frame``
-    and ``time_values`` as for :class:`fegrid.absorb.Absorber`.
+    and ``time_values`` as for :class:`fegrid.absorb.Absorber`. ``absorber``, when given, is one already
+    built on the same rows and terms (any weights): its steps are its reweightings, which keep what it
+    computed once (the codes, the direct solver's layout).
 
     Converged when the deviance changes by less than ``1e-10`` relatively (Correia, Guimarães &
     Zylkin 2020 use ``1e-8``); the demeaning of each step is held to ``tolerance``. The iterations start
@@ -177,8 +180,9 @@ def irls(frame: pd.DataFrame | int, y: np.ndarray, x: np.ndarray, terms: Sequenc
     steps = 0
     xt = x
     omega = w_user * mu
-    absorber = Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
-                        max_iterations=max_iterations, codes_of=codes_of, time_values=time_values)
+    absorber = (absorber.reweighted(omega) if absorber is not None else
+                Absorber(frame, terms, weights=omega, time=time, tolerance=tolerance,
+                         max_iterations=max_iterations, codes_of=codes_of, time_values=time_values))
     while steps < max_steps:
         steps += 1
         z = eta + (y - mu) / mu

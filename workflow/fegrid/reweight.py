@@ -1458,8 +1458,9 @@ class _Design:
                                                          codes_of=on_keep):
             return None
         # regressors that the dropped rows leave constant within the effects are dropped (norms over the copies)
-        check = Absorber(len(keep), s.absorb, weights=c * w_user, time=time, time_values=time_values,
-                         tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep).demean(x).values
+        on_copies = Absorber(len(keep), s.absorb, weights=c * w_user, time=time, time_values=time_values,
+                             tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep)
+        check = on_copies.demean(x).values
         spread = x - (c @ x) / c.sum()
         ratio = np.sqrt(c @ (check * check)) / np.maximum(np.sqrt(c @ (spread * spread)), 1e-300)
         if np.any((ratio > self.ident_tol / MARGIN) & (ratio < self.ident_tol * MARGIN)):
@@ -1472,7 +1473,8 @@ class _Design:
             start = _effects_updated(start[keep], y, c * w_user, [on_keep(t.groups) for t in s.absorb
                                                                   if not t.has_slope], START_ROUNDS)
         fit = irls(len(keep), y, x[:, ~flat], s.absorb, weights=c * w_user, time=time, time_values=time_values,
-                   tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep, start=start)
+                   tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep, start=start,
+                   absorber=on_copies)
         if not fit.converged:
             return None
         xs = fit.demeaned * np.sqrt(w_user * fit.mu)[:, None]

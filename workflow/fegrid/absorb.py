@@ -950,9 +950,10 @@ class Absorber:
             scale = norms[j] or 1.0
             for it in range(1, self.max_iterations + 1):
                 if it == jump and self._direct is not None:
-                    # slow to converge: jump to the direct solution (a projection of the column,
-                    # wherever the iterations left it), which the next sweep confirms
-                    cur = self._direct.apply(cur[:, None])[:, 0]
+                    # slow to converge: jump to the direct solution, which the next sweep confirms. It
+                    # projects the column as it came (still in x): the same solution as from where the
+                    # iterations left it, without the rounding their extrapolated steps accumulate
+                    cur = self._direct.apply(x[:, j: j + 1])[:, 0]
                 tx = self._sweep(cur[:, None])[:, 0]
                 d = cur - tx
                 dd = wdot(d, d)

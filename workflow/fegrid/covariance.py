@@ -147,12 +147,6 @@ def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int
                             for j in range(values.shape[1])]), n_groups
 
 
-def _dof(n: int, k_total: int) -> int:
-    if n - k_total <= 0:
-        raise EstimationError("no residual degrees of freedom are left")
-    return n - k_total
-
-
 #: The scores' cluster sums (and the number of clusters) by a cluster variable's codes.
 SumsOf = Callable[[np.ndarray], tuple[np.ndarray, int]]
 #: A number, or an array of them (one per draw)
@@ -211,7 +205,7 @@ class _Kind:
     def t_df(self, n: int, k_total: int, clusters: Sequence[np.ndarray]) -> float:
         """:meth:`inference_df` from the cluster variables' codes."""
         if not self.dimensions:
-            return float(_dof(n, k_total))
+            return float(self.checked_df(n, k_total, 0, 0))
         return float(self.inference_df(0, [n_clusters(c) for c in clusters[: self.dimensions]]))
 
     def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
@@ -241,6 +235,12 @@ class _Kind:
         if psd and isinstance(self, TwoWay):
             v = clip_negative(v)[0]
         return v
+
+    @staticmethod
+    def _sums(scores: np.ndarray, codes: np.ndarray, sums_of: SumsOf | None) -> tuple[np.ndarray, int]:
+        """The scores' cluster sums by ``codes`` and their number of clusters: kept ones (``sums_of``), or
+        summed here."""
+        return sums_of(codes) if sums_of is not None else cluster_sums(scores, codes)
 
     def checked_df(self, n: int, n_params: int, absorbed_df: int, nested_df: int) -> int:
         """:meth:`residual_df`, which must be positive."""
@@ -297,7 +297,7 @@ class OneWay(_Kind):
     def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
         n = scores.shape[0]
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(clusters[0])
+        u, g = self._sums(scores, clusters[0], sums_of)
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
         return self.scaled(u.T @ u, n, dof, g)
@@ -320,10 +320,8 @@ class TwoWay(_Kind):
     def with_matrix(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         """The focal variance is the clipped matrix's first element: one meat for both."""
         counts = [n_clusters(c) for c in clusters]
-        meat = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
-                         clusters=clusters, sums_of=fit.score_sums)
-        v = fit.bread @ meat @ fit.bread
-        v, adjusted = clip_negative((v + v.T) / 2)
+        v, adjusted = clip_negative(self.matrix(fit, n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
+                                                clusters=clusters, psd=False))
         return CovarianceOutcome(float(v[0, 0]), int(self.inference_df(0, counts)), (counts[0], counts[1]),
                                  bool(adjusted)), v
 
@@ -332,7 +330,7 @@ class TwoWay(_Kind):
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
         meat = np.zeros((scores.shape[1], scores.shape[1]))
         for codes, sign in zip(clusters, TWO_WAY_SIGNS):
-            u, g = (sums_of or (lambda c: cluster_sums(scores, c)))(codes)
+            u, g = self._sums(scores, codes, sums_of)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
             meat += sign * self.scaled(u.T @ u, n, dof, g)

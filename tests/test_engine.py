@@ -541,11 +541,13 @@ def test_cluster_sums_of_sorted_codes_equal_the_unsorted_path(wage_panel: pd.Dat
 def test_cluster_sums_over_runs_equal_plain_group_sums(wage_panel: pd.DataFrame) -> None:
     """Source: numpy's bincount per column (the plain computation). Clusters holding whole workers
     (worker number modulo 37), rows sorted by worker: the sums run over each worker's rows first,
-    then over the groups; clusters by year (no runs) take the plain path. Each codes array's layout is
-    kept while the array lives and dropped with it."""
-    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
-    values = np.random.default_rng(5).normal(size=(len(rows), 4))
-    for column in ("group", "year"):
+    then over the groups. Clusters by year in the balanced panel sorted by worker and year cycle through
+    the years: the cycles are added in row order, the same bytes as bincount's (C and Fortran order, one
+    column); less one row, they take the plain path. Each codes array's layout is kept while the array
+    lives and dropped with it."""
+    sorted_rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    for column, rows in [("group", sorted_rows), ("year", sorted_rows), ("year", sorted_rows.iloc[1:])]:
+        values = np.random.default_rng(5).normal(size=(len(rows), 4))
         key = rows["nr"] % 37 if column == "group" else rows["year"]
         codes = pd.factorize(key, sort=True)[0]
         g = int(codes.max()) + 1
@@ -554,7 +556,13 @@ def test_cluster_sums_over_runs_equal_plain_group_sums(wage_panel: pd.DataFrame)
         assert got_g == g and np.allclose(sums, plain, rtol=1e-12, atol=1e-12), column
         one, _ = cluster_sums(values[:, 0], codes)
         assert np.allclose(one, plain[:, 0], rtol=1e-12, atol=1e-12), column
-        assert (covariance._layout(codes).run_starts is not None) == (column == "group")
+        layout = covariance._layout(codes)
+        assert (layout.run_starts is not None) == (column == "group")
+        assert layout.cycling == (column == "year" and len(rows) == len(sorted_rows))
+        if layout.cycling:
+            assert cluster_sums(np.asfortranarray(values), codes)[0].tobytes() == plain.tobytes()
+            assert cluster_sums(np.ascontiguousarray(values), codes)[0].tobytes() == plain.tobytes()
+            assert one.tobytes() == plain[:, 0].tobytes()
         key_id = id(codes)
         assert key_id in covariance._LAYOUTS
         del codes

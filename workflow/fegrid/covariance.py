@@ -90,6 +90,7 @@ class _Layout(NamedTuple):
     starts: np.ndarray | None  # where each cluster's run begins, when the codes are sorted and all present
     run_starts: np.ndarray | None  # where each run of equal codes begins, when runs are long (unsorted codes)
     run_codes: np.ndarray | None  # each run's code
+    cycling: bool = False  # the codes run 0, 1, ..., G-1 over and over (periods of a balanced panel sorted by unit)
 
 
 #: Cluster codes' layouts, by the id of the codes array (dropped when the array is freed): a design's
@@ -117,7 +118,10 @@ def _layout(codes: np.ndarray) -> _Layout:
         elif len(breaks) + 1 <= RUNS_SHARE * n:
             run_starts = np.concatenate([[0], breaks])
             run_codes = codes[run_starts]
-    layout = _Layout(n_groups, starts, run_starts, run_codes)
+    cycling = bool(1 < n_groups < n and n % n_groups == 0 and starts is None and run_starts is None
+                   and np.array_equal(codes.reshape(-1, n_groups), np.broadcast_to(np.arange(n_groups),
+                                                                                 (n // n_groups, n_groups))))
+    layout = _Layout(n_groups, starts, run_starts, run_codes, cycling)
     try:
         ref = weakref.ref(codes, lambda _, key=key: _LAYOUTS.pop(key, None))
     except TypeError:  # not weakly referable: computed each time
@@ -139,6 +143,12 @@ def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int
         return values, n_groups
     if layout.starts is not None:  # sorted (a panel sorted by unit): one sum per run
         return np.add.reduceat(values, layout.starts, axis=0), n_groups
+    if layout.cycling:  # one row per cluster in each cycle: the cycles added in row order, as bincount does
+        if values.ndim == 1:
+            return values.reshape(-1, n_groups).sum(axis=0), n_groups
+        if values.flags.f_contiguous:  # (each column's cycles as the rows of a view, without a copy)
+            return values.T.reshape(values.shape[1], -1, n_groups).sum(axis=1).T, n_groups
+        return values.reshape(-1, n_groups, values.shape[1]).sum(axis=0), n_groups
     if layout.run_starts is not None:  # long runs of one cluster: their sums first
         values, codes = np.add.reduceat(values, layout.run_starts, axis=0), layout.run_codes
     if values.ndim == 1:

@@ -202,13 +202,22 @@ def test_poisson_draws_as_reweightings_equal_stacked_refits(tmp_path: Path, wage
     assert (ledger["n_separated"] > 0).any() and (ledger["n_singletons"] > 0).any()
 
 
-def test_effects_df_from_the_copies_equal_the_stacked_absorbers(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+def test_effects_df_from_the_copies_equal_the_stacked_absorbers(tmp_path: Path, wage_panel: pd.DataFrame,
+                                                                 monkeypatch) -> None:
     """The absorbed df and nested df that a draw counts from the design's rows and the copies equal those of
     the engine's :class:`fegrid.absorb.Absorber` built on the draw's stacked rows (linearmodels' wage_panel;
     resampling workers or groups of workers; unit, shared and relabelled trends, three terms, terms finer
-    than the groups, cluster variables relabelled or shared, weights and singletons)."""
+    than the groups, cluster variables relabelled or shared, weights and singletons). The draws counted
+    together (``count_many``) give the same numbers, most of them without a draw's own count."""
     from fegrid.absorb import Absorber
     from fegrid.reweight import _CopiesDf
+
+    alone = [0]
+    one_draw = _CopiesDf.count
+
+    def counted(self, draw, by_sets):
+        alone[0] += 1
+        return one_draw(self, draw, by_sets)
 
     frame = wage_panel.assign(group=wage_panel["nr"] % 97, region=wage_panel["nr"] % 7)
     raw = wage_grid(tmp_path, frame, weights={"unweighted": None, "by_hours": "hours"})
@@ -231,8 +240,11 @@ def test_effects_df_from_the_copies_equal_the_stacked_absorbers(tmp_path: Path, 
         assert not rest
         for design in (d for b in blocks for d in b.designs):
             by_sets = sorted({s.inference.by for s in design.specs})
+            draws, wanted = [], []
             for d in range(4):
                 draw = draw_levels(codes, len(levels), np.random.default_rng([3, d]))
+                if not draw.counts[design.levels].any():
+                    continue
                 b = design.base_index[draw.rows]
                 rows, position = b[b >= 0], draw.position[b >= 0]
                 stacked = {g: dim.stacked(rows, position, draw.picks) for g, dim in design.dims.items()}
@@ -242,8 +254,17 @@ def test_effects_df_from_the_copies_equal_the_stacked_absorbers(tmp_path: Path, 
                 expected = {by: absorber.nested_df([stacked[g] for g in by]) if by and design.settings.absorb else 0
                             for by in by_sets}
                 assert _CopiesDf(design).count(draw, by_sets) == (absorber.absorbed_df, expected)
+                draws.append(draw)
+                wanted.append((absorber.absorbed_df, expected))
                 checked += 1
+            counts = np.stack([draw.counts for draw in draws])
+            monkeypatch.setattr(_CopiesDf, "count", counted)
+            absorbed, nested = _CopiesDf(design).count_many(draws, counts, by_sets)
+            monkeypatch.setattr(_CopiesDf, "count", one_draw)
+            for k, (a, expected) in enumerate(wanted):
+                assert absorbed[k] == a and {by: nested[by][k] for by in by_sets} == expected
     assert checked > 300
+    assert 0 < alone[0] < checked / 2  # three terms, two shared terms, shared trends: each draw its own count
 
 
 def test_cross_products_per_level_and_row_by_row_give_the_same_draws(tmp_path: Path, wage_panel: pd.DataFrame,

@@ -289,6 +289,11 @@ class _CopiesDf:
         self._level_components: dict[tuple[int, int], np.ndarray] = {}
         self._nesting: dict[tuple[tuple[str, ...], tuple[str, ...]], tuple[bool, np.ndarray | None]] = {}
         self._hubs: dict[tuple[int, int], tuple[bool, np.ndarray]] = {}
+        self.level_ids = np.unique(self.levels)  # the resampling levels holding the design's rows
+        self._span_matrices: dict[tuple[str, ...], sp.csr_array] = {}
+        self._constant: dict[int, bool] = {}
+        self._pairs_of: dict[tuple[tuple[str, ...], tuple[str, ...]], tuple[sp.csr_array, sp.csr_array]] = {}
+        self._blocks_of: dict[tuple[int, int], np.ndarray | None] = {}
 
     def _pair(self, g: tuple[str, ...]) -> np.ndarray:
         pair = self.dims[g].pair
@@ -321,6 +326,210 @@ class _CopiesDf:
             nested_df[by] = min(state.rank(nested), absorbed) if nested else 0
         return absorbed, nested_df
 
+    def count_many(self, draws: Sequence[Draw], counts: np.ndarray, by_sets: Sequence[tuple[tuple[str, ...], ...]]
+                   ) -> tuple[np.ndarray, dict]:
+        """:meth:`count` of each draw (``counts``: the draws' copies of each level, (draws, levels)), the same
+        numbers. With at most two terms (a trend relabelled per copy among them), every decision that the
+        copies settle is taken for all the draws at once: levels, slopes, nesting, redundancy, and the two
+        terms' components (a group meeting every drawn group of the other term; or the resampling levels
+        falling into blocks, each level meeting every other of its block through a shared group and none
+        outside it, so that the components are the blocks drawn). A draw whose decision needs its drawn
+        rows takes :meth:`count`. Arrays of ``absorbed_df``, and of ``nested_df`` per set of cluster variables."""
+        d_count = len(draws)
+        absorbed = np.zeros(d_count, dtype=np.int64)
+        nested_df = {by: np.zeros(d_count, dtype=np.int64) for by in by_sets}
+        if not self.terms:
+            return absorbed + 1, nested_df
+        terms = self.terms
+        alone = np.zeros(d_count, dtype=bool)
+        if len(terms) > 2 or any(self.has_slope[i] and not self.copied[i] for i in range(len(terms))):
+            alone[:] = True
+        else:
+            drawn = counts > 0
+            copies_twice = (counts[:, self.level_ids] > 1).any(axis=1)
+            nlev = [self._levels_many(t.groups, counts, drawn) for t in terms]
+            slopes = [self._slopes_many(i, counts) if self.has_slope[i] else None for i in range(len(terms))]
+            known_nesting: dict[tuple[tuple[str, ...], tuple[str, ...]], tuple[np.ndarray, np.ndarray]] = {}
+
+            def nested(inner: tuple[str, ...], outer: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
+                if (inner, outer) not in known_nesting:
+                    known_nesting[(inner, outer)] = self._nested_many(inner, outer, counts, drawn, copies_twice)
+                return known_nesting[(inner, outer)]
+
+            active = np.ones((d_count, len(terms)), dtype=bool)
+            for i in range(len(terms)):
+                if self.has_slope[i]:  # a trend is never redundant
+                    continue
+                for j in range(len(terms)):
+                    if j == i:
+                        continue
+                    outranks = (np.ones(d_count, dtype=bool) if terms[j].has_slope
+                                else (nlev[j] > nlev[i]) | ((nlev[j] == nlev[i]) & (j < i)))
+                    inside, unknown = nested(terms[j].groups, terms[i].groups)
+                    alone |= outranks & unknown
+                    active[:, i] &= ~(outranks & inside)
+            both = len(terms) == 2
+            components = np.zeros(d_count, dtype=np.int64)
+            if both:  # (count takes the larger term first; the counts below are symmetric in the two)
+                if self.copied[0] and self.copied[1]:
+                    components = counts.astype(np.int64) @ self.level_components(0, 1)
+                else:
+                    hub = self._hub_drawn_many(0, 1, drawn)
+                    components = hub.astype(np.int64)
+                    need = active.all(axis=1) & ~hub
+                    if need.any():  # (two shared terms: counted on the drawn rows)
+                        blocks = (self._blocks(0 if self.copied[0] else 1, 1 if self.copied[0] else 0)
+                                  if self.copied[0] or self.copied[1] else None)
+                        if blocks is None:  # counted on the drawn rows
+                            alone |= need
+                        else:
+                            components = np.where(hub, 1, ((drawn @ blocks) > 0).sum(axis=1))
+            def rank(members: np.ndarray) -> np.ndarray:
+                """_count_rank of each draw's members (draws, terms)."""
+                nonlocal alone
+                total = sum(np.where(members[:, i], nlev[i], 0) for i in range(len(terms)))
+                for i, slope in enumerate(slopes):
+                    if slope is None:
+                        continue
+                    total = total + np.where(members[:, i], slope, 0)
+                    for j in range(len(terms)):  # the slopes sum to time, which an effect constant in time spans
+                        if j == i or terms[j].has_slope:
+                            continue
+                        with_it = members[:, i] & members[:, j]
+                        if self._time_constant_within(j):  # on the design's rows, so on any drawn rows
+                            total = total - with_it
+                        else:  # perhaps on some drawn rows: counted on them
+                            alone |= with_it
+                if both:
+                    total = total - np.where(members.all(axis=1), components, 0)
+                return total
+
+            absorbed = rank(active)
+            for by in by_sets:
+                if not by:
+                    continue
+                inside_all = active.copy()
+                for i in range(len(terms)):
+                    for dim in by:
+                        inside, unknown = nested(terms[i].groups, dim)
+                        alone |= active[:, i] & unknown
+                        inside_all[:, i] &= inside
+                nested_df[by] = np.where(inside_all.any(axis=1), np.minimum(rank(inside_all), absorbed), 0)
+        for k in np.flatnonzero(alone):
+            a_df, per_by = self.count(draws[k], by_sets)
+            absorbed[k] = a_df
+            for by, v in per_by.items():
+                nested_df[by][k] = v
+        return absorbed, nested_df
+
+    def _slopes_many(self, i: int, counts: np.ndarray) -> np.ndarray:
+        """The slopes a relabelled trend term counts in each draw (as :meth:`_DrawState._count_rank`)."""
+        ss = self._pair_ss[i]
+        pair_level = self.dims[self.terms[i].groups].pair_level
+        assert pair_level is not None
+        mult = counts[:, pair_level]
+        on = mult > 0
+        top = np.where(on, ss, -np.inf).max(axis=1, initial=-np.inf)
+        threshold = np.where(on.any(axis=1), 1e-12 * (1 + top), 0.0)
+        return (mult * (ss > threshold[:, None])).sum(axis=1).astype(np.int64)
+
+    def _time_constant_within(self, j: int) -> bool:
+        """Whether time is constant within each group of term ``j`` on the design's rows (so on any drawn rows)."""
+        if j not in self._constant:
+            g = self.terms[j].groups
+            self._constant[j] = _constant_within(self.time, self._pair(g) if self.copied[j] else self.dims[g].codes)
+        return self._constant[j]
+
+    def _blocks(self, relabelled: int, shared: int) -> np.ndarray | None:
+        """The resampling levels' blocks for the components of a relabelled term (one group per level) and a
+        shared one: (levels, blocks) incidence, each level of a block meeting every other of it through a
+        shared group and none outside it; ``None`` when the levels do not fall into such blocks."""
+        key = (relabelled, shared)
+        if key not in self._blocks_of:
+            out: np.ndarray | None = None
+            pair_level = self.dims[self.terms[relabelled].groups].pair_level
+            assert pair_level is not None
+            if np.bincount(pair_level, minlength=self.n_levels).max(initial=0) <= 1:
+                groups, levels = self._spans[self.terms[shared].groups]
+                meets = sp.csr_array((np.ones(len(groups)), (levels, groups)),
+                                     shape=(self.n_levels, self.dims[self.terms[shared].groups].n))
+                linked = (meets @ meets.T).astype(bool).tocsr()
+                n_blocks, block = connected_components(linked, directed=False)
+                sizes = np.bincount(block[self.level_ids], minlength=n_blocks)
+                per_level = np.diff(linked.indptr)[self.level_ids]  # the levels each meets (itself too)
+                if np.array_equal(per_level, sizes[block[self.level_ids]]):  # every block complete
+                    used, local = np.unique(block[self.level_ids], return_inverse=True)
+                    out = np.zeros((self.n_levels, len(used)))
+                    out[self.level_ids, local] = 1.0
+            self._blocks_of[key] = out
+        return self._blocks_of[key]
+
+    def _levels_many(self, g: tuple[str, ...], counts: np.ndarray, drawn: np.ndarray) -> np.ndarray:
+        """:meth:`_DrawState.levels_of` for each draw: a relabelled variable's groups counted per copy, a
+        shared one's groups holding a drawn row."""
+        dim = self.dims[g]
+        if dim.copied:
+            assert dim.pair_level is not None
+            return counts[:, dim.pair_level].sum(axis=1).astype(np.int64)
+        return (self._pair_sums(g, drawn) > 0).sum(axis=1)
+
+    def _pair_sums(self, g: tuple[str, ...], values: np.ndarray) -> np.ndarray:
+        """Per draw, a shared variable's groups' sums of ``values`` (draws, levels) over the resampling levels
+        holding their rows (draws, groups)."""
+        if g not in self._span_matrices:
+            groups, levels = self._spans[g]
+            self._span_matrices[g] = sp.csr_array((np.ones(len(groups)), (groups, levels)),
+                                                  shape=(self.dims[g].n, self.n_levels))
+        return (self._span_matrices[g] @ values.T.astype(float)).T
+
+    def _nested_many(self, inner: tuple[str, ...], outer: tuple[str, ...], counts: np.ndarray, drawn: np.ndarray,
+                     twice: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`_DrawState.nested` for each draw (and where it is left to :meth:`count`: nowhere, as the
+        drawn rows' nesting is read off the drawn levels, :meth:`_nested_on_drawn`)."""
+        d_count = len(counts)
+        settled_false = np.zeros(d_count, dtype=bool)
+        if not self.dims[inner].copied and self.dims[outer].copied:
+            settled_false = twice | (self._pair_sums(inner, counts) > 1).any(axis=1)
+        inside, witness = self.nesting(inner, outer)
+        undecided = np.zeros(d_count, dtype=bool)
+        if inside:
+            return ~settled_false, undecided
+        result = np.zeros(d_count, dtype=bool)
+        open_ = ~settled_false
+        if witness is not None:
+            open_ &= ~drawn[:, self.levels[witness]].all(axis=1)  # two drawn rows break it
+        if open_.any():
+            result[open_] = self._nested_on_drawn(inner, outer, drawn[open_])
+        return result, undecided
+
+    def _nested_on_drawn(self, inner: tuple[str, ...], outer: tuple[str, ...], drawn: np.ndarray) -> np.ndarray:
+        """Per draw (``drawn``: its levels drawn, (draws, levels)), whether every group of ``inner`` lies within
+        one group of ``outer`` on the drawn rows (pairs for relabelled variables), as ``_nested`` on them: an
+        (inner, outer) pair of groups holds a drawn row when one of the levels holding its rows is drawn."""
+        key = (inner, outer)
+        if key not in self._pairs_of:
+            ci, co = (self._pair(g) if self.dims[g].copied else self.dims[g].codes for g in (inner, outer))
+            n_outer = int(co.max()) + 1 if len(co) else 1
+            triples = np.unique((ci.astype(np.int64) * n_outer + co) * self.n_levels + self.levels)
+            pairs, pair_of = np.unique(triples // self.n_levels, return_inverse=True)
+            levels_of = sp.csr_array((np.ones(len(triples)), (pair_of.ravel(), triples % self.n_levels)),
+                                     shape=(len(pairs), self.n_levels))
+            inner_of = sp.csr_array((np.ones(len(pairs)), (pairs // n_outer, np.arange(len(pairs)))),
+                                    shape=(int(ci.max()) + 1 if len(ci) else 0, len(pairs)))
+            self._pairs_of[key] = (levels_of, inner_of)
+        levels_of, inner_of = self._pairs_of[key]
+        held = (levels_of @ drawn.T.astype(float)) > 0  # (pairs, draws)
+        return (inner_of @ held.astype(float) <= 1).all(axis=0)
+
+    def _hub_drawn_many(self, a: int, b: int, drawn: np.ndarray) -> np.ndarray:
+        """:meth:`hub_drawn` for each draw."""
+        always, rows = self._hub(a, b)
+        if always:
+            return np.ones(len(drawn), dtype=bool)
+        if not len(rows):
+            return np.zeros(len(drawn), dtype=bool)
+        return drawn[:, self.levels[rows]].any(axis=1)
+
     def nesting(self, inner: tuple[str, ...], outer: tuple[str, ...]) -> tuple[bool, np.ndarray | None]:
         """Whether ``inner`` nests in ``outer`` on the design's rows (pairs for relabelled variables) and, if
         not, two rows of one ``inner`` group in two ``outer`` groups (``None``: the rows drawn decide)."""
@@ -348,6 +557,12 @@ class _CopiesDf:
         meets every group of the shared term on the design's rows, once its level is drawn (all its rows
         come with it); or a shared group that meets every relabelled group, whatever is drawn (each drawn
         relabelled group brings its rows with the shared one)."""
+        always, rows = self._hub(a, b)
+        return always or bool(np.any(counts[self.levels[rows]] > 0))
+
+    def _hub(self, a: int, b: int) -> tuple[bool, np.ndarray]:
+        """For :meth:`hub_drawn`: whether the two terms always form one component, and rows (one per hub
+        group of a relabelled term) any of which, drawn, makes them one."""
         if (a, b) not in self._hubs:
             always, rows = False, np.zeros(0, dtype=np.int64)
             for mine, other in ((a, b), (b, a)):
@@ -368,8 +583,7 @@ class _CopiesDf:
                 elif self.copied[other]:
                     always = True
             self._hubs[(a, b)] = (always, rows)
-        always, rows = self._hubs[(a, b)]
-        return always or bool(np.any(counts[self.levels[rows]] > 0))
+        return self._hubs[(a, b)]
 
     def level_components(self, a: int, b: int) -> np.ndarray:
         """Per resampling level, the components of two relabelled terms on its rows (each copy's)."""
@@ -852,11 +1066,11 @@ class _Design:
             if absorbed is None:  # the effects' df on each draw's stacked rows, counted from the copies
                 absorbed = np.zeros(d_count)
                 nested = {by: np.zeros(d_count) for by in self.by_sets}
-                for i in np.flatnonzero(~alone):
-                    a, per_by = self.copies_df.count(draws[i], self.by_sets)
-                    absorbed[i] = a
-                    for by, v in per_by.items():
-                        nested[by][i] = v
+                live = np.flatnonzero(~alone)
+                got, per_by = self.copies_df.count_many([draws[i] for i in live], counts[live], self.by_sets)
+                absorbed[live] = got
+                for by, v in per_by.items():
+                    nested[by][live] = v
             assert absorbed is not None
             if copies_t is None:
                 copies_t = np.ascontiguousarray(copies.T)

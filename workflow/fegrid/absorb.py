@@ -729,7 +729,7 @@ class Absorber:
         self._slopes = slopes
         self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
-        self._layout_inherited = False  # whether the direct solver's layout came from a reweighted absorber
+        self._layout_inherited = False  # whether the absorber it was reweighted from built the direct solver
 
     def _project(self) -> list[_Projection]:
         if not self.terms:
@@ -742,7 +742,7 @@ class Absorber:
         depend on the weights, are reused; everything else is computed as a new absorber would."""
         new = copy.copy(self)
         new.w = np.asarray(weights, dtype=float)
-        new._layout_inherited = "_direct_layout" in self.__dict__  # its columns jump at once (DIRECT_AFTER)
+        new._layout_inherited = "_direct_layout" in self.__dict__  # its columns jump at once (see DIRECT_AFTER)
         for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
             new.__dict__.pop(weighted, None)
         new._ranks = {}  # a trend's slopes count the groups where time varies with weight
@@ -908,8 +908,8 @@ class Absorber:
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction. Columns
         not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps (none when the
-        absorber was :meth:`reweighted` from one that built the direct solver) jump to the direct solution of two terms
-        (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
+        absorber was :meth:`reweighted` from one that built the direct solver) jump to the direct
+        solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
         fit starts from the previous step's): at least one sweep comes before the jump, since it may
         already confirm them. ``overwrite`` lets the result take the place of ``x`` when it is a float

@@ -329,12 +329,13 @@ class _CopiesDf:
     def count_many(self, draws: Sequence[Draw], counts: np.ndarray, by_sets: Sequence[tuple[tuple[str, ...], ...]]
                    ) -> tuple[np.ndarray, dict]:
         """:meth:`count` of each draw (``counts``: the draws' copies of each level, (draws, levels)), the same
-        numbers. With at most two terms (a trend relabelled per copy among them), every decision that the
-        copies settle is taken for all the draws at once: levels, slopes, nesting, redundancy, and the two
-        terms' components (a group meeting every drawn group of the other term; or the resampling levels
-        falling into blocks, each level meeting every other of its block through a shared group and none
-        outside it, so that the components are the blocks drawn). A draw whose decision needs its drawn
-        rows takes :meth:`count`. Arrays of ``absorbed_df``, and of ``nested_df`` per set of cluster variables."""
+        numbers. With at most two terms (a trend relabelled per copy among them), every decision is taken
+        for all the draws at once from the levels they draw: levels, slopes, nesting, redundancy, and the
+        two terms' components (a group meeting every drawn group of the other term; or the resampling
+        levels falling into blocks, each level meeting every other of its block through a shared group and
+        none outside it, so that the components are the blocks drawn). A draw whose components (or
+        trend) need its drawn rows takes :meth:`count`. Arrays of ``absorbed_df``, and of ``nested_df`` per
+        set of cluster variables."""
         d_count = len(draws)
         absorbed = np.zeros(d_count, dtype=np.int64)
         nested_df = {by: np.zeros(d_count, dtype=np.int64) for by in by_sets}
@@ -349,9 +350,9 @@ class _CopiesDf:
             copies_twice = (counts[:, self.level_ids] > 1).any(axis=1)
             nlev = [self._levels_many(t.groups, counts, drawn) for t in terms]
             slopes = [self._slopes_many(i, counts) if self.has_slope[i] else None for i in range(len(terms))]
-            known_nesting: dict[tuple[tuple[str, ...], tuple[str, ...]], tuple[np.ndarray, np.ndarray]] = {}
+            known_nesting: dict[tuple[tuple[str, ...], tuple[str, ...]], np.ndarray] = {}
 
-            def nested(inner: tuple[str, ...], outer: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
+            def nested(inner: tuple[str, ...], outer: tuple[str, ...]) -> np.ndarray:
                 if (inner, outer) not in known_nesting:
                     known_nesting[(inner, outer)] = self._nested_many(inner, outer, counts, drawn, copies_twice)
                 return known_nesting[(inner, outer)]
@@ -365,9 +366,7 @@ class _CopiesDf:
                         continue
                     outranks = (np.ones(d_count, dtype=bool) if terms[j].has_slope
                                 else (nlev[j] > nlev[i]) | ((nlev[j] == nlev[i]) & (j < i)))
-                    inside, unknown = nested(terms[j].groups, terms[i].groups)
-                    alone |= outranks & unknown
-                    active[:, i] &= ~(outranks & inside)
+                    active[:, i] &= ~(outranks & nested(terms[j].groups, terms[i].groups))
             both = len(terms) == 2
             components = np.zeros(d_count, dtype=np.int64)
             if both:  # (count takes the larger term first; the counts below are symmetric in the two)
@@ -384,6 +383,7 @@ class _CopiesDf:
                             alone |= need
                         else:
                             components = np.where(hub, 1, ((drawn @ blocks) > 0).sum(axis=1))
+
             def rank(members: np.ndarray) -> np.ndarray:
                 """_count_rank of each draw's members (draws, terms)."""
                 nonlocal alone
@@ -411,9 +411,7 @@ class _CopiesDf:
                 inside_all = active.copy()
                 for i in range(len(terms)):
                     for dim in by:
-                        inside, unknown = nested(terms[i].groups, dim)
-                        alone |= active[:, i] & unknown
-                        inside_all[:, i] &= inside
+                        inside_all[:, i] &= nested(terms[i].groups, dim)
                 nested_df[by] = np.where(inside_all.any(axis=1), np.minimum(rank(inside_all), absorbed), 0)
         for k in np.flatnonzero(alone):
             a_df, per_by = self.count(draws[k], by_sets)
@@ -483,24 +481,23 @@ class _CopiesDf:
         return (self._span_matrices[g] @ values.T.astype(float)).T
 
     def _nested_many(self, inner: tuple[str, ...], outer: tuple[str, ...], counts: np.ndarray, drawn: np.ndarray,
-                     twice: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """:meth:`_DrawState.nested` for each draw (and where it is left to :meth:`count`: nowhere, as the
-        drawn rows' nesting is read off the drawn levels, :meth:`_nested_on_drawn`)."""
+                     twice: np.ndarray) -> np.ndarray:
+        """:meth:`_DrawState.nested` for each draw: the same order of decisions, and the drawn rows' nesting
+        read off the drawn levels (:meth:`_nested_on_drawn`)."""
         d_count = len(counts)
         settled_false = np.zeros(d_count, dtype=bool)
         if not self.dims[inner].copied and self.dims[outer].copied:
             settled_false = twice | (self._pair_sums(inner, counts) > 1).any(axis=1)
         inside, witness = self.nesting(inner, outer)
-        undecided = np.zeros(d_count, dtype=bool)
         if inside:
-            return ~settled_false, undecided
+            return ~settled_false
         result = np.zeros(d_count, dtype=bool)
         open_ = ~settled_false
         if witness is not None:
             open_ &= ~drawn[:, self.levels[witness]].all(axis=1)  # two drawn rows break it
         if open_.any():
             result[open_] = self._nested_on_drawn(inner, outer, drawn[open_])
-        return result, undecided
+        return result
 
     def _nested_on_drawn(self, inner: tuple[str, ...], outer: tuple[str, ...], drawn: np.ndarray) -> np.ndarray:
         """Per draw (``drawn``: its levels drawn, (draws, levels)), whether every group of ``inner`` lies within

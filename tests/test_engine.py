@@ -490,6 +490,37 @@ def test_a_disconnected_two_way_panel_is_projected_exactly(weighted: bool, monke
     assert np.max(np.abs(out.values - exact)) <= 1e-12 * np.max(np.abs(x))
 
 
+
+def test_parts_of_one_level_take_the_zero_inverse_without_pseudo_inverses(wage_panel: pd.DataFrame,
+                                                                         monkeypatch) -> None:
+    """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel,
+    the workers in 37 groups by number; the even groups keep their rows of 1980 to 1982 only, and groups
+    divisible by four their 1980 rows only: parts of one level among parts of three and eight). A part of
+    one level has a system of zeros: its inverse is zero, and no part needs a pseudo-inverse (a part
+    that failed the batched factorization once sent every part to its own factorization and
+    pseudo-inverse, slower than one eigendecomposition per size); the direct solution equals the
+    dummies' residuals."""
+    from fegrid import absorb
+
+    df = wage_panel.assign(group=wage_panel["nr"] % 37)
+    df = df[(df["group"] % 2 == 1) | (df["year"] <= 1982 - 2 * (df["group"] % 4 == 0))]
+    df = df.assign(group_year=df["group"] * 10000 + df["year"]).reset_index(drop=True)
+    calls: list[int] = []
+    plain = absorb._pinv_many
+    monkeypatch.setattr(absorb, "_pinv_many", lambda grams: (calls.append(len(grams)), plain(grams))[1])
+    absorber = Absorber(df, parse_absorb(["nr", "group_year"]), weights=df["hours"].to_numpy(dtype=float) / 2000,
+                        tolerance=1e-12)
+    assert sorted(set(absorber._direct_layout.sizes)) == [1, 3, 8]
+    x = df[["lwage", "union", "expersq"]].to_numpy(dtype=float)
+    direct = absorber._direct.apply(np.asfortranarray(x))
+    assert calls == [0]  # (an empty batch: no part needed the pseudo-inverse)
+    d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("nr", "group_year")])
+    sw = np.sqrt(df["hours"].to_numpy(dtype=float) / 2000)[:, None]
+    exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
+    assert np.max(np.abs(direct - exact)) <= 1e-11 * np.max(np.abs(x))
+    assert np.max(np.abs(absorber.demean(x).values - exact)) <= 1e-9 * np.max(np.abs(x))
+
+
 def test_a_reweighted_absorber_jumps_at_once_when_it_inherits_the_layout(wage_panel: pd.DataFrame) -> None:
     """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel
     less some worker-years: 37 separate systems). A fresh absorber sweeps ten times before the direct

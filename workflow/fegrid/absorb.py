@@ -422,8 +422,10 @@ def _part_inverses(stack: np.ndarray, real: np.ndarray) -> np.ndarray:
     pseudo-inverse's solution): one batched Cholesky factorization and inverse instead of
     eigendecompositions, several times cheaper. A part whose shifted system is not clearly positive
     definite (a pivot below 1e-12 of the largest: a nearly disconnected part) takes the pseudo-inverse
-    (:func:`_pinv_many`). A component along ``1`` of a right-hand side moves the small term's effects by a
-    constant over the part, which the large term's residuals do not see."""
+    (:func:`_pinv_many`, batched by size), and so do all of them when some system fails to factorize; the
+    system of a part of one level is zero (up to rounding), and so is its inverse. A component along ``1``
+    of a right-hand side moves the small term's effects by a constant over the part, which the large
+    term's residuals do not see."""
     stack = (stack + stack.transpose(0, 2, 1)) / 2
     sizes = real.sum(axis=1)
     mean = np.trace(stack, axis1=1, axis2=2) / np.maximum(sizes, 1)
@@ -431,16 +433,19 @@ def _part_inverses(stack: np.ndarray, real: np.ndarray) -> np.ndarray:
     shifted = stack + (mean / np.maximum(sizes, 1))[:, None, None] * (ones[:, :, None] * ones[:, None, :])
     pad = ~real
     shifted[pad[:, :, None] & np.eye(real.shape[1], dtype=bool)] = np.broadcast_to(mean[:, None], real.shape)[pad]
+    # a system of zeros: a part of one level (its effect is the large term's; rounding may leave a speck)
+    empty = (sizes <= 1) | ~(mean > 0)
+    shifted[empty] = np.eye(real.shape[1])
     ok = _positive_definite(shifted)
-    if ok is None:  # some system is not: each is factorized alone
-        ok = np.array([bool(_positive_definite(shifted[i: i + 1])) for i in range(len(stack))])
+    ok = ~empty & (ok if ok is not None else False)  # (some system not positive definite: pseudo-inverses)
     out = np.zeros_like(stack)
     if ok.any():
         out[ok] = np.linalg.inv(shifted[ok])
         out[ok & pad.any(axis=1)] *= (ones[:, :, None] * ones[:, None, :])[ok & pad.any(axis=1)]
-    for i in np.flatnonzero(~ok):
-        own = np.flatnonzero(real[i])
-        out[i][np.ix_(own, own)] = _pinv_many([stack[i][np.ix_(own, own)]])[0]
+    rest = np.flatnonzero(~ok & ~empty)
+    owns = [np.flatnonzero(real[i]) for i in rest]
+    for i, own, inverse in zip(rest, owns, _pinv_many([stack[i][np.ix_(own, own)] for i, own in zip(rest, owns)])):
+        out[i][np.ix_(own, own)] = inverse
     return out
 
 

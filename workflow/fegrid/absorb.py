@@ -562,7 +562,8 @@ class _TwoTerms:
                 timed = np.bincount(cells, w * large.slope, minlength=n_groups * n_small).reshape(n_groups, n_small)
                 self.slopes = timed * large.inv_ss[:, None]
                 gram -= self.slopes.T @ timed
-            self.parts = [(np.arange(n_small)[None, :], _part_inverses(gram[None], np.ones((1, n_small), bool)))]
+            self.members = np.arange(n_small)[None, :]
+            self.inverses = _part_inverses(gram[None], np.ones((1, n_small), dtype=bool))
             return
         # the values of the (groups x small levels) tables on their cells
         counts = np.bincount(layout.cell_of_row, w, minlength=layout.n_cells)
@@ -574,7 +575,8 @@ class _TwoTerms:
             self.slopes = timed * large.inv_ss[layout.group]
             blocks -= layout.products(self.slopes, timed)
         # the parts together, padded (see _TwoTermsLayout): their levels and their systems' inverses
-        self.parts = [(layout.members, _part_inverses(np.append(blocks, 0.0)[layout.cells], layout.real))]
+        self.members = layout.members
+        self.inverses = _part_inverses(np.append(blocks, 0.0)[layout.cells], layout.real)
 
     def _spread(self, table: np.ndarray, g: np.ndarray) -> np.ndarray:
         """``table @ g`` on each row's group of the large term (``table`` dense, or its cells' values)."""
@@ -591,9 +593,7 @@ class _TwoTerms:
             col = xt[:, j]
             rhs = np.bincount(self.small, col if self.large.unweighted else col * self.w, minlength=self.n_small)
             g = np.zeros(self.n_small + 1)  # (a slot past the levels for the parts' padding)
-            rhs = np.append(rhs, 0.0)
-            for members, inverses in self.parts:
-                g[members] = (inverses @ rhs[members][:, :, None])[:, :, 0]
+            g[self.members] = (self.inverses @ np.append(rhs, 0.0)[self.members][:, :, None])[:, :, 0]
             g = g[:-1]
             col -= g.take(self.small)
             col += self._spread(self.shares, g)

@@ -465,30 +465,28 @@ def test_parts_systems_are_solved_by_shifted_cholesky_as_by_the_pseudo_inverse()
 
 
 @pytest.mark.parametrize("weighted", [False, True])
-def test_a_disconnected_two_way_panel_is_projected_exactly(weighted: bool, monkeypatch) -> None:
-    """Source: numpy least squares on explicit unit and period dummies. Two sub-panels that share no
-    period (invented units 0-49 in periods 0-4, units 50-99 in periods 5-9, a tenth of the rows dropped):
-    held as one dense system, whose shifted matrix keeps a second null direction, so the pseudo-inverse
-    takes over; the projection is still exact, at once."""
-    rng = np.random.default_rng(3)
-    rows = [(u, t) for u in range(50) for t in range(5)] + [(u, t) for u in range(50, 100) for t in range(5, 10)]
-    df = pd.DataFrame(rows, columns=["unit", "period"]).sample(frac=0.9, random_state=1).reset_index(drop=True)
-    x = rng.normal(size=(len(df), 2)) + df[["period"]].to_numpy() * 0.3
-    w = rng.uniform(0.5, 2.0, len(df)) if weighted else None
+def test_a_disconnected_two_way_panel_is_projected_exactly(weighted: bool, wage_panel: pd.DataFrame,
+                                                           monkeypatch) -> None:
+    """Source: numpy least squares on explicit worker and year dummies. linearmodels' wage_panel split into
+    two sub-panels that share no year (even-numbered workers in 1980-1983, odd-numbered ones in
+    1984-1987): held as one dense system, whose shifted matrix keeps a second null direction, so the
+    pseudo-inverse takes over; the projection is still exact, at once."""
+    df = wage_panel[(wage_panel["nr"] % 2 == 0) == (wage_panel["year"] <= 1983)].reset_index(drop=True)
+    x = df[["lwage", "union", "expersq"]].to_numpy(dtype=float)
+    w = df["hours"].to_numpy(dtype=float) / 2000 if weighted else None
     from fegrid import absorb
 
     fallbacks: list[int] = []
     plain = absorb._pinv_many
     monkeypatch.setattr(absorb, "_pinv_many", lambda grams: (fallbacks.append(len(grams)), plain(grams))[1])
-    absorber = Absorber(df, parse_absorb(["unit", "period"]), weights=w, tolerance=1e-12)
+    absorber = Absorber(df, parse_absorb(["nr", "year"]), weights=w, tolerance=1e-12)
     out = absorber.demean(x)
     assert fallbacks == [1]
-    d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("unit", "period")])
+    d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("nr", "year")])
     sw = np.sqrt(np.ones(len(df)) if w is None else w)[:, None]
     exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
     assert absorber._direct_layout.dense and np.all(out.iterations == 1) and np.all(out.converged)
     assert np.max(np.abs(out.values - exact)) <= 1e-12 * np.max(np.abs(x))
-
 
 
 def test_parts_of_one_level_take_the_zero_inverse_without_pseudo_inverses(wage_panel: pd.DataFrame,

@@ -59,6 +59,28 @@ def test_twoway_is_the_sum_of_its_one_way_parts(grunfeld: pd.DataFrame) -> None:
 
 # ---- atomic writes --------------------------------------------------------------------------------
 
+def test_pending_timers_are_cancelled_and_never_fire() -> None:
+    """The workflow's end hooks cancel the timers a process would wait out before exiting (Snakemake's
+    scheduler leaves one after every round); a timer cancelled never runs its function."""
+    import threading
+
+    from fegrid.pipeline import cancel_pending_timers
+
+    fired: list[int] = []
+    timers = [threading.Timer(60.0, fired.append, args=(i,)) for i in range(2)]
+    for t in timers:
+        t.start()
+    done = threading.Timer(0.0, fired.append, args=(9,))  # already run: not pending, not counted
+    done.start()
+    done.join()
+    assert cancel_pending_timers() == 2
+    for t in timers:
+        t.join(timeout=5.0)
+        assert not t.is_alive()
+    assert fired == [9]
+    assert cancel_pending_timers() == 0
+
+
 def test_an_interrupted_write_leaves_the_old_file_and_no_fragment(tmp_path: Path) -> None:
     target = write_text(tmp_path / "ledger.csv", "old\n")
 

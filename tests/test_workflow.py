@@ -176,6 +176,15 @@ def test_serial_and_parallel_runs_give_the_same_bytes(tiny_project: Path, tmp_pa
     assert a.returncode == 0 and b.returncode == 0, a.stderr[-2000:] + b.stderr[-2000:]
     for name in ("ledger.csv", "ledger.parquet"):
         assert (tiny_project / "reports/tiny" / name).read_bytes() == (other / "reports/tiny" / name).read_bytes()
+    # what is left to fit is counted while Snakemake starts, and shown before any progress line
+    lines = [line for line in a.stdout.splitlines() if line.startswith("fegrid: ")]
+    assert lines[0].startswith("fegrid: run 'tiny': ") and "to fit;" in lines[0], a.stdout
+    assert any(line.startswith("fegrid: fits: done") for line in lines[1:]), a.stdout
+    # the provenance job is timed like every other job, though the manifest it writes cannot hold its time
+    run = tiny_project / "reports/tiny"
+    assert (run / "benchmarks/write_provenance/all.tsv").is_file()
+    stages = json.loads((run / "manifest.json").read_text())["stages"]
+    assert "fit_job" in stages and "write_provenance" not in stages
 
 
 def test_bad_data_through_snakemake_leaves_the_ledger(tiny_project: Path, fegrid_env) -> None:

@@ -16,7 +16,7 @@ import subprocess
 import sys
 import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from tabulate import tabulate
@@ -28,7 +28,7 @@ from .joint import shared_cluster_caution
 from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
-from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status
+from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status, save_plan
 from .progress import Costs, RunMonitor, Stage, estimate_costs
 from .store import PublishedOutputs, RunPaths
 from .summary import choice_medians, curve_summary
@@ -170,20 +170,27 @@ def _cmd_run(args: argparse.Namespace) -> int:
         extra = ["--workflow-profile", str(_profile(args.profile)), *extra]
     plan = make_plan(args.config, prepare=True)
     frame = load_checked(plan.grid)
-    st = plan_status(plan, frame)
     _warn_size(plan, frame, args.cores)
     _caution_shared_clusters(plan)
-    print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
-          f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
-          f"{_plural(st.jobs, 'job')} to run.",
-          flush=True)
-    _note_pdflatex()
+
+    def while_snakemake_starts() -> RunMonitor:
+        # what is fitted already is counted while Snakemake starts (a second or more before its first job,
+        # whose results come later still), then the progress lines follow
+        st = plan_status(plan, frame)
+        print(f"fegrid: run '{plan.grid.run_name}': {st.specifications} specifications, "
+              f"{st.specs_to_fit} to fit; {st.jobs - st.jobs_done} of {st.jobs} fit "
+              f"{_plural(st.jobs, 'job')} to run.",
+              flush=True)
+        _note_pdflatex()
+        return RunMonitor(_stages(plan) if not args.verbose else [])
+
     with RunLock(plan.paths.lock) as lock:
+        save_plan(plan)  # Snakemake's parse reads it back instead of expanding the grid again
         outputs = PublishedOutputs(plan.paths)
         outputs.keep_previous()
         started = time.time()
-        with RunMonitor(_stages(plan) if not args.verbose else []):
-            code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock)
+        code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
+                              while_snakemake_starts)
         if code != 0 and not args.verbose:
             _explain_failure(plan.paths, started)
         if code != 0:
@@ -248,27 +255,38 @@ def _forget_restored(config: str, files: Sequence[Path], paths: RunPaths) -> Non
                    env={**os.environ, RunLock.HELD_ENV: str(paths.lock)})
 
 
-def _run_snakemake(command: list[str], lock: RunLock) -> int:
+def _run_snakemake(command: list[str], lock: RunLock,
+                   meanwhile: Callable[[], contextlib.AbstractContextManager[object]] | None = None) -> int:
     """Run Snakemake holding ``lock`` for it; forward SIGINT, SIGTERM and SIGHUP and wait for it.
 
     Snakemake inherits the open lock file, so the lock is held until Snakemake is gone, even when
     this process alone is killed outright; a signal to the whole process group (Ctrl-C in a
-    terminal, a scheduler's kill) reaches Snakemake directly.
+    terminal, a scheduler's kill) reaches Snakemake directly. ``meanwhile`` runs once Snakemake has
+    started, and the context it returns (the progress lines) stays open while Snakemake works.
     """
-    proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock))
     forwarded = [signal.SIGINT, signal.SIGTERM] + ([signal.SIGHUP] if hasattr(signal, "SIGHUP") else [])
     received: list[int] = []
+    proc: subprocess.Popen[bytes] | None = None
 
     def forward(signum: int, frame: object) -> None:
         # Snakemake cancels cleanly on SIGINT (stops its jobs, marks their outputs incomplete),
         # whatever signal asked us to stop
         received.append(signum)
-        with contextlib.suppress(ProcessLookupError):
-            proc.send_signal(signal.SIGINT)
+        if proc is not None:
+            with contextlib.suppress(ProcessLookupError):
+                proc.send_signal(signal.SIGINT)
 
     previous = {s: signal.signal(s, forward) for s in forwarded}
     try:
-        code = proc.wait()
+        proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock))
+        try:
+            with meanwhile() if meanwhile is not None else contextlib.nullcontext():
+                code = proc.wait()
+        except BaseException:  # this side failed while Snakemake works: stop it before the error shows
+            with contextlib.suppress(ProcessLookupError):
+                proc.send_signal(signal.SIGINT)
+            proc.wait()
+            raise
     finally:
         for s, handler in previous.items():
             signal.signal(s, handler)

@@ -15,6 +15,7 @@ import hashlib
 import json
 import os
 import pickle
+import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass, is_dataclass, replace
@@ -74,6 +75,7 @@ __all__ = [
     "gather_ledger",
     "plan_status",
     "run_logged",
+    "cancel_pending_timers",
     "STAGES",
     "RULES",
     "stage",
@@ -622,6 +624,20 @@ def describe_sizes(specs: Sequence[Spec]) -> list[tuple[str, int, str]]:
         shown = ", ".join(names[:6]) + (f", ... ({len(names) - 6} more)" if len(names) > 6 else "")
         out.append((d, len(names), shown))
     return out
+
+
+def cancel_pending_timers() -> int:
+    """Cancel the process's pending :class:`threading.Timer` threads; returns how many there were.
+
+    Snakemake's scheduler starts a timer after every round of scheduling (to look again once its
+    job-rate span, a second, has passed), and the interpreter waits for that timer before it exits:
+    a finished run would end up to a second after its last job. The workflow's ``onsuccess`` and
+    ``onerror`` handlers call this once no job is left to schedule.
+    """
+    timers = [t for t in threading.enumerate() if isinstance(t, threading.Timer) and t.is_alive()]
+    for timer in timers:
+        timer.cancel()
+    return len(timers)
 
 
 def run_logged(log: str | Path, step: Callable[..., Any], *args: Any) -> Any:

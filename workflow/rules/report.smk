@@ -156,6 +156,8 @@ rule write_provenance:
         snapshot=str(PLAN.snapshot_path),
     log:
         log_of("write_provenance"),
+    benchmark:
+        benchmark_of("write_provenance")
     conda:
         "../envs/fegrid.yaml"
     script:

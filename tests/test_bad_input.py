@@ -168,3 +168,33 @@ def test_output_cut_short_by_a_pipe_is_not_an_error(tiny_project: Path, fegrid_e
     proc = subprocess.run(f"'{sys.executable}' -m fegrid.cli check --config grid.yaml | head -c 10",
                           shell=True, cwd=tiny_project, capture_output=True, text=True, env=fegrid_env)
     assert "Traceback" not in proc.stderr and "BrokenPipe" not in proc.stderr, proc.stderr
+
+
+def test_a_failure_while_snakemake_starts_stops_it_and_keeps_the_results(fitted: Path, monkeypatch) -> None:
+    """`fegrid run` counts what is left to fit while Snakemake starts; should that side fail, Snakemake is
+    stopped before the error shows, and the earlier results are left as they were."""
+    import subprocess
+
+    import fegrid.cli
+
+    run = fitted / "reports/tiny"
+    before = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+              and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    started: list[subprocess.Popen] = []
+
+    class Recorded(subprocess.Popen):
+        def __init__(self, *args, **kwargs) -> None:
+            super().__init__(*args, **kwargs)
+            started.append(self)
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("counting failed")
+
+    monkeypatch.setattr(fegrid.cli.subprocess, "Popen", Recorded)
+    monkeypatch.setattr(fegrid.cli, "plan_status", broken)
+    with pytest.raises(RuntimeError, match="counting failed"):
+        main(["run", "--config", "grid.yaml"])
+    assert len(started) == 1 and started[0].poll() is not None  # Snakemake was started, and is gone
+    after = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+             and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    assert after == before

@@ -189,8 +189,12 @@ def _cmd_run(args: argparse.Namespace) -> int:
         outputs = PublishedOutputs(plan.paths)
         outputs.keep_previous()
         started = time.time()
-        code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
-                              while_snakemake_starts)
+        try:
+            code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
+                                  while_snakemake_starts)
+        except BaseException:  # fegrid's side failed (Snakemake was stopped): the earlier results stay whole
+            outputs.restore_previous()
+            raise
         if code != 0 and not args.verbose:
             _explain_failure(plan.paths, started)
         if code != 0:

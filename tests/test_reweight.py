@@ -326,8 +326,9 @@ def test_singletons_among_the_copies_are_those_the_stacked_rows_hold(tmp_path: P
 
 def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, wage_panel: pd.DataFrame,
                                                                 monkeypatch) -> None:
-    """A least-squares design refits a batch of draws together (batched products, the same formulas) and
-    gives each draw's own refit to 1e-10, df exactly, None where the draw alone gives None: every
+    """A design refits a batch of draws together (batched products, the same formulas) for its least-squares
+    specifications, and its 2SLS ones draw by draw beside them, and gives each draw's own refit (in the
+    design's order of specifications) to 1e-10, df exactly, None where the draw alone gives None: every
     covariance kind, period effects partialled from the cross products and occupation-by-year effects as
     local dummies, clusters relabelled per copy (the worker's) and shared (crews of workers, one of
     them absent from the draws without its worker), weights,
@@ -344,17 +345,22 @@ def test_draws_refitted_together_equal_each_draw_refitted_alone(tmp_path: Path, 
     raw["absorb"]["worker_occupation_year"] = ["nr", "occupation x year"]  # 72 crossing groups: local dummies
     raw["samples"] = {"all": {}, "long_hours": {"range": {"hours": {"min": 2600}}}}
     raw["control_sets"] = {"combinations_of": ["expersq", "mostly_fixed"]}
+    # 2SLS beside least squares in the same designs: refitted draw by draw, the least squares together
+    raw["estimators"] = {"ols": {"method": "least_squares"},
+                         "iv": {"method": "two_stage_least_squares", "instruments": ["exper"]}}
     grid = load_config(raw)
     specs = grid.expand()
     codes, levels = pd.factorize(frame["nr"], sort=True)
     blocks, _ = prepare_blocks(grid, frame, specs, codes, len(levels), "nr")
-    designs = [d for b in blocks for d in b.designs if d.batchable]
+    designs = [d for b in blocks for d in b.designs if d.batched_specs]
     assert len(designs) > 5 and any(d.local is not None for d in designs)
+    assert any(len(d.batched_specs) < len(d.specs) for d in designs)  # mixed designs among them
     original, alone = reweight._Design._refit_weighted, []
 
-    def counted(self, draw):  # the draws that refit_many hands to the one-draw path
-        alone.append(self)
-        return original(self, draw)
+    def counted(self, draw, specs=None):  # the draws that refit_many hands to the one-draw path (all specs)
+        if specs is None:
+            alone.append(self)
+        return original(self, draw, specs)
 
     draws = [draw_levels(codes, len(levels), np.random.default_rng([3, d])) for d in range(40)]
     kinds, results = set(), 0

@@ -997,31 +997,44 @@ class _Design:
         return self._refit_weighted(draw)
 
     @property
-    def batchable(self) -> bool:
-        """Whether :meth:`refit_many` refits draws together: least squares alone, from the design's stored
-        columns (and local dummies) and their cross products summed per resampling level."""
-        return (self.u is not None and self.cross is not None and not self.reweighted
-                and all(s.estimator.method == LEAST_SQUARES for s in self.specs))
+    def batched_specs(self) -> list[Spec]:
+        """The specifications that :meth:`refit_many` refits for the draws together: least squares, when the
+        design refits from its stored columns (and local dummies) and their cross products summed per
+        resampling level; none otherwise."""
+        if self.u is None or self.cross is None or self.reweighted:
+            return []
+        return [s for s in self.specs if s.estimator.method == LEAST_SQUARES]
 
     def refit_many(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
-        """:meth:`refit` of each draw. A least-squares design (:attr:`batchable`) refits the draws together,
-        each step one batched product for all of them (the same formulas, summed in another order); a draw
-        whose identification decisions differ from the batch's, or lie near a threshold, takes :meth:`refit`."""
-        if not self.batchable:
+        """:meth:`refit` of each draw. The least-squares specifications (:attr:`batched_specs`) are refitted
+        for the draws together, each step one batched product for all of them (the same formulas, summed in
+        another order); the design's 2SLS and Poisson PML specifications, draw by draw. A draw whose
+        identification decisions differ from the batch's, or lie near a threshold, takes :meth:`refit`."""
+        batched = self.batched_specs
+        if not batched:
             return [self.refit(d) for d in draws]
+        others = [s for s in self.specs if s.estimator.method != LEAST_SQUARES]
+        order = {s.spec_id: k for k, s in enumerate(self.specs)}
         out: list[list[tuple[str, float, float, float]] | None] = [None] * len(draws)
         # a draw with no copy of the design's rows, or whose singletons change, gives None (see refit)
         todo = [i for i, d in enumerate(draws) if d.counts[self.levels].any() and self._singletons_agree(d)]
         size = max(1, BATCH_CELLS // (8 * len(self.w)))
         for start in range(0, len(todo), size):
             part = todo[start: start + size]
-            got = self._refit_batch([draws[i] for i in part])
+            got = self._refit_batch([draws[i] for i in part], batched)
             for i, g in zip(part, got):
-                out[i] = self._refit_weighted(draws[i]) if g is None else g
+                if g is None:
+                    out[i] = self._refit_weighted(draws[i])
+                    continue
+                rest = self._refit_weighted(draws[i], others) if others else []
+                # None: one of the others takes the stacked refit, and with it the whole design (as refit)
+                out[i] = None if rest is None else sorted(g + rest, key=lambda r: order[r[0]])
         return out
 
-    def _refit_batch(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
-        """:meth:`_refit_weighted` of least-squares draws, together: ``None`` for a draw to refit alone."""
+    def _refit_batch(self, draws: Sequence[Draw], specs: Sequence[Spec]
+                     ) -> list[list[tuple[str, float, float, float]] | None]:
+        """:meth:`_refit_weighted` of the least-squares ``specs`` for draws together: ``None`` for a draw to refit
+        alone."""
         assert self.u is not None and self.cross is not None
         nan = float("nan")
         d_count, m, q = len(draws), len(self.columns), self.u.shape[1]
@@ -1052,7 +1065,7 @@ class _Design:
         absorbed: np.ndarray | None = None
         nested: dict[tuple[tuple[str, ...], ...], np.ndarray] = {}
         copies_t: np.ndarray | None = None  # (rows, draws)
-        for spec in self.specs:
+        for spec in specs:
             key = (spec.outcome, spec.focal, spec.controls)
             if key not in fits:
                 fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, (transform, local_gamma))
@@ -1079,7 +1092,7 @@ class _Design:
                 out.append(None)
                 continue
             out.append([(s.spec_id, float(results[s.spec_id][0][i]), float(results[s.spec_id][1][i]),
-                         float(results[s.spec_id][2][i])) for s in self.specs])
+                         float(results[s.spec_id][2][i])) for s in specs])
         return out
 
     def _batch_decide(self, j: int, kept: Sequence[int], norm: np.ndarray, raw_norm: np.ndarray, gram: np.ndarray,
@@ -1309,8 +1322,10 @@ class _Design:
             mult = ((ind @ copies) > 0).T.astype(float)
         return sums.reshape(ind.shape[0], *values.shape[1:]), mult, mult.sum(axis=1)
 
-    def _refit_weighted(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
-        """Least squares and 2SLS on the design's rows, each weighted by its copies in the draw: the stacked
+    def _refit_weighted(self, draw: Draw, specs: Sequence[Spec] | None = None
+                        ) -> list[tuple[str, float, float, float]] | None:
+        """Least squares and 2SLS of ``specs`` (all the design's by default) on the design's rows, each weighted
+        by its copies in the draw: the stacked
         rows' cross products, residuals and cluster sums are those of the rows counted by their copies
         (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy).
         Poisson PML specifications are fitted on the drawn rows (:meth:`_poisson`) and take their inference
@@ -1370,7 +1385,7 @@ class _Design:
         poisson: dict[tuple[object, ...], _Fit | None] = {}
         stacked = None
         stacked_nested: dict[tuple[tuple[str, ...], ...], int] = {}
-        for spec in self.specs:
+        for spec in self.specs if specs is None else specs:
             est = spec.estimator
             key = (spec.outcome, spec.focal, spec.controls, est.method, est.instruments, est.endogenous)
             if est.method == POISSON:  # fitted on the drawn rows, its inference on the stacked rows

@@ -885,3 +885,61 @@ def test_indicators_demeaned_on_a_table_of_cells_equal_the_dummy_regression(wage
     weighted = Absorber(df, parse_absorb(["nr", "year"]), weights=df["hours"].to_numpy(dtype=float))
     assert weighted.demean_cells(x) is None
     assert Absorber(df, parse_absorb(["nr", "year", "occupation"])).demean_cells(x) is None
+
+
+def test_kept_run_sums_serve_every_clustering_with_the_same_bytes(wage_panel: pd.DataFrame) -> None:
+    """Source: linearmodels' wage_panel sorted by worker, clustered by worker and by groups of whole workers
+    (the workers' ranks modulo 37, so that neighbours differ): each worker's rows are one run of its group,
+    so the group sums start from the worker sums. A regression's kept sums (scores and ``h e``, either
+    clustering asked first) equal the sums computed alone, byte for byte, and the rows are summed over once
+    per kind of values."""
+    from fegrid.covariance import FitPieces
+
+    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    worker = pd.factorize(rows["nr"], sort=True)[0]
+    group = worker % 37
+    assert covariance._layout(group).run_starts is not None
+    x = np.asfortranarray(rows[["union", "hours", "married"]].to_numpy(dtype=float))
+    e = rows["lwage"].to_numpy(dtype=float) - rows["lwage"].mean()
+    h = x @ np.array([0.3, -0.2, 0.1])
+    scores = np.asfortranarray(x * e[:, None])
+    for order in ((worker, group), (group, worker)):
+        fit = FitPieces(estimate=0.0, e=e, h=h, rss=float(e @ e), bread=np.eye(3), within_r2=float("nan"),
+                        scores=lambda: scores)
+        for codes in order:
+            assert fit.score_sums(codes)[0].tobytes() == cluster_sums(scores, codes)[0].tobytes()
+            assert fit.he_sums(codes)[0].tobytes() == cluster_sums(h * e, codes)[0].tobytes()
+        assert sorted(ndim for ndim, _, _ in fit._runs) == [1, 2]  # one pass over the rows per kind of values
+
+
+def test_combined_level_codes_equal_a_factorization_of_the_combination(wage_panel: pd.DataFrame) -> None:
+    """Source: linearmodels' wage_panel, with occupation as text and a few missing ones; pandas' sorted
+    factorization of the combined levels. A frame's codes of a column combination are built from each
+    column's codes (factorized once for every combination they enter) and equal the combination's own."""
+    from fegrid.absorb import LevelCodes, factorize
+
+    frame = wage_panel.assign(job=wage_panel["occupation"].map(lambda v: f"job {v:02d}"))
+    for columns in (("nr", "year"), ("job", "year"), ("year", "job", "married")):
+        codes = LevelCodes(frame)(columns)
+        assert np.array_equal(codes, factorize(frame, columns)[0]), columns
+        keys = pd.Series(list(zip(*(frame[c] for c in columns))))
+        assert np.array_equal(codes, pd.factorize(keys, sort=True)[0]), columns
+
+
+def test_nesting_is_decided_the_same_with_or_without_the_first_rows_probe() -> None:
+    """Source: the definition (every level of the inner codes within one level of the outer), counted by pandas.
+    Long code arrays (more rows than the probe looks at first) that nest, and that fail to nest inside the
+    probed rows or only after them."""
+    from fegrid.absorb import NESTED_PROBE_ROWS, _nested
+
+    n = 5 * NESTED_PROBE_ROWS
+    inner = np.arange(n) // 10
+    outer = inner // 7
+    cases = {"nested": outer, "split early": outer.copy(), "split late": outer.copy()}
+    cases["split early"][100] += 1
+    cases["split late"][4 * NESTED_PROBE_ROWS + 3] += 1
+    for name, out in cases.items():
+        by_definition = bool(pd.Series(out).groupby(inner).nunique().max() == 1)
+        assert by_definition == (name == "nested"), name
+        assert _nested(inner, out) == by_definition, name
+    assert _nested(inner, inner)

@@ -194,18 +194,27 @@ def factorize(frame: pd.DataFrame, columns: Sequence[str]) -> tuple[np.ndarray, 
 
     Codes follow the sorted order of the levels, so they do not depend on row order.
     """
-    codes = np.zeros(len(frame), dtype=np.int64)
-    for col in columns:
-        series = frame[col]
-        plain_integers = isinstance(series.dtype, np.dtype) and series.dtype.kind in "iu"  # not nullable Int64
-        got = _integer_codes(series.to_numpy()) if plain_integers else None
-        c, n_levels = got if got is not None else _sorted_factorize(series)
+    if len(columns) == 1:
+        codes = _column_codes(frame[columns[0]])[0]
+        return codes, int(codes.max()) + 1 if len(codes) else 0
+    return _combined([_column_codes(frame[col]) for col in columns], len(frame))
+
+
+def _column_codes(series: pd.Series) -> tuple[np.ndarray, int]:
+    """One column's codes in the sorted order of its levels, and its number of levels."""
+    plain_integers = isinstance(series.dtype, np.dtype) and series.dtype.kind in "iu"  # not nullable Int64
+    got = _integer_codes(series.to_numpy()) if plain_integers else None
+    return got if got is not None else _sorted_factorize(series)
+
+
+def _combined(parts: Sequence[tuple[np.ndarray, int]], n: int) -> tuple[np.ndarray, int]:
+    """The codes of the level combinations of columns, from each column's codes and number of levels
+    (:func:`_column_codes`), in sorted order."""
+    codes = np.zeros(n, dtype=np.int64)
+    for c, n_levels in parts:
         codes = codes * max(n_levels, 1) + c
-    if len(columns) > 1:
-        got = _integer_codes(codes)
-        codes, n_levels = got if got is not None else _sorted_factorize(pd.Series(codes))
-        return codes, n_levels
-    return codes, int(codes.max()) + 1 if len(codes) else 0
+    got = _integer_codes(codes)
+    return got if got is not None else _sorted_factorize(pd.Series(codes))
 
 
 def float_columns(frame: pd.DataFrame, columns: Sequence[str]) -> np.ndarray:
@@ -255,10 +264,15 @@ class LevelCodes:
     def __init__(self, frame: pd.DataFrame) -> None:
         self.frame = frame
         self._codes: dict[tuple[str, ...], np.ndarray] = {}
+        self._levels: dict[str, int] = {}
 
     def __call__(self, columns: tuple[str, ...]) -> np.ndarray:
         if columns not in self._codes:
-            self._codes[columns] = factorize(self.frame, columns)[0]
+            if len(columns) == 1:
+                self._codes[columns], self._levels[columns[0]] = factorize(self.frame, columns)
+            else:  # combined from each column's codes, factorized once for every combination they enter
+                self._codes[columns] = _combined([(self((col,)), self._levels[col]) for col in columns],
+                                                 len(self.frame))[0]
         return self._codes[columns]
 
     def on_rows(self, positions: np.ndarray) -> CodesOf:
@@ -629,11 +643,20 @@ def _constant_within(values: np.ndarray | None, codes: np.ndarray) -> bool:
     return bool(np.all(last[codes] == values))
 
 
+#: rows that :func:`_nested` looks at first: a level split across outer levels usually shows among them
+NESTED_PROBE_ROWS = 1 << 16
+
+
 def _nested(inner: np.ndarray, outer: np.ndarray) -> bool:
     """True when every level of ``inner`` falls within a single level of ``outer``."""
-    if len(inner) == 0:
+    if len(inner) == 0 or inner is outer:  # (the same codes: a clustering by an absorbed term)
         return True
     last = np.empty(int(inner.max()) + 1, dtype=np.int64)
+    if len(inner) > 4 * NESTED_PROBE_ROWS:  # the first rows alone can already say no
+        head, head_outer = inner[:NESTED_PROBE_ROWS], outer[:NESTED_PROBE_ROWS]
+        last[head] = head_outer
+        if not np.array_equal(last[head], head_outer):
+            return False
     last[inner] = outer
     return bool(np.all(last[inner] == outer))
 

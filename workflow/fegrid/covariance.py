@@ -63,14 +63,34 @@ class FitPieces:
     coefficients: np.ndarray | None = None  # every kept coefficient, focal first
     _sums: dict[int, tuple[np.ndarray, tuple[np.ndarray, int]]] = field(default_factory=dict, repr=False,
                                                                         compare=False)
+    _runs: list[tuple[int, np.ndarray, np.ndarray]] = field(default_factory=list, repr=False, compare=False)
+    _he: list[np.ndarray] = field(default_factory=list, repr=False, compare=False)
 
     def score_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
         """:func:`cluster_sums` of the scores by ``codes``, kept for the next covariance choice."""
         got = self._sums.get(id(codes))
         if got is None or got[0] is not codes:  # (the codes are held with their sums: an id stays theirs)
-            got = (codes, cluster_sums(self.scores(), codes))
+            got = (codes, cluster_sums(self.scores(), codes, run_sums=self._run_sums))
             self._sums[id(codes)] = got
         return got[1]
+
+    def he_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
+        """:func:`cluster_sums` of ``h e`` (the focal variance's terms) by ``codes``; the products, and their
+        sums over runs of rows, kept for the next covariance choice."""
+        if not self._he:
+            self._he.append(self.h * self.e)
+        return cluster_sums(self._he[0], codes, run_sums=self._run_sums)
+
+    def _run_sums(self, values: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """``values`` (the scores, or ``h e``) summed over the runs of rows that begin at ``starts``, kept: the
+        runs of one cluster variable are often another's clusters (a panel sorted by unit: each unit's rows
+        are one run of its region), and those sums are the same numbers."""
+        for of, known, sums in self._runs:
+            if of == values.ndim and (known is starts or np.array_equal(known, starts)):
+                return sums
+        sums = np.add.reduceat(values, starts, axis=0)
+        self._runs.append((values.ndim, starts, sums))
+        return sums
 
 
 @dataclass(frozen=True)
@@ -135,14 +155,20 @@ def n_clusters(codes: np.ndarray) -> int:
     return _layout(codes).n_groups
 
 
-def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int]:
-    """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``."""
+def cluster_sums(values: np.ndarray, codes: np.ndarray, *,
+                 run_sums: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None) -> tuple[np.ndarray, int]:
+    """Per-cluster sums of ``values`` (n,) or of each column of ``values`` (n, k); and ``G``. ``run_sums(values,
+    starts)``, when given, sums ``values`` over the runs of rows that begin at ``starts`` (or gives such sums
+    kept from before)."""
     layout = _layout(codes)
     n_groups = layout.n_groups
     if n_groups == len(codes):  # one observation per cluster (e.g. unit x period): the sums are the rows
         return values, n_groups
+    if run_sums is None:
+        def run_sums(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
+            return np.add.reduceat(values, starts, axis=0)
     if layout.starts is not None:  # sorted (a panel sorted by unit): one sum per run
-        return np.add.reduceat(values, layout.starts, axis=0), n_groups
+        return run_sums(values, layout.starts), n_groups
     if layout.cycling:  # one row per cluster in each cycle: the cycles added in row order, as bincount does
         if values.ndim == 1:
             return values.reshape(-1, n_groups).sum(axis=0), n_groups
@@ -150,7 +176,7 @@ def cluster_sums(values: np.ndarray, codes: np.ndarray) -> tuple[np.ndarray, int
             return values.T.reshape(values.shape[1], -1, n_groups).sum(axis=1).T, n_groups
         return values.reshape(-1, n_groups, values.shape[1]).sum(axis=0), n_groups
     if layout.run_starts is not None:  # long runs of one cluster: their sums first
-        values, codes = np.add.reduceat(values, layout.run_starts, axis=0), layout.run_codes
+        values, codes = run_sums(values, layout.run_starts), layout.run_codes
     if values.ndim == 1:
         return np.bincount(codes, values, minlength=n_groups), n_groups
     return np.column_stack([np.bincount(codes, values[:, j], minlength=n_groups)
@@ -299,7 +325,7 @@ class OneWay(_Kind):
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        sums, g = cluster_sums(fit.h * fit.e, clusters[0])
+        sums, g = fit.he_sums(clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
         return CovarianceOutcome(self.scaled(float(sums @ sums), n, dof, g), self.inference_df(dof, [g]), (g,))

@@ -282,6 +282,8 @@ def _run_snakemake(command: list[str], lock: RunLock,
 
     previous = {s: signal.signal(s, forward) for s in forwarded}
     try:
+        if received:  # asked to stop before Snakemake started
+            return -received[0]
         proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock))
         try:
             with meanwhile() if meanwhile is not None else contextlib.nullcontext():

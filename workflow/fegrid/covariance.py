@@ -29,6 +29,7 @@ which spec ids hash, so that renaming a kind never changes an id.
 
 from __future__ import annotations
 
+import functools
 import weakref
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -64,7 +65,6 @@ class FitPieces:
     _sums: dict[int, tuple[np.ndarray, tuple[np.ndarray, int]]] = field(default_factory=dict, repr=False,
                                                                         compare=False)
     _runs: list[tuple[int, np.ndarray, np.ndarray]] = field(default_factory=list, repr=False, compare=False)
-    _he: list[np.ndarray] = field(default_factory=list, repr=False, compare=False)
 
     def score_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
         """:func:`cluster_sums` of the scores by ``codes``, kept for the next covariance choice."""
@@ -74,17 +74,21 @@ class FitPieces:
             self._sums[id(codes)] = got
         return got[1]
 
+    @functools.cached_property
+    def he(self) -> np.ndarray:
+        """``h e``, the focal variance's terms (computed once for all covariance choices)."""
+        return self.h * self.e
+
     def he_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
-        """:func:`cluster_sums` of ``h e`` (the focal variance's terms) by ``codes``; the products, and their
-        sums over runs of rows, kept for the next covariance choice."""
-        if not self._he:
-            self._he.append(self.h * self.e)
-        return cluster_sums(self._he[0], codes, run_sums=self._run_sums)
+        """:func:`cluster_sums` of :attr:`he` by ``codes``, their sums over runs of rows kept for the next
+        covariance choice."""
+        return cluster_sums(self.he, codes, run_sums=self._run_sums)
 
     def _run_sums(self, values: np.ndarray, starts: np.ndarray) -> np.ndarray:
         """``values`` (the scores, or ``h e``) summed over the runs of rows that begin at ``starts``, kept: the
         runs of one cluster variable are often another's clusters (a panel sorted by unit: each unit's rows
-        are one run of its region), and those sums are the same numbers."""
+        are one run of its region), and those sums are the same numbers. The two kinds of values are told
+        apart by their dimensions (the scores are (n, k), ``h e`` is (n,))."""
         for of, known, sums in self._runs:
             if of == values.ndim and (known is starts or np.array_equal(known, starts)):
                 return sums

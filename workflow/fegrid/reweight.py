@@ -1325,9 +1325,9 @@ class _Design:
     def _refit_weighted(self, draw: Draw, specs: Sequence[Spec] | None = None
                         ) -> list[tuple[str, float, float, float]] | None:
         """Least squares and 2SLS of ``specs`` (all the design's by default) on the design's rows, each weighted
-        by its copies in the draw: the stacked
-        rows' cross products, residuals and cluster sums are those of the rows counted by their copies
-        (a cluster that the copies relabel, the unit's or the resampling column's, counts once per copy).
+        by its copies in the draw: the stacked rows' cross products, residuals and cluster sums are those of
+        the rows counted by their copies (a cluster that the copies relabel, the unit's or the resampling
+        column's, counts once per copy).
         Poisson PML specifications are fitted on the drawn rows (:meth:`_poisson`) and take their inference
         on the stacked rows."""
         copies = draw.counts[self.levels]

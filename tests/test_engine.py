@@ -912,6 +912,73 @@ def test_kept_run_sums_serve_every_clustering_with_the_same_bytes(wage_panel: pd
         assert sorted(ndim for ndim, _, _ in fit._runs) == [1, 2]  # one pass over the rows per kind of values
 
 
+@pytest.mark.parametrize("chunk", [53, 64, 16384])
+def test_sums_taken_in_one_pass_equal_the_plain_sums(wage_panel: pd.DataFrame, chunk: int, monkeypatch) -> None:
+    """Source: numpy (the plain computation: residuals ``Z w``, scores ``X e``, per-cluster sums by bincount,
+    then ``U'U``). linearmodels' wage_panel sorted by worker and year: clusters by worker (runs of rows), by
+    groups of whole workers (runs of a group), by year (cycles), by occupation (neither: summed by codes), by
+    worker and year (one row each) and by row. Chunks of 53 rows cut runs and cycles anywhere, 64 rows are
+    whole cycles of 8 years, 16384 rows one chunk. Each clustering's numbers do not depend on the others
+    asked for, and the focal variance's sums are the same bytes with or without the scores."""
+    monkeypatch.setattr(covariance, "FUSED_CHUNK", chunk)
+    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    worker = pd.factorize(rows["nr"], sort=True)[0]
+    by = {"worker": worker, "group": worker % 37, "year": pd.factorize(rows["year"], sort=True)[0],
+          "occupation": pd.factorize(rows["occupation"], sort=True)[0], "cell": np.arange(len(rows)), "row": None}
+    assert covariance._layout(by["worker"]).starts is not None
+    assert covariance._layout(by["group"]).run_starts is not None
+    assert covariance._layout(by["year"]).cycling
+    z = np.asfortranarray(rows[["lwage", "union", "hours", "married", "exper"]].to_numpy(dtype=float))
+    z -= z.mean(axis=0)
+    weights = np.zeros((5, 2))
+    weights[:, 0] = [1.0, -0.1, 0.002, -0.05, 0.0]  # exper out of the regression: its weights are zero
+    weights[1:4, 1] = [0.4, -0.3, 0.2]
+    columns = [1, 2, 3]
+    eh, crosses = covariance.fused_fit(z, weights, columns, list(by.values()), scores=True)
+    np.testing.assert_allclose(eh, z @ weights, rtol=1e-13, atol=1e-13)
+    e, he = eh[:, 0], eh[:, 1] * eh[:, 0]
+    scores = z[:, columns] * e[:, None]
+    for name, codes in by.items():
+        got = crosses[-1 if codes is None else id(codes)]
+        g = len(rows) if codes is None else int(codes.max()) + 1
+        u = scores if codes is None else np.column_stack([np.bincount(codes, scores[:, j], minlength=g)
+                                                          for j in range(3)])
+        v = he if codes is None else np.bincount(codes, he, minlength=g)
+        assert got.codes is codes and got.n_groups == g, name
+        np.testing.assert_allclose(got.scores, u.T @ u, rtol=1e-11, err_msg=name)
+        assert got.he == pytest.approx(float(v @ v), rel=1e-11), name
+        _, alone = covariance.fused_fit(z, weights, columns, [codes], scores=True)
+        assert alone[-1 if codes is None else id(codes)].scores.tobytes() == got.scores.tobytes(), name
+        _, focal_only = covariance.fused_fit(z, weights, columns, [codes], scores=False)
+        kept = focal_only[-1 if codes is None else id(codes)]
+        assert kept.scores is None and kept.he == got.he, name
+
+
+def test_fitted_pieces_with_sums_taken_ahead_give_the_same_matrices(wage_panel: pd.DataFrame, monkeypatch) -> None:
+    """Source: linearmodels' wage_panel, worker and year effects, clustered by worker, by year, by both and
+    robust: fit_block's results with each regression's sums taken in one pass (in chunks of 53 rows)
+    equal those summed per covariance choice from the whole scores (every covariance matrix to 1e-10)."""
+    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    specs = [SpecRequest(f"{c}-{kind}-{len(by)}", "lwage", "union", controls, Inference(kind, by))
+             for c, controls in (("none", ()), ("two", ("hours", "married")))
+             for kind, by in (("clustered", (("nr",),)), ("clustered", (("year",),)), ("hc1", ()),
+                              ("two_way_clustered", (("nr",), ("year",))))]
+    settings = BlockSettings(absorb=parse_absorb(["nr", "year"]))
+    ahead = fit_block(rows, settings, specs)
+    monkeypatch.setattr(covariance, "FUSED_CHUNK", 53)
+    chunked = fit_block(rows, settings, specs)
+    monkeypatch.setattr(estimate, "_clusterings", lambda design, specs: {})  # nothing ahead: summed when asked
+    asked = fit_block(rows, settings, specs)
+    for a, c, b in zip(ahead.results, chunked.results, asked.results):
+        assert a.status == b.status == c.status == "ok", (a.message, b.message)
+        for x in (a, c):
+            assert x.estimate == b.estimate
+            assert x.std_error == pytest.approx(b.std_error, rel=1e-12)
+        for x in (ahead, chunked):
+            np.testing.assert_allclose(x.coefficients[a.spec_id].covariance, asked.coefficients[a.spec_id].covariance,
+                                       rtol=1e-10, atol=0)
+
+
 def test_combined_level_codes_equal_a_factorization_of_the_combination(wage_panel: pd.DataFrame) -> None:
     """Source: linearmodels' wage_panel, with occupation as text and a few missing ones; pandas' sorted
     factorization of the combined levels. A frame's codes of a column combination are built from each

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import pytest
 
-from fegrid import estimate
+from fegrid import covariance, estimate
 from fegrid.absorb import parse_absorb
 from fegrid.estimate import Inference, fit_one
 from fegrid.renames import KIND_RENAMES
@@ -54,8 +54,11 @@ def test_matches_linearmodels(name: str, datasets: dict) -> None:
 @pytest.mark.parametrize("name", sorted(CASES))
 def test_matches_linearmodels_with_the_qr_in_chunks(name: str, datasets: dict, monkeypatch) -> None:
     """Source: as above. The same cases with the R factor taken from row chunks of 64 (as on data of
-    more than 32,768 rows): the chunked (tall-and-skinny) QR gives the same estimates and SEs."""
+    more than 32,768 rows), and the residuals and cluster sums from row chunks of 37 (as on data of more
+    than 16,384 rows; 37 rows cut the panels' units and periods anywhere): the chunked (tall-and-skinny)
+    QR and the chunked sums give the same estimates and SEs."""
     monkeypatch.setattr(estimate, "QR_CHUNK", 64)
+    monkeypatch.setattr(covariance, "FUSED_CHUNK", 37)
     case = CASES[name]
     res = _fit(case, datasets)
     assert res.status == "ok", res.message

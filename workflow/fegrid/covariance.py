@@ -39,7 +39,17 @@ import numpy as np
 
 from .errors import EstimationError
 
-__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "FitPieces", "covariance_kind", "cluster_sums", "n_clusters"]
+__all__ = ["COVARIANCE_KINDS", "CovarianceOutcome", "Crosses", "FitPieces", "covariance_kind", "cluster_sums",
+           "fused_fit", "n_clusters", "score_crosses"]
+
+
+class Crosses(NamedTuple):
+    """One clustering's cross products of a regression's cluster sums, computed ahead (:func:`fused_fit`)."""
+
+    codes: np.ndarray | None  # the cluster codes (None: each row its own cluster)
+    scores: np.ndarray | None  # U'U for the scores' sums U (None when only the focal variance is asked for)
+    he: float  # the sum of squares of h e's sums
+    n_groups: int
 
 
 @dataclass(frozen=True)
@@ -65,6 +75,35 @@ class FitPieces:
     _sums: dict[int, tuple[np.ndarray, tuple[np.ndarray, int]]] = field(default_factory=dict, repr=False,
                                                                         compare=False)
     _runs: list[tuple[int, np.ndarray, np.ndarray]] = field(default_factory=list, repr=False, compare=False)
+    #: cross products computed ahead (:func:`fused_fit`), by the id of the codes (-1: each row its own cluster)
+    _crosses: dict[int, Crosses] = field(default_factory=dict, repr=False, compare=False)
+
+    def _ahead(self, codes: np.ndarray | None) -> Crosses | None:
+        got = self._crosses.get(-1 if codes is None else id(codes))
+        return got if got is not None and got.codes is codes else None
+
+    def score_cross(self, codes: np.ndarray | None) -> tuple[np.ndarray, int]:
+        """``U'U`` for the scores' sums ``U`` by cluster of ``codes`` (``None``: each row its own cluster),
+        and the number of clusters."""
+        got = self._ahead(codes)
+        if got is not None and got.scores is not None:
+            return got.scores, got.n_groups
+        if codes is None:
+            scores = self.scores()
+            return scores.T @ scores, len(scores)
+        u, g = self.score_sums(codes)
+        return u.T @ u, g
+
+    def he_square(self, codes: np.ndarray | None) -> tuple[float, int]:
+        """The sum of squares of :attr:`he`'s sums by cluster of ``codes`` (``None``: each row its own
+        cluster), and the number of clusters."""
+        got = self._ahead(codes)
+        if got is not None:
+            return got.he, got.n_groups
+        if codes is None:
+            return float(self.he @ self.he), len(self.he)
+        sums, g = self.he_sums(codes)
+        return float(sums @ sums), g
 
     def score_sums(self, codes: np.ndarray) -> tuple[np.ndarray, int]:
         """:func:`cluster_sums` of the scores by ``codes``, kept for the next covariance choice."""
@@ -187,8 +226,170 @@ def cluster_sums(values: np.ndarray, codes: np.ndarray, *,
                             for j in range(values.shape[1])]), n_groups
 
 
-#: The scores' cluster sums (and the number of clusters) by a cluster variable's codes.
-SumsOf = Callable[[np.ndarray], tuple[np.ndarray, int]]
+#: Rows per chunk of :func:`fused_fit`: a chunk of the design's columns, its residuals and its scores stay in
+#: cache while every clustering's sums are taken from them.
+FUSED_CHUNK = 16384
+
+
+class _RunSums:
+    """Sums of the scores and of ``h e`` over the runs of rows that begin at ``starts``, chunk by chunk (a run
+    that crosses a chunk's end is finished in the next chunk)."""
+
+    def __init__(self, starts: np.ndarray, width: int) -> None:
+        self.starts = starts
+        self.scores = np.empty((len(starts), width)) if width else None
+        self.he = np.empty(len(starts))
+
+    def add(self, a: int, b: int, block: np.ndarray | None, he: np.ndarray) -> None:
+        first = int(np.searchsorted(self.starts, a, side="right")) - 1
+        end = int(np.searchsorted(self.starts, b, side="left"))
+        local = self.starts[first:end] - a
+        going_on = bool(local[0] < 0)  # the chunk begins inside a run
+        if going_on:
+            local[0] = 0
+        for out, values in ((self.scores, block), (self.he, he)):
+            if out is None:
+                continue
+            sums = np.add.reduceat(values, local, axis=0)
+            if going_on:
+                out[first] += sums[0]
+                out[first + 1: end] = sums[1:]
+            else:
+                out[first: end] = sums
+
+
+class _Clustering:
+    """One clustering's sums of a regression's scores and ``h e``, taken chunk by chunk in :func:`fused_fit`."""
+
+    def __init__(self, codes: np.ndarray | None, n: int, width: int, runs: Callable[[np.ndarray], _RunSums]) -> None:
+        self.codes, self.width = codes, width
+        layout = _layout(codes) if codes is not None else None
+        self.n_groups = n if layout is None else layout.n_groups
+        self.runs: _RunSums | None = None
+        self.scores: np.ndarray | None = None
+        self.he: np.ndarray | float = 0.0
+        if layout is None or self.n_groups == n:
+            self.way = "rows"
+            self.scores = np.zeros((width, width)) if width else None
+        elif layout.starts is not None:
+            self.way, self.runs = "runs", runs(layout.starts)
+        elif layout.run_starts is not None:
+            self.way, self.runs = "runs", runs(layout.run_starts)
+        else:
+            self.way = "cycle" if layout.cycling else "bins"
+            self.scores = np.zeros((self.n_groups, width)) if width else None
+            self.he = np.zeros(self.n_groups)
+
+    def add(self, a: int, b: int, block: np.ndarray | None, he: np.ndarray) -> None:
+        if self.way == "runs":
+            return  # (their run sums are taken once for every clustering that shares them)
+        if self.way == "rows":
+            self.he += float(he @ he)
+            if block is not None:
+                self.scores += block.T @ block
+            return
+        g = self.n_groups
+        if self.way == "cycle":  # whole cycles of codes 0..G-1 added together, the rows around them one by one
+            m = b - a
+            head = min(m, (-a) % g)
+            stop = head + (m - head) // g * g
+            for lo, hi in ((0, head), (stop, m)):
+                if hi > lo:  # (fewer than G rows in a row: each code once)
+                    piece = self.codes[a + lo: a + hi]
+                    self.he[piece] += he[lo:hi]
+                    if block is not None:
+                        self.scores[piece] += block[lo:hi]
+            if stop > head:  # (a row of ones times the cycles as the rows of a matrix: BLAS, not a strided sum)
+                ones = np.ones((stop - head) // g)
+                self.he += ones @ he[head:stop].reshape(-1, g)
+                if block is not None:  # (each column's cycles as a view of the Fortran-order block)
+                    self.scores += (ones @ block[head:stop].T.reshape(block.shape[1], -1, g)).T
+            return
+        codes = self.codes[a:b]
+        self.he += np.bincount(codes, he, minlength=g)
+        if block is not None:
+            for j in range(block.shape[1]):
+                self.scores[:, j] += np.bincount(codes, block[:, j], minlength=g)
+
+    def crosses(self) -> Crosses:
+        if self.way == "rows":
+            return Crosses(self.codes, self.scores, float(self.he), self.n_groups)
+        if self.way == "runs":
+            scores, he = self.runs.scores, self.runs.he
+            layout = _layout(self.codes)
+            if layout.starts is None:  # runs of a cluster, not the clusters: their sums summed by cluster
+                g, codes = self.n_groups, layout.run_codes
+                he = np.bincount(codes, he, minlength=g)
+                if scores is not None:
+                    scores = np.column_stack([np.bincount(codes, scores[:, j], minlength=g)
+                                              for j in range(scores.shape[1])])
+        else:
+            scores, he = self.scores, self.he
+        return Crosses(self.codes, None if scores is None else scores.T @ scores, float(he @ he), self.n_groups)
+
+
+def fused_fit(z: np.ndarray, weights: np.ndarray, columns: Sequence[int], clusterings: Sequence[np.ndarray | None],
+              *, scores: bool) -> tuple[np.ndarray, dict[int, Crosses]]:
+    """``eh = z @ weights`` (the residuals and ``h``, n x 2) and, for each of ``clusterings`` (cluster codes, or
+    ``None`` for each row its own cluster), the cross products of the cluster sums of ``h e`` and (when
+    ``scores``) of the scores ``z[:, columns] * e``: in one pass over ``z`` by chunks of
+    :data:`FUSED_CHUNK` rows, instead of one pass for the residuals, one for the scores and one per
+    clustering. Sums over runs of rows (a panel sorted by unit: each unit's rows, which are also runs of
+    its region) are taken once for every clustering they serve. Each clustering's numbers depend on its
+    own codes and the chunks only (not on the other clusterings asked for); they equal the one-pass sums
+    up to the order of additions. Returns ``eh`` and :class:`Crosses` by the id of the codes (-1 for
+    ``None``), for :class:`FitPieces`."""
+    n = z.shape[0]
+    width = len(columns) if scores else 0
+    eh = np.empty((n, weights.shape[1]))
+    kept_runs: list[_RunSums] = []
+
+    def runs(starts: np.ndarray) -> _RunSums:
+        for r in kept_runs:
+            if r.starts is starts or np.array_equal(r.starts, starts):
+                return r
+        kept_runs.append(_RunSums(starts, width))
+        return kept_runs[-1]
+
+    parts = {(-1 if c is None else id(c)): _Clustering(c, n, width, runs) for c in clusterings}
+    chunk = min(n, FUSED_CHUNK)
+    block = np.empty((width, chunk)).T if width else None  # Fortran order: each score's column in a row
+    e, he = np.empty(chunk), np.empty(chunk)
+    used = np.flatnonzero(np.any(weights != 0, axis=1))  # the columns in the residuals and h
+    some = len(used) < z.shape[1]
+    weights_used = np.ascontiguousarray(weights[used])
+    for a in range(0, n, FUSED_CHUNK):
+        b = min(n, a + FUSED_CHUNK)
+        zc = z[a:b]
+        part = np.matmul(zc[:, used] if some else zc, weights_used if some else weights, out=eh[a:b])
+        ec = e[: b - a]
+        ec[:] = part[:, 0]
+        hc = np.multiply(part[:, 1], ec, out=he[: b - a])
+        bc = None
+        if block is not None:
+            bc = block[: b - a]
+            for c, j in enumerate(columns):
+                np.multiply(zc[:, j], ec, out=bc[:, c])
+        for r in kept_runs:
+            r.add(a, b, bc, hc)
+        for p in parts.values():
+            p.add(a, b, bc, hc)
+    return eh, {key: p.crosses() for key, p in parts.items()}
+
+
+#: ``U'U`` for the scores' sums ``U`` by cluster of a variable's codes (``None``: each row its own cluster), and
+#: the number of clusters.
+CrossOf = Callable[[np.ndarray | None], tuple[np.ndarray, int]]
+
+
+def score_crosses(scores: np.ndarray) -> CrossOf:
+    """:data:`CrossOf` for scores (n, k), summed when asked."""
+    def cross(codes: np.ndarray | None) -> tuple[np.ndarray, int]:
+        if codes is None:
+            return scores.T @ scores, len(scores)
+        u, g = cluster_sums(scores, codes)
+        return u.T @ u, g
+    return cross
 #: A number, or an array of them (one per draw)
 Num = Any
 
@@ -248,11 +449,12 @@ class _Kind:
             return float(self.checked_df(n, k_total, 0, 0))
         return float(self.inference_df(0, [n_clusters(c) for c in clusters[: self.dimensions]]))
 
-    def meat(self, scores: np.ndarray, *, n_params: int, absorbed_df: int, nested_df: int,
-             clusters: Sequence[np.ndarray], sums_of: SumsOf | None = None) -> np.ndarray:
-        """The scaled middle ``M`` of the sandwich ``B M B`` for scores ``X * e`` (n, k), with the
-        kind's small-sample factors (the homoskedastic kind has none: see :meth:`matrix`).
-        ``sums_of(codes)`` gives the scores' cluster sums when they are kept (default: summed here)."""
+    def meat(self, cross_of: CrossOf, n: int, *, n_params: int, absorbed_df: int, nested_df: int,
+             clusters: Sequence[np.ndarray]) -> np.ndarray:
+        """The scaled middle ``M`` of the sandwich ``B M B`` for the scores ``X * e`` of ``n`` rows, whose
+        cluster sums' cross products ``cross_of`` gives (:func:`score_crosses`, or
+        :meth:`FitPieces.score_cross`), with the kind's small-sample factors (the homoskedastic kind has
+        none: see :meth:`matrix`)."""
         raise NotImplementedError
 
     def with_matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
@@ -268,19 +470,13 @@ class _Kind:
         if isinstance(self, Iid):
             n = len(fit.e)
             return self.scaled(fit.rss, n, self.checked_df(n, n_params, absorbed_df, nested_df)) * b
-        m = self.meat(fit.scores(), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
-                      clusters=clusters, sums_of=fit.score_sums)
+        m = self.meat(fit.score_cross, len(fit.e), n_params=n_params, absorbed_df=absorbed_df, nested_df=nested_df,
+                      clusters=clusters)
         v = b @ m @ b
         v = (v + v.T) / 2
         if psd and isinstance(self, TwoWay):
             v = clip_negative(v)[0]
         return v
-
-    @staticmethod
-    def _sums(scores: np.ndarray, codes: np.ndarray, sums_of: SumsOf | None) -> tuple[np.ndarray, int]:
-        """The scores' cluster sums by ``codes`` and their number of clusters: kept ones (``sums_of``), or
-        summed here."""
-        return sums_of(codes) if sums_of is not None else cluster_sums(scores, codes)
 
     def checked_df(self, n: int, n_params: int, absorbed_df: int, nested_df: int) -> int:
         """:meth:`residual_df`, which must be positive."""
@@ -311,12 +507,10 @@ class Robust(_Kind):
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        he = fit.h * fit.e
-        return CovarianceOutcome(self.scaled(float(he @ he), n, dof), dof, ())
+        return CovarianceOutcome(self.scaled(fit.he_square(None)[0], n, dof), dof, ())
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
-        n = scores.shape[0]
-        return self.scaled(scores.T @ scores, n, self.checked_df(n, n_params, absorbed_df, nested_df))
+    def meat(self, cross_of, n, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
+        return self.scaled(cross_of(None)[0], n, self.checked_df(n, n_params, absorbed_df, nested_df))
 
 
 class OneWay(_Kind):
@@ -329,18 +523,17 @@ class OneWay(_Kind):
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        sums, g = fit.he_sums(clusters[0])
+        square, g = fit.he_square(clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
-        return CovarianceOutcome(self.scaled(float(sums @ sums), n, dof, g), self.inference_df(dof, [g]), (g,))
+        return CovarianceOutcome(self.scaled(square, n, dof, g), self.inference_df(dof, [g]), (g,))
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
-        n = scores.shape[0]
+    def meat(self, cross_of, n, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        u, g = self._sums(scores, clusters[0], sums_of)
+        uu, g = cross_of(clusters[0])
         if g < 2:
             raise EstimationError("the cluster variable has a single group in this sample")
-        return self.scaled(u.T @ u, n, dof, g)
+        return self.scaled(uu, n, dof, g)
 
 
 class TwoWay(_Kind):
@@ -365,15 +558,15 @@ class TwoWay(_Kind):
         return CovarianceOutcome(float(v[0, 0]), int(self.inference_df(0, counts)), (counts[0], counts[1]),
                                  bool(adjusted)), v
 
-    def meat(self, scores, *, n_params, absorbed_df, nested_df, clusters, sums_of=None):  # type: ignore[override]
-        n = scores.shape[0]
+    def meat(self, cross_of, n, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         dof = self.checked_df(n, n_params, absorbed_df, nested_df)
-        meat = np.zeros((scores.shape[1], scores.shape[1]))
+        meat = None
         for codes, sign in zip(clusters, TWO_WAY_SIGNS):
-            u, g = self._sums(scores, codes, sums_of)
+            uu, g = cross_of(codes)
             if g < 2:
                 raise EstimationError("a cluster variable has a single group in this sample")
-            meat += sign * self.scaled(u.T @ u, n, dof, g)
+            part = sign * self.scaled(uu, n, dof, g)
+            meat = part if meat is None else meat + part
         return meat
 
 

@@ -30,10 +30,10 @@ from scipy.special import stdtr, stdtrit  # t distribution; lighter to import th
 
 from . import __version__, keys
 from .absorb import Absorber, CodesOf, LevelCodes, Term, codes_on_rows, drop_singletons, float_columns, parse_absorb
-from .covariance import FitPieces, OneWay, Robust, covariance_kind
+from .covariance import FitPieces, OneWay, Robust, covariance_kind, fused_fit, score_crosses
 from .defaults import DEFAULTS
 from .errors import EstimationError
-from .estimators import POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
+from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
 from .poisson import irls, separated_rows
 from .staggered import (
     EVENT_STUDY,
@@ -321,6 +321,8 @@ class _Design:
         self._controls: dict[tuple[str, ...], tuple[list[str], list[str]]] = {}
         self._regressors: dict[tuple[str, tuple[str, ...]], _Regressors] = {}
         self._fits: dict[tuple[str, str, tuple[str, ...]], FitPieces] = {}
+        # each least-squares regression's clusterings (codes; None: each row its own), summed as it is fitted
+        self.planned: dict[tuple[str, str, tuple[str, ...]], list[np.ndarray | None]] = {}
         self._diagnostics: dict[str, _FocalDiagnostics] = {}
         self._nested: dict[tuple[tuple[str, ...], ...], int] = {}
         self._poisson: dict[tuple[str, str, tuple[str, ...]], object] = {}  # one PML fit per regression
@@ -334,6 +336,7 @@ class _Design:
         self._cohort_counts: dict[str, int] | None = None
         self._column_keys: dict[str, str] = {}
         self._centred_norms: dict[str, float] = {}  # see prepare
+        self._raw_squares: dict[str, float] = {}  # each demeaned column's sum of squares before, see usable
         self._demeaned: tuple[list[str], np.ndarray] | None = None  # the last columns demeaned together
         self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
         self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
@@ -375,7 +378,11 @@ class _Design:
                     reused += 1
             todo = missing
         if todo:
-            out = self.absorber.demean(float_columns(self.frame, todo), overwrite=True)
+            raw = float_columns(self.frame, todo)
+            with np.errstate(over="ignore", invalid="ignore"):
+                for j, c in enumerate(todo):  # (for usable(), before the columns are demeaned in place)
+                    self._raw_squares[c] = float(raw[:, j] @ raw[:, j])
+            out = self.absorber.demean(raw, overwrite=True)
             self._demeaned = (list(todo), out.values)
             assert out.centred_norms is not None
             for j, c in enumerate(todo):
@@ -387,6 +394,16 @@ class _Design:
                 if store is not None:
                     store.put(self.column_key(c), vals, self.iterations[c], self.converged[c])
         return len(todo), reused
+
+    def usable(self, column: str) -> bool:
+        """Whether a demeaned column can enter a regression: finite, and its sums of squares before and after
+        demeaning too (a column with infinite values, or values so large that their squares overflow)."""
+        demeaned = self.tilde[column]
+        with np.errstate(over="ignore", invalid="ignore"):
+            if column not in self._raw_squares:
+                raw = self.frame[column].to_numpy(dtype=float)
+                self._raw_squares[column] = float(raw @ raw)
+            return bool(np.isfinite(demeaned @ demeaned) and np.isfinite(self._raw_squares[column]))
 
     def cluster_codes(self, dim: tuple[str, ...]) -> np.ndarray:
         if dim not in self._clusters:
@@ -564,12 +581,14 @@ class _Design:
             weights[yi, 0] = 1.0
             weights[idx, 0] -= beta
             weights[idx, 1] = bread[:, 0]
-            eh = self.Z @ weights
+            # residuals and h with the sums of every covariance choice of the regression, in one pass over Z
+            eh, crosses = fused_fit(self.Z, weights, idx, self.planned.get(key, []), scores=self.keep_all)
             self._fits[key] = FitPieces(
                 estimate=float(beta[0]), e=eh[:, 0], h=eh[:, 1], rss=rss, bread=bread,
                 within_r2=1.0 - rss / tss if tss > 0 else float("nan"),
                 # cached for the regression's covariance choices; no reference back to the design
-                scores=functools.cache(lambda z=self.Z, idx=idx, e=eh[:, 0]: _scores(z, idx, e)), coefficients=beta)
+                scores=functools.cache(lambda z=self.Z, idx=idx, e=eh[:, 0]: _scores(z, idx, e)), coefficients=beta,
+                _crosses=crosses)
         return self._fits[key]
 
     def focal_diagnostics(self, focal: str) -> _FocalDiagnostics:
@@ -629,7 +648,7 @@ def _scores(z: np.ndarray, idx: list[int], e: np.ndarray) -> np.ndarray:
 
 
 #: Rows per chunk of :func:`tall_r`: a chunk's columns stay in cache while it is factorized.
-QR_CHUNK = 16384
+QR_CHUNK = 4096
 
 
 def tall_r(z: np.ndarray) -> np.ndarray:
@@ -726,13 +745,17 @@ def fit_block(
     wanted = set(evaluate) if evaluate is not None else {s.spec_id for s in specs}
     notna: dict[str, np.ndarray] = {}
     groups: dict[bytes, tuple[np.ndarray, list[int]]] = {}
+    rows_of: dict[tuple[str, ...], tuple[bytes, np.ndarray]] = {}  # by the columns a specification needs
     for i, spec in enumerate(specs):
-        mask = np.ones(len(frame), dtype=bool)
-        for col in _needed(spec, settings):
-            if col not in notna:
-                notna[col] = frame[col].notna().to_numpy()
-            mask &= notna[col]
-        key = np.packbits(mask).tobytes()  # specifications with the same rows share a design
+        needed = tuple(_needed(spec, settings))
+        if needed not in rows_of:
+            mask = np.ones(len(frame), dtype=bool)
+            for col in needed:
+                if col not in notna:
+                    notna[col] = _present(frame[col])
+                mask &= notna[col]
+            rows_of[needed] = (np.packbits(mask).tobytes(), mask)
+        key, mask = rows_of[needed]  # specifications with the same rows share a design
         groups.setdefault(key, (mask, []))[1].append(i)
 
     results: list[SpecResult | None] = [None] * len(specs)
@@ -770,8 +793,9 @@ def fit_block(
         fit.columns_reused += reused
         # a column with infinite values (or values so large that their sums overflow) cannot enter
         # a regression: its specifications fail with the reason instead of taking the design down
-        broken = {c for c in cols if not _usable(design.frame[c].to_numpy(dtype=float), design.tilde[c])}
+        broken = {c for c in cols if not design.usable(c)}
         design.prepare([c for c in cols if c not in broken])
+        design.planned = _clusterings(design, [specs[i] for i in members if specs[i].spec_id in wanted])
         # all covariance choices of one regression in a row: its residuals are computed once and
         # only one regression's n-vectors are held at a time
         for i in sorted((i for i in members if specs[i].spec_id in wanted),
@@ -797,10 +821,31 @@ def fit_block(
     return fit
 
 
-def _usable(raw: np.ndarray, demeaned: np.ndarray) -> bool:
-    """Whether a column can enter a regression: finite, and its sums of squares too."""
-    with np.errstate(over="ignore", invalid="ignore"):
-        return bool(np.isfinite(demeaned @ demeaned) and np.isfinite(raw @ raw))
+def _clusterings(design: _Design, specs: Sequence[SpecRequest]) -> dict[tuple[str, str, tuple[str, ...]],
+                                                                         list[np.ndarray | None]]:
+    """The clusterings that each least-squares regression's covariance choices sum over (see
+    :func:`fegrid.covariance.fused_fit`): a cluster variable's codes (with their intersection, two-way), or
+    ``None`` for the heteroskedasticity-robust kind's rows."""
+    plan: dict[tuple[str, str, tuple[str, ...]], dict[int, np.ndarray | None]] = {}
+    for spec in specs:
+        if spec.estimator.method != LEAST_SQUARES or spec.estimator.staggered is not None:
+            continue
+        kind = covariance_kind(spec.inference.kind)
+        wanted = plan.setdefault((spec.outcome, spec.focal, spec.controls), {})
+        if kind.dimensions:
+            codes = [design.cluster_codes(dim) for dim in spec.inference.by]
+            for c in _covariance_codes(spec, codes, design.cluster_codes):
+                wanted[id(c)] = c
+        elif kind.name != "homoskedastic":
+            wanted[-1] = None
+    return {key: list(wanted.values()) for key, wanted in plan.items()}
+
+
+def _present(column: pd.Series) -> np.ndarray:
+    """Where ``column`` holds a value (``notna``; for plain floats, where it is not NaN, without pandas)."""
+    if isinstance(column.dtype, np.dtype) and column.dtype.kind == "f":
+        return ~np.isnan(column.to_numpy())
+    return column.notna().to_numpy()
 
 
 def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> SpecResult:
@@ -929,7 +974,8 @@ def _stacked_covariance(spec: SpecRequest, absorbed_df: int, nested_df: int,
         if kind.dimensions == 0 and kind.name == "homoskedastic":
             return np.kron(resid.T @ resid / (n - m - absorbed_df), bread), df
         scores = np.column_stack([w * resid[:, [j]] for j in range(p)])
-        meat = kind.meat(scores, n_params=m, absorbed_df=absorbed_df, nested_df=nested_df, clusters=all_codes)
+        meat = kind.meat(score_crosses(scores), n, n_params=m, absorbed_df=absorbed_df, nested_df=nested_df,
+                         clusters=all_codes)
         big = np.kron(np.eye(p), bread)
         return big @ meat @ big, df
 

@@ -381,9 +381,9 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
     dummies, the groups holding whole workers, on the same: 37 separate systems). Two terms of which
     one is a categorical effect with few levels in each connected part are solved directly: at once
     when they form one dense system (after one sweep when the columns start warm, as in a Poisson
-    fit's steps), after ten sweeps when the system splits into many parts; one more sweep confirms
-    the solution, which is exact to rounding (alternating projections stop at the tolerance, up to
-    1e-8 away on these data at the default tolerance)."""
+    fit's steps), after ten sweeps when the system splits into many parts; the terms' group sums (or,
+    failing them, one more sweep) confirm the solution, which is exact to rounding (alternating
+    projections stop at the tolerance, up to 1e-8 away on these data at the default tolerance)."""
     small = "year"
     if case == "trend_and_year":
         df = _unbalanced(wage_panel[wage_panel["nr"] < 3000]).assign(t=lambda d: d["year"] - 1980.0)
@@ -517,6 +517,73 @@ def test_parts_of_one_level_take_the_zero_inverse_without_pseudo_inverses(wage_p
     exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
     assert np.max(np.abs(direct - exact)) <= 1e-11 * np.max(np.abs(x))
     assert np.max(np.abs(absorber.demean(x).values - exact)) <= 1e-9 * np.max(np.abs(x))
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("names", [["nr", "year"], ["nr", "year", "occupation"]])
+def test_the_sweeps_bound_from_group_sums_holds(weighted: bool, names: list[str], wage_panel: pd.DataFrame) -> None:
+    """Source: the triangle inequality for orthogonal projections (the derivation in
+    ``Absorber.sweep_bound``), checked on linearmodels' wage_panel less some worker-years, weighted by hours
+    or not, with two and three effects. Each term's part equals ``||v - M_k v||`` computed by applying its
+    residual maker; the bound is at least the sweep's change for random vectors, for vectors near the
+    solution and for vectors in one effect's span; a trend gives no bound."""
+    df = _unbalanced(wage_panel)
+    w = df["hours"].to_numpy(dtype=float) if weighted else None
+    absorber = Absorber(df, parse_absorb(names), weights=w)
+    ww = np.ones(len(df)) if w is None else w
+    rng = np.random.default_rng(11)
+    solution = absorber.demean(df[["lwage", "union"]].to_numpy(dtype=float)).values
+    worker_effects = rng.normal(size=df["nr"].nunique())[pd.factorize(df["nr"])[0]]
+    vectors = [rng.normal(size=len(df)), df["lwage"].to_numpy(dtype=float), worker_effects,
+               solution[:, 0] + 1e-9 * rng.normal(size=len(df)), solution[:, 1]]
+    for v in vectors:
+        parts = [float(np.sqrt(np.sum(ww * (v - p.apply(v[:, None])[:, 0]) ** 2))) for p in absorber._projections]
+        last = len(parts) - 1
+        explicit = sum(2.0 ** (last - k) * a for k, a in enumerate(parts))
+        bound = absorber.sweep_bound(v)
+        assert bound == pytest.approx(explicit, rel=1e-9, abs=1e-12)
+        moved = v - absorber._sweep(v[:, None])[:, 0]
+        assert float(np.sqrt(np.sum(ww * moved**2))) <= bound * (1 + 1e-12) + 1e-15
+    trend = Absorber(df.assign(t=df["year"] - 1980.0), (TrendTerm("nr"), EffectTerm(("year",))), time="t")
+    assert trend.sweep_bound(vectors[0]) is None
+
+
+def test_a_direct_solution_confirmed_by_group_sums_needs_no_sweep(jobtraining: pd.DataFrame, monkeypatch) -> None:
+    """Source: numpy least squares on explicit firm and year dummies (linearmodels' jobtraining, unbalanced
+    once missing scrap rates are dropped). At the default tolerance the direct solution's group sums
+    confirm it: no sweep is applied, one iteration is counted, and the residuals are the dummies' to
+    rounding."""
+    df = jobtraining.dropna(subset=["lscrap"])
+    absorber = Absorber(df, parse_absorb(["fcode", "year"]))
+    sweeps = []
+    original = Absorber._sweep
+    monkeypatch.setattr(Absorber, "_sweep", lambda self, x: sweeps.append(1) or original(self, x))
+    x = df[["lscrap", "grant", "employ"]].fillna(0.0).to_numpy(dtype=float)
+    out = absorber.demean(x)
+    assert absorber._direct is not None and not sweeps
+    assert np.all(out.iterations == 1) and np.all(out.converged)
+    d = np.hstack([pd.get_dummies(df["fcode"]).to_numpy(dtype=float), pd.get_dummies(df["year"]).to_numpy(dtype=float)])
+    exact = x - d @ np.linalg.lstsq(d, x, rcond=None)[0]
+    assert np.max(np.abs(out.values - exact)) <= 1e-11 * np.max(np.abs(x))
+
+
+def test_a_design_on_every_row_leaves_the_callers_frame_as_it_was(wage_panel: pd.DataFrame) -> None:
+    """Source: linearmodels' wage_panel, no value missing: the design reads the caller's rows without a copy
+    and leaves them unchanged; with a missing value in one column, that column's specifications take
+    their own rows and the others all rows (their results are those on the complete frame, to rounding: they
+    no longer share a design with the column)."""
+    rows = wage_panel.sort_values(["nr", "year"]).reset_index(drop=True)
+    before = rows.copy()
+    specs = [SpecRequest(f"s{c}", "lwage", "union", controls, Inference("clustered", (("nr",),)))
+             for c, controls in enumerate([(), ("hours",)])]
+    settings = BlockSettings(absorb=parse_absorb(["nr", "year"]))
+    complete = fit_block(rows, settings, specs)
+    assert rows.equals(before) and [r.n_obs for r in complete.results] == [len(rows)] * 2
+    gap = rows.assign(hours=rows["hours"].where(rows.index != 7))
+    partial = fit_block(gap, settings, specs)
+    assert partial.results[0].n_obs == len(rows) and partial.results[1].n_obs < len(rows)
+    assert partial.results[0].estimate == pytest.approx(complete.results[0].estimate, rel=1e-12)  # (another
+    assert partial.results[0].std_error == pytest.approx(complete.results[0].std_error, rel=1e-12)  # design)
 
 
 def test_a_reweighted_absorber_jumps_at_once_when_it_inherits_the_layout(wage_panel: pd.DataFrame) -> None:

@@ -876,6 +876,22 @@ class Absorber:
             x = proj.apply(x)
         return x
 
+    def sweep_bound(self, v: np.ndarray) -> float | None:
+        """An upper bound of the weighted norm of ``v - sweep(v)``, from each term's group sums of ``v``
+        alone (no projection applied): with ``a_k = ||v - M_k v||`` for the terms' residual makers ``M_k``
+        in the sweep's order (orthogonal projections in the weighted inner product, so that ``a_k`` is
+        the norm of ``v``'s group means, ``sqrt(sum_g S_g^2 / W_g)``), the sweep ``M_K ... M_1`` moves
+        ``v`` by at most ``sum_k 2^(K-k) a_k`` (by the triangle inequality, step by step). ``None`` when a
+        term has slopes (trends)."""
+        bound = 0.0
+        last = len(self._projections) - 1
+        for k, proj in enumerate(self._projections):
+            if proj.slope is not None:
+                return None
+            sums = proj._group_sums(v)
+            bound += 2.0 ** (last - k) * float(np.sqrt(np.dot(sums * sums, proj.inv_wsum)))
+        return bound
+
     def demean_cells(self, x: np.ndarray) -> DemeanOutcome | None:
         """:meth:`demean` of columns in which rows of groups alike hold the same values, on a table of cells.
 
@@ -937,7 +953,9 @@ class Absorber:
         products), which minimises the distance to the solution along the sweep's direction. Columns
         not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps (none when the
         absorber was :meth:`reweighted` from one that built the direct solver) jump to the direct
-        solution of two terms (:class:`_TwoTerms`) when it applies; the next sweep confirms it.
+        solution of two terms (:class:`_TwoTerms`) when it applies; its terms' group sums confirm it
+        (:meth:`sweep_bound`: the sweep could not move it beyond the tolerance), or failing them the next
+        sweep.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
         fit starts from the previous step's): at least one sweep comes before the jump, since it may
         already confirm them. ``overwrite`` lets the result take the place of ``x`` when it is a float
@@ -978,10 +996,17 @@ class Absorber:
             scale = norms[j] or 1.0
             for it in range(1, self.max_iterations + 1):
                 if it == jump and self._direct is not None:
-                    # slow to converge: jump to the direct solution, which the next sweep confirms. It
-                    # projects the column as it came (still in x): the same solution as from where the
-                    # iterations left it, without the rounding their extrapolated steps accumulate
+                    # slow to converge: jump to the direct solution, which its group sums (or the next
+                    # sweep) confirm. It projects the column as it came (still in x): the same solution as
+                    # from where the iterations left it, without the rounding their extrapolated steps
+                    # accumulate
                     cur = self._direct.apply(x[:, j: j + 1])[:, 0]
+                    bound = self.sweep_bound(cur)
+                    if bound is not None and bound <= self.tolerance * scale:  # confirmed without the sweep
+                        x[:, j] = cur
+                        iterations[j] = it
+                        converged[j] = True
+                        break
                 tx = self._sweep(cur[:, None])[:, 0]
                 d = cur - tx
                 dd = wdot(d, d)

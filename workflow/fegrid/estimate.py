@@ -339,7 +339,7 @@ class _Design:
         self._raw_squares: dict[str, float] = {}  # each demeaned column's sum of squares before, see usable
         self._demeaned: tuple[list[str], np.ndarray] | None = None  # the last columns demeaned together
         self._outcomes: dict[str, tuple[float, float]] = {}  # mean and sd of each outcome
-        self.checks: dict[tuple[object, ...], tuple[list[str], float, int]] = {}  # see _cluster_checks
+        self.checks: dict[tuple[object, ...], Any] = {}  # see _cluster_checks
         self.positions = np.arange(len(frame))  # the rows' positions in the frame given to fit_block
         self.influence: dict[str, tuple[np.ndarray, np.ndarray]] | None = None  # see fit_block(influence=True)
 
@@ -614,7 +614,8 @@ class _Design:
         return _FocalDiagnostics(
             sd=float(np.std(x, ddof=1)) if n > 1 else float("nan"),
             sd_within=float(np.sqrt(xt @ xt / (n - 1))) if n > 1 else float("nan"),
-            variance_share=float(np.sum(self.w * xt * xt)) / raw**2 if raw > 0 else 0.0,
+            variance_share=(float(xt @ xt if self.settings.weights is None else np.sum(self.w * xt * xt)) / raw**2
+                            if raw > 0 else 0.0),
             units_with_variation=with_variation)
 
 
@@ -743,18 +744,21 @@ def fit_block(
         One :class:`SpecResult` per evaluated specification, in the order given.
     """
     wanted = set(evaluate) if evaluate is not None else {s.spec_id for s in specs}
-    notna: dict[str, np.ndarray] = {}
+    notna: dict[str, np.ndarray | None] = {}  # None: a value in every row
+    every_row = np.ones(len(frame), dtype=bool)
     groups: dict[bytes, tuple[np.ndarray, list[int]]] = {}
     rows_of: dict[tuple[str, ...], tuple[bytes, np.ndarray]] = {}  # by the columns a specification needs
     for i, spec in enumerate(specs):
         needed = tuple(_needed(spec, settings))
         if needed not in rows_of:
-            mask = np.ones(len(frame), dtype=bool)
+            mask = None
             for col in needed:
                 if col not in notna:
                     notna[col] = _present(frame[col])
-                mask &= notna[col]
-            rows_of[needed] = (np.packbits(mask).tobytes(), mask)
+                if notna[col] is not None:
+                    mask = notna[col].copy() if mask is None else np.logical_and(mask, notna[col], out=mask)
+            # (the key of every row is b"": packed bits of one or more rows are never empty)
+            rows_of[needed] = (b"", every_row) if mask is None else (np.packbits(mask).tobytes(), mask)
         key, mask = rows_of[needed]  # specifications with the same rows share a design
         groups.setdefault(key, (mask, []))[1].append(i)
 
@@ -764,12 +768,12 @@ def fit_block(
     for mask, members in groups.values():
         if not any(specs[i].spec_id in wanted for i in members):
             continue
-        sub = frame.loc[mask]
-        positions = np.flatnonzero(mask)
+        sub = frame if mask is every_row else frame.loc[mask]  # (designs read their rows, never write them)
+        positions = np.arange(len(frame)) if mask is every_row else np.flatnonzero(mask)
         keep = np.ones(len(sub), dtype=bool)
         if settings.absorb and not settings.keep_singletons:
             keep = drop_singletons(sub, settings.absorb, codes_of=level_codes.on_rows(positions))
-        rows = sub.loc[keep]
+        rows = sub if keep.all() else sub.loc[keep]
         if len(rows) == 0:
             for i in (i for i in members if specs[i].spec_id in wanted):
                 results[i] = SpecResult(specs[i].spec_id, STATUS_FAILED,
@@ -841,11 +845,15 @@ def _clusterings(design: _Design, specs: Sequence[SpecRequest]) -> dict[tuple[st
     return {key: list(wanted.values()) for key, wanted in plan.items()}
 
 
-def _present(column: pd.Series) -> np.ndarray:
-    """Where ``column`` holds a value (``notna``; for plain floats, where it is not NaN, without pandas)."""
+def _present(column: pd.Series) -> np.ndarray | None:
+    """Where ``column`` holds a value (``notna``; for plain floats, where it equals itself, not NaN, without
+    pandas), or ``None`` when it holds one in every row."""
     if isinstance(column.dtype, np.dtype) and column.dtype.kind == "f":
-        return ~np.isnan(column.to_numpy())
-    return column.notna().to_numpy()
+        values = column.to_numpy()
+        present = np.equal(values, values)
+    else:
+        present = column.notna().to_numpy()
+    return None if present.all() else present
 
 
 def _base_result(design: _Design, spec: SpecRequest, dropped: list[str]) -> SpecResult:
@@ -1479,21 +1487,27 @@ def _cluster_checks(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, co
     cache = {} if cache is None else cache
     key = (spec.focal, spec.inference.by)
     if key not in cache:
-        cache[key] = _cluster_profile(spec, frame, s, codes)
+        cache[key] = _cluster_profile(spec, frame, s, codes, cache)
     notes, share, treated = cache[key]
     return _updated(result, inference_warning="; ".join(notes), largest_cluster_share=share,
                     treated_clusters=treated)
 
 
-def _cluster_profile(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings,
-                     codes: Sequence[np.ndarray]) -> tuple[list[str], float, int]:
+def _cluster_profile(spec: SpecRequest, frame: pd.DataFrame, s: BlockSettings, codes: Sequence[np.ndarray],
+                     cache: dict[tuple[object, ...], Any]) -> tuple[list[str], float, int]:
+    """The warnings, the largest cluster's share and the fewest treated clusters of one focal regressor and
+    clustering; the focal values and the cluster sizes are kept in ``cache`` for the other clusterings."""
     notes = []
     shares, treated = [], []
-    x = frame[spec.focal].to_numpy(dtype=float)
-    binary = bool(np.isin(x, (0.0, 1.0)).all())
+    if ("focal", spec.focal) not in cache:
+        x = frame[spec.focal].to_numpy(dtype=float)
+        cache["focal", spec.focal] = (x, bool(np.isin(x, (0.0, 1.0)).all()))
+    x, binary = cache["focal", spec.focal]
     for dim, c in zip(spec.inference.by, codes):
         name = " x ".join(dim)
-        sizes = np.bincount(c)
+        if ("sizes", dim) not in cache:
+            cache["sizes", dim] = np.bincount(c)
+        sizes = cache["sizes", dim]
         g = len(sizes)
         share = float(sizes.max() / sizes.sum())
         shares.append(share)

@@ -262,7 +262,7 @@ class _Clustering:
     """One clustering's sums of a regression's scores and ``h e``, taken chunk by chunk in :func:`fused_fit`."""
 
     def __init__(self, codes: np.ndarray | None, n: int, width: int, runs: Callable[[np.ndarray], _RunSums]) -> None:
-        self.codes, self.width = codes, width
+        self.codes = codes
         layout = _layout(codes) if codes is not None else None
         self.n_groups = n if layout is None else layout.n_groups
         self.runs: _RunSums | None = None
@@ -390,6 +390,8 @@ def score_crosses(scores: np.ndarray) -> CrossOf:
         u, g = cluster_sums(scores, codes)
         return u.T @ u, g
     return cross
+
+
 #: A number, or an array of them (one per draw)
 Num = Any
 

@@ -16,9 +16,10 @@ by alternating projections (Gaure 2013) with the line-search acceleration of Gea
 smaller is a categorical effect with few levels in each connected part of the two (unit and period
 effects, the commonest case, or unit and region-by-period effects), the iterations jump to the
 direct solution: the large term's residuals, less their projection on the small term's dummies made
-orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; one more sweep
-confirms the tolerance. One dense system jumps at once, many parts after ten sweeps (at once when
-their layout is at hand: the later steps of an iteratively reweighted fit).
+orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; the terms' group sums
+confirm the tolerance (a bound on what one more sweep could change), or failing them one more sweep.
+One dense system jumps at once, many parts after ten sweeps (at once when their layout is at hand:
+the later steps of an iteratively reweighted fit).
 """
 
 from __future__ import annotations

@@ -102,6 +102,27 @@ def test_bad_data_gives_one_paragraph_and_leaves_results(case: str, fitted: Path
     assert (fitted / "reports/tiny/ledger.csv").read_bytes() == ledger
 
 
+@pytest.mark.parametrize("argv", [["run", "grid.yaml"], ["run", "grid.yaml", "-c", "2", "--verbose"],
+                                  ["run", "--config", "grid.yaml", "all"], ["demo", "all"]])
+def test_arguments_without_the_separator_are_refused_before_anything_runs(argv: list[str], fitted: Path, capsys,
+                                                                          monkeypatch) -> None:
+    """A config file named without --config (and every option after it) would have gone to Snakemake, which
+    failed silently under fegrid's progress lines: it is refused with one paragraph naming --config and '--',
+    exit 2, and the earlier results are untouched. Arguments after '--' still reach Snakemake."""
+    from fegrid import cli
+
+    ledger = (fitted / "reports/tiny/ledger.csv").read_bytes()
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    word = argv[3] if argv[1] == "--config" else argv[1]
+    assert "Traceback" not in err and f"'{word}' is not an argument of 'fegrid {argv[0]}'" in err
+    assert "after '--'" in err and ("--config grid.yaml" in err) == (word == "grid.yaml")
+    assert (fitted / "reports/tiny/ledger.csv").read_bytes() == ledger
+    seen = []
+    monkeypatch.setitem(cli.COMMANDS, "run", lambda args: seen.append(args.snakemake_args) or 0)
+    assert main(["run", "--config", "grid.yaml", "--", "--dry-run"]) == 0 and seen == [["--dry-run"]]
+
+
 def test_unparseable_data_file(fitted: Path, capsys) -> None:
     (fitted / "grunfeld.parquet").write_bytes(b"this is not parquet")
     bad = fitted / "bad.yaml"

@@ -463,8 +463,16 @@ def _show_deprecations() -> None:
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     _show_deprecations()
-    if getattr(args, "snakemake_args", None) and args.snakemake_args[0] == "--":
-        args.snakemake_args = args.snakemake_args[1:]
+    extra = getattr(args, "snakemake_args", None)
+    if extra and extra[0] != "--":  # (a config file named without --config would go to Snakemake, with what follows)
+        hint = f" The grid's YAML file goes after --config (fegrid run --config {extra[0]})." if (
+            args.command == "run" and extra[0].endswith((".yaml", ".yml"))) else ""
+        print(f"fegrid: error: '{extra[0]}' is not an argument of 'fegrid {args.command}'.{hint} Options of fegrid "
+              f"come first, and arguments meant for Snakemake after '--' (fegrid {args.command} -c 2 -- --dry-run). "
+              "Nothing was run.", file=sys.stderr)
+        return 2
+    if extra:
+        args.snakemake_args = extra[1:]
     try:
         return COMMANDS[args.command](args)
     except BrokenPipeError:

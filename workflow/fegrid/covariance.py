@@ -459,6 +459,11 @@ class _Kind:
         none: see :meth:`matrix`)."""
         raise NotImplementedError
 
+    def summed_over(self, clusters: Sequence[np.ndarray]) -> list[np.ndarray | None]:
+        """The clusterings whose sums the kind takes (:func:`fused_fit` takes them ahead): the cluster variables'
+        codes in ``clusters`` (with their intersection, two-way), or ``None`` for each row its own cluster."""
+        return list(clusters) if self.dimensions else [None]
+
     def with_matrix(self, fit: FitPieces, *, n_params: int, absorbed_df: int, nested_df: int,
                     clusters: Sequence[np.ndarray]) -> tuple[CovarianceOutcome, np.ndarray]:
         """The focal coefficient's outcome and the whole matrix, computed together."""
@@ -493,6 +498,9 @@ class Iid(_Kind):
 
     name = "homoskedastic"
     canonical_name = "iid"
+
+    def summed_over(self, clusters: Sequence[np.ndarray]) -> list[np.ndarray | None]:
+        return []  # (the residuals' sum of squares alone)
 
     def __call__(self, fit, *, n_params, absorbed_df, nested_df, clusters):  # type: ignore[override]
         n = len(fit.e)

@@ -827,21 +827,16 @@ def fit_block(
 
 def _clusterings(design: _Design, specs: Sequence[SpecRequest]) -> dict[tuple[str, str, tuple[str, ...]],
                                                                          list[np.ndarray | None]]:
-    """The clusterings that each least-squares regression's covariance choices sum over (see
-    :func:`fegrid.covariance.fused_fit`): a cluster variable's codes (with their intersection, two-way), or
-    ``None`` for the heteroskedasticity-robust kind's rows."""
+    """The clusterings that each least-squares regression's covariance choices sum over (each kind's
+    ``summed_over``; see :func:`fegrid.covariance.fused_fit`)."""
     plan: dict[tuple[str, str, tuple[str, ...]], dict[int, np.ndarray | None]] = {}
     for spec in specs:
         if spec.estimator.method != LEAST_SQUARES or spec.estimator.staggered is not None:
             continue
-        kind = covariance_kind(spec.inference.kind)
+        codes = [design.cluster_codes(dim) for dim in spec.inference.by]
         wanted = plan.setdefault((spec.outcome, spec.focal, spec.controls), {})
-        if kind.dimensions:
-            codes = [design.cluster_codes(dim) for dim in spec.inference.by]
-            for c in _covariance_codes(spec, codes, design.cluster_codes):
-                wanted[id(c)] = c
-        elif kind.name != "homoskedastic":
-            wanted[-1] = None
+        for c in covariance_kind(spec.inference.kind).summed_over(_covariance_codes(spec, codes, design.cluster_codes)):
+            wanted[-1 if c is None else id(c)] = c
     return {key: list(wanted.values()) for key, wanted in plan.items()}
 
 

@@ -17,6 +17,7 @@ from fegrid.absorb import (
     Absorber,
     EffectTerm,
     TrendTerm,
+    _TwoTerms,
     drop_singletons,
     factorize,
     parse_absorb,
@@ -380,8 +381,8 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
     year dummies on linearmodels' wage_panel less some worker-years; worker dummies and group-by-year
     dummies, the groups holding whole workers, on the same: 37 separate systems). Two terms of which
     one is a categorical effect with few levels in each connected part are solved directly: at once
-    when they form one dense system (after one sweep when the columns start warm, as in a Poisson
-    fit's steps), after ten sweeps when the system splits into many parts; the terms' group sums (or,
+    when they form one dense system (when the columns start warm, as in a Poisson fit's steps, after
+    their group sums), after ten sweeps when the system splits into many parts; the terms' group sums (or,
     failing them, one more sweep) confirm the solution, which is exact to rounding (alternating
     projections stop at the tolerance, up to 1e-8 away on these data at the default tolerance)."""
     small = "year"
@@ -414,8 +415,8 @@ def test_two_terms_are_projected_directly_to_the_dummy_regression(case: str, wag
     assert np.all(out.iterations <= after + 1) and out.iterations.max() == after + 1
     assert np.all(out.converged)
     assert np.max(np.abs(out.values - exact)) <= 1e-11 * np.max(np.abs(x))
-    warm = absorber.demean(x, warm=True)  # a warm start sweeps at least once before the jump
-    assert warm.iterations.max() == max(after, 1) + 1 and np.all(warm.converged)
+    warm = absorber.demean(x, warm=True)  # a warm start away from its solution jumps when a cold one does
+    assert warm.iterations.max() == after + 1 and np.all(warm.converged)
     assert np.max(np.abs(warm.values - exact)) <= 1e-11 * np.max(np.abs(x))
     for j in range(len(cols)):  # a column alone gives the same bytes (see the test above)
         assert np.array_equal(absorber.demean(x[:, [j]]).values[:, 0], out.values[:, j])
@@ -586,30 +587,39 @@ def test_a_design_on_every_row_leaves_the_callers_frame_as_it_was(wage_panel: pd
     assert partial.results[0].std_error == pytest.approx(complete.results[0].std_error, rel=1e-12)  # design)
 
 
-def test_a_reweighted_absorber_jumps_at_once_when_it_inherits_the_layout(wage_panel: pd.DataFrame) -> None:
+def test_a_reweighted_absorber_jumps_at_once_and_a_warm_column_at_its_solution_is_kept(wage_panel: pd.DataFrame,
+                                                                                       monkeypatch) -> None:
     """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel
     less some worker-years: 37 separate systems). A fresh absorber sweeps ten times before the direct
-    solution; one reweighted from it (a Poisson step) inherits the layout and jumps after its first
-    sweep (warm), with the same exact solution; reweighted from an absorber that never built the layout,
-    it sweeps ten times as a fresh one does. The jump projects the column as it came, not where the
-    sweeps left it: their extrapolated steps accumulate rounding that no projection removes (annual
-    hours, weighted, at tolerance 1e-14: 7.6e-5 off after a jump from the tenth sweep, 1.5e-11 now)."""
+    solution; one reweighted from another (a Poisson step), whether or not that one built the layout,
+    jumps at once (one iteration, no sweep) to the same exact solution; a warm column already at its
+    solution is confirmed by its group sums as it is (no sweep, no jump). The jump projects the column as
+    it came, not where sweeps left it: their extrapolated steps accumulate rounding that no projection
+    removes (annual hours, weighted, at tolerance 1e-14: 7.6e-5 off after a jump from the tenth sweep)."""
     df = _unbalanced(wage_panel).assign(group_year=lambda d: d["nr"] % 37 * 10000 + d["year"])
     terms = parse_absorb(["nr", "group_year"])
     x = df[["lwage", "union", "hours"]].to_numpy(dtype=float)
     w = 1.0 + (df["nr"] % 5).to_numpy(dtype=float) / 4
     fresh = Absorber(df, terms, tolerance=1e-14)
-    never = fresh.reweighted(w)
+    never = Absorber(df, terms, tolerance=1e-14).reweighted(w)  # from an absorber that never built the layout
     assert fresh.demean(x).iterations.max() == DIRECT_AFTER + 1
     inherited = fresh.reweighted(w)
-    warm, cold = inherited.demean(x, warm=True), never.demean(x, warm=True)
-    assert warm.iterations.max() == 2 and cold.iterations.max() == DIRECT_AFTER + 1
     d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("nr", "group_year")])
     sw = np.sqrt(w)[:, None]
     exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
-    for got in (warm, cold):
-        assert np.all(got.converged)
+    calls: list[str] = []
+    sweep, jump = Absorber._sweep, _TwoTerms.apply
+    monkeypatch.setattr(Absorber, "_sweep", lambda self, v: calls.append("sweep") or sweep(self, v))
+    monkeypatch.setattr(_TwoTerms, "apply", lambda self, v: calls.append("jump") or jump(self, v))
+    for absorber in (inherited, never):
+        calls.clear()
+        got = absorber.demean(x, warm=True)
+        assert calls == ["jump"] * 3 and np.all(got.iterations == 1) and np.all(got.converged)
         assert np.max(np.abs(got.values - exact)) <= 1e-11 * np.max(np.abs(x))
+        calls.clear()
+        kept = absorber.demean(got.values, warm=True)  # at its solution: its group sums confirm it
+        assert calls == [] and np.all(kept.iterations == 1) and np.all(kept.converged)
+        assert np.max(np.abs(kept.values - got.values)) <= 1e-14 * np.max(np.abs(x))
 
 
 # ---- shortcuts of the engine's fast paths give the plain computation's numbers ------------------

@@ -395,11 +395,11 @@ DENSE_CELLS = 4_000_000
 #: Sweeps of alternating projections before a column still moving jumps to the direct solution: none
 #: when the two terms form one system held densely (a column fresh from the data is never demeaned by
 #: one sweep, and the direct solution costs about as much as one; a warm start, see
-#: :meth:`Absorber.demean`, sweeps once first), ten when it splits into many parts (building their
-#: layout costs about as much as ten sweeps; unbalanced panels and unit trends can take hundreds), none
-#: for many parts whose layout is at hand (an absorber :meth:`~Absorber.reweighted` from one that built it:
-#: the systems' new entries and inverses cost a few sweeps, and columns that needed the jump under the
-#: last weights rarely converge in ten under the next).
+#: :meth:`Absorber.demean`, is first checked by its group sums), ten when it splits into many parts
+#: (building their layout costs about as much as ten sweeps; unbalanced panels and unit trends can take
+#: hundreds), none for an absorber :meth:`~Absorber.reweighted` from another (a step of an iteratively
+#: reweighted fit: the layout, built once, serves every later step, whose systems' new entries and
+#: inverses cost a few sweeps; columns rarely converge in ten sweeps under new weights).
 DIRECT_AFTER_DENSE = 0
 DIRECT_AFTER = 10
 
@@ -758,7 +758,7 @@ class Absorber:
         self._slopes = slopes
         self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
-        self._layout_inherited = False  # whether the absorber it was reweighted from built the direct solver
+        self._reweighting = False  # reweighted from another absorber: its columns jump at once (see DIRECT_AFTER)
 
     def _project(self) -> list[_Projection]:
         if not self.terms:
@@ -771,7 +771,7 @@ class Absorber:
         depend on the weights, are reused; everything else is computed as a new absorber would."""
         new = copy.copy(self)
         new.w = np.asarray(weights, dtype=float)
-        new._layout_inherited = "_direct_layout" in self.__dict__  # its columns jump at once (see DIRECT_AFTER)
+        new._reweighting = True  # its columns jump at once (see DIRECT_AFTER); the layout, once built, is kept
         for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
             new.__dict__.pop(weighted, None)
         new._ranks = {}  # a trend's slopes count the groups where time varies with weight
@@ -953,13 +953,13 @@ class Absorber:
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction. Columns
         not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps (none when the
-        absorber was :meth:`reweighted` from one that built the direct solver) jump to the direct
-        solution of two terms (:class:`_TwoTerms`) when it applies; its terms' group sums confirm it
-        (:meth:`sweep_bound`: the sweep could not move it beyond the tolerance), or failing them the next
-        sweep.
+        absorber was :meth:`reweighted`) jump to the direct solution of two terms (:class:`_TwoTerms`) when
+        it applies; its terms' group sums confirm it (:meth:`sweep_bound`: the sweep could not move it
+        beyond the tolerance), or failing them the next sweep.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
-        fit starts from the previous step's): at least one sweep comes before the jump, since it may
-        already confirm them. ``overwrite`` lets the result take the place of ``x`` when it is a float
+        fit starts from the previous step's): a column about to jump at once is first checked by its group
+        sums, which may confirm it as it is (a sweep first would seldom confirm it, and costs as much as the
+        jump). ``overwrite`` lets the result take the place of ``x`` when it is a float
         array in Fortran order that the caller no longer needs (no copy of the columns).
         """
         x = np.asarray(x, dtype=float, order="F") if overwrite else np.array(x, dtype=float, order="F")
@@ -988,8 +988,7 @@ class Absorber:
 
         jump = 0
         if self._direct_setup is not None:  # (decided before any column: each column's bytes are its own)
-            after = DIRECT_AFTER_DENSE if self._layout_inherited else self._direct_setup[2]
-            jump = max(after, 1 if warm else 0) + 1
+            jump = (DIRECT_AFTER_DENSE if self._reweighting else self._direct_setup[2]) + 1
         converged[:] = False
         # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
         for j in range(k):
@@ -997,6 +996,12 @@ class Absorber:
             scale = norms[j] or 1.0
             for it in range(1, self.max_iterations + 1):
                 if it == jump and self._direct is not None:
+                    if warm and it == 1:  # near its solution already: its group sums may confirm it as it is
+                        bound = self.sweep_bound(cur)
+                        if bound is not None and bound <= self.tolerance * scale:
+                            x[:, j] = cur
+                            converged[j] = True
+                            break
                     # slow to converge: jump to the direct solution, which its group sums (or the next
                     # sweep) confirm. It projects the column as it came (still in x): the same solution as
                     # from where the iterations left it, without the rounding their extrapolated steps

@@ -180,3 +180,32 @@ def test_the_terminal_summary_prints_blanks_not_nan(tiny_project: Path, monkeypa
     assert main(["summary", "--config", "grid.yaml"]) == 0
     out = capsys.readouterr().out
     assert "capital" in out and "nan" not in out
+
+
+def test_lines_stop_quietly_when_their_reader_goes_away(tmp_path: Path) -> None:
+    """A closed pipe (`fegrid run | head`): the first failed write ends the lines without an error, and no
+    later line is attempted; the run they describe is not the monitor's to stop."""
+
+    class ClosedPipe(io.StringIO):
+        writes = 0
+
+        def write(self, text: str) -> int:
+            ClosedPipe.writes += 1
+            raise BrokenPipeError(32, "Broken pipe")
+
+    now = [1000.0]
+    fits = [tmp_path / f"fits/{i}.parquet" for i in range(2)]
+    ledger = tmp_path / "ledger.csv"
+    monitor = RunMonitor([Stage("fits", fits, "specifications", [10, 20], fresh_only=True),
+                          Stage("ledger", [ledger], "specifications", [30])], out=ClosedPipe(),
+                         clock=lambda: now[0])
+    _touch(fits[0], 1001.0)
+    now[0] = 1002.0
+    monitor.update()  # the first line: its write fails
+    _touch(fits[1], 1003.0)
+    _touch(ledger, 1003.0)
+    now[0] = 1004.0
+    monitor.update()
+    with monitor:
+        pass
+    assert ClosedPipe.writes == 1

@@ -4,7 +4,8 @@ Data: statsmodels' Grunfeld investment data (see conftest.py). Checked: the ledg
 content, a rerun that fits nothing (also after the data file is touched or rewritten with the same
 bytes), an added clustering choice that only adds specifications and demeans nothing again, a run
 killed with SIGKILL that resumes to a byte-identical ledger, parallel and serial runs giving the
-same bytes, and ``snakemake --lint``.
+same bytes, a run whose progress lines' reader goes away, a failure on fegrid's side whose put-back
+results the next run redoes, and ``snakemake --lint``.
 """
 
 from __future__ import annotations
@@ -331,3 +332,66 @@ def test_a_late_failure_puts_the_previous_results_back_as_a_set(tiny_project: Pa
     assert again.returncode == 0, again.stderr[-3000:]
     assert len(pd.read_csv(run / "ledger.csv")) == 48
     assert not (run / "figures" / "curve-invest--gone.png").exists() and not (run / ".previous").exists()
+
+
+def _add_year_clustering(folder: Path) -> None:
+    firm = "  firm: {kind: clustered, by: firm}"
+    text = (folder / "grid.yaml").read_text().replace(firm, firm + "\n  year: {kind: clustered, by: year}")
+    (folder / "grid.yaml").write_text(text)
+
+
+def test_a_reader_that_goes_away_does_not_stop_the_run(tiny_project: Path, fegrid_env) -> None:
+    """`fegrid run | head -n 1`: the progress lines' reader goes away after the first line. The run goes on
+    and publishes the changed grid's ledger, exits 0, and shows no traceback (before: the progress thread
+    died with a traceback, the run's new results were replaced by the previous run's, and Snakemake's
+    records called them up to date, so the next run did nothing either)."""
+    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    ledger = tiny_project / "reports/tiny/ledger.csv"
+    assert len(pd.read_csv(ledger)) == 32
+    _add_year_clustering(tiny_project)
+    proc = subprocess.Popen([sys.executable, "-m", "fegrid.cli", "run", "--config", "grid.yaml", "-c", "1"],
+                            cwd=tiny_project, env=fegrid_env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    assert proc.stdout is not None and proc.stdout.readline().startswith("fegrid: run 'tiny'")
+    proc.stdout.close()
+    _, err = proc.communicate(timeout=600)
+    assert proc.returncode == 0 and "Traceback" not in err and "Error" not in err, err[-3000:]
+    assert len(pd.read_csv(ledger)) == 48
+    again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")
+    assert again.returncode == 0 and "0 to fit" in again.stdout and "(48 specifications)" in again.stdout
+
+
+def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(tiny_project: Path, fegrid_env,
+                                                                             monkeypatch) -> None:
+    """fegrid's own side fails while Snakemake works (a progress monitor that breaks stands in for any
+    error of fegrid's; the jobs are done by then): the previous run's files are put back, byte for byte,
+    and the next run rebuilds them for the changed grid instead of finding Snakemake's records of the
+    failed run's files and calling the put-back ones up to date (before: it ran nothing and left the
+    previous grid's 32-row ledger under a 48-specification config)."""
+    import fegrid.cli as cli
+
+    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    run = tiny_project / "reports/tiny"
+    before = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+              and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    _add_year_clustering(tiny_project)
+
+    class Broken(cli.RunMonitor):
+        def __exit__(self, *exc: object) -> None:
+            super().__exit__(*exc)
+            raise RuntimeError("the progress monitor broke")
+
+    monkeypatch.chdir(tiny_project)
+    monkeypatch.setenv("PATH", fegrid_env["PATH"])
+    monkeypatch.setattr(cli, "RunMonitor", Broken)
+    with pytest.raises(RuntimeError, match="monitor broke"):
+        cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
+    after = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+             and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
+    assert after == before
+    monkeypatch.undo()
+    again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert len(pd.read_csv(run / "ledger.csv")) == 48

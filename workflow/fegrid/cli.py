@@ -193,7 +193,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
             code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
                                   while_snakemake_starts)
         except BaseException:  # fegrid's side failed (Snakemake was stopped): the earlier results stay whole
-            outputs.restore_previous()
+            if outputs.restore_previous():  # and the next run redoes what this one wrote over them
+                _forget_restored(args.config, outputs.current(), plan.paths)
             raise
         if code != 0 and not args.verbose:
             _explain_failure(plan.paths, started)

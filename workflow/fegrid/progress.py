@@ -13,6 +13,7 @@ estimation method fitted and drawn in the process: what ``fegrid plan`` prints.
 
 from __future__ import annotations
 
+import os
 import sys
 import threading
 import time
@@ -74,6 +75,7 @@ class RunMonitor:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._open = ""  # the stage whose line a terminal shows unfinished
+        self._gone = False  # the reader of the lines went away
 
     def _is_written(self, path: Path) -> bool:
         try:
@@ -127,11 +129,25 @@ class RunMonitor:
     def _print(self, name: str, text: str, *, final: bool) -> None:
         if self.tty:
             prefix = "\r\033[K" if self._open == name else ("\n" if self._open else "")
-            self.out.write(f"{prefix}fegrid: {text}" + ("\n" if final else ""))
+            self._write(f"{prefix}fegrid: {text}" + ("\n" if final else ""))
             self._open = "" if final else name
         else:
-            self.out.write(f"fegrid: {text}\n")
-        self.out.flush()
+            self._write(f"fegrid: {text}\n")
+
+    def _write(self, text: str) -> None:
+        """Write and flush; once the reader has gone (a closed pipe), write nothing more: the lines are a
+        courtesy, and the run they describe goes on (its outcome is in the run folder and the exit code)."""
+        if self._gone:
+            return
+        try:
+            self.out.write(text)
+            self.out.flush()
+        except BrokenPipeError:
+            self._gone = True
+            try:  # what the stream still holds, and any later print to it, goes nowhere instead of failing
+                os.dup2(os.open(os.devnull, os.O_WRONLY), self.out.fileno())
+            except (AttributeError, OSError, ValueError):
+                pass
 
     def _loop(self) -> None:
         while not self._stop.wait(self.poll):
@@ -148,8 +164,7 @@ class RunMonitor:
             self._thread.join()
         self.update()
         if self.tty and self._open:
-            self.out.write("\n")
-            self.out.flush()
+            self._write("\n")
 
 
 @dataclass(frozen=True)

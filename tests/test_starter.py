@@ -28,7 +28,12 @@ def test_init_guesses_the_panel_and_writes_a_config_that_checks(request, tmp_pat
     assert (raw["data"]["unit"], raw["data"]["time"]) == (unit, time)
     assert raw["outcomes"][0] not in (unit, time) and raw["focal_regressors"][0] not in (unit, time)
     assert main(["check", "--config", "grid.yaml"]) == 0
-    assert "specifications" in capsys.readouterr().out
+    checked = capsys.readouterr()
+    assert "specifications" in checked.out
+    # a baseline to review: the richest effects, clustered by the unit, every row, every control
+    assert raw["baseline"]["absorb"] == "unit_time" and raw["baseline"]["sample"] == "all"
+    assert raw["baseline"]["clustering"] == "unit" and "no baseline" not in checked.err
+    assert raw["baseline"]["controls"] == "+".join(raw["control_sets"]["combinations_of"])
     # never over an existing config
     assert main(["init", "panel.parquet", "--out", "grid.yaml"]) == 2
     assert "never overwrites" in capsys.readouterr().err
@@ -45,3 +50,25 @@ def test_init_reads_monthly_dates(grunfeld: pd.DataFrame, tmp_path: Path, monkey
     raw = read_yaml(tmp_path / "g.yaml")
     assert raw["data"]["time"] == "month" and raw["data"]["time_frequency"] == "monthly"
     assert main(["check", "--config", "g.yaml"]) == 0
+
+
+def test_a_config_without_a_baseline_says_which_specification_stands_in(tiny_project: Path, monkeypatch,
+                                                                      capsys) -> None:
+    """Without a baseline the first specification by id is flagged (config/README.md): check, plan and run say
+    so, naming it and its choices, before anything is fitted; a config that names one hears nothing."""
+    from fegrid.pipeline import make_plan
+
+    monkeypatch.chdir(tiny_project)
+    assert main(["check", "--config", "grid.yaml"]) == 0
+    assert "no baseline" not in capsys.readouterr().err
+    text = "\n".join(line for line in (tiny_project / "grid.yaml").read_text().splitlines()
+                     if not line.startswith("baseline:"))
+    (tiny_project / "grid.yaml").write_text(text + "\n")
+    plan = make_plan("grid.yaml")
+    first = plan.specs[0]
+    assert plan.grid.baseline_id(plan.specs) == first.spec_id
+    for command in ("check", "plan"):
+        assert main([command, "--config", "grid.yaml"]) == 0
+        err = capsys.readouterr().err
+        assert f"names no baseline, so the first specification by id ({first.spec_id}: focal " in err
+        assert f"absorb {first.name('absorb')}" in err and "under 'baseline'" in err

@@ -76,6 +76,7 @@ def _cmd_check(args: argparse.Namespace) -> int:
     if left_out:
         print(f"left out of the grid ({len(left_out)}): " + "; ".join(left_out))
     print(f"{len(plan.specs)} specifications in {len(plan.jobs)} {_plural(len(plan.jobs), 'job')}.")
+    _note_baseline(plan)
     _caution_shared_clusters(plan)
     return 0
 
@@ -94,6 +95,7 @@ def _cmd_plan(args: argparse.Namespace) -> int:
     costs = estimate_costs(plan, frame, cores=os.cpu_count() or 1)
     print(costs.text())
     _warn_size(plan, frame, costs.cores, costs)
+    _note_baseline(plan)
     _caution_shared_clusters(plan)
     print("outputs (names for replication.exhibits): " + ", ".join(plan.report_outputs(build_pdf=True)))
     if args.list:
@@ -102,6 +104,18 @@ def _cmd_plan(args: argparse.Namespace) -> int:
                  *(n for _, n in s.names)) for s in plan.specs]
         print(tabulate(rows, headers=["spec_id", "state", *(d for d, _ in plan.specs[0].names)]))
     return 0
+
+
+def _note_baseline(plan) -> None:
+    """Say which specification stands as the baseline when the config names none (the first by id)."""
+    if plan.grid.baseline or len(plan.specs) < 2:
+        return
+    base = plan.grid.baseline_id(plan.specs)
+    first = next(s for s in plan.specs if s.spec_id == base)
+    choices = ", ".join(f"{d} {n}" for d, n in first.names if len({s.name(d) for s in plan.specs}) > 1)
+    print(f"note: the config names no baseline, so the first specification by id ({first.spec_id}: {choices}) "
+          "stands as the baseline in the ledger, summary, figures and tables; name your headline specification "
+          "under 'baseline' (one choice per dimension).", file=sys.stderr)
 
 
 def _caution_shared_clusters(plan) -> None:
@@ -171,6 +185,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     plan = make_plan(args.config, prepare=True)
     frame = load_checked(plan.grid)
     _warn_size(plan, frame, args.cores)
+    _note_baseline(plan)
     _caution_shared_clusters(plan)
 
     def while_snakemake_starts() -> RunMonitor:

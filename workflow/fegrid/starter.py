@@ -156,6 +156,18 @@ def starter_config(data_path: str, guess: PanelGuess, run_name: str) -> str:
         lines.append("  named: {none: []}")
     lines += [
         "",
+        "# The headline specification, one choice per dimension (a dimension with one choice may be left",
+        "# out; name the outcome and focal regressor here once you list several). It is flagged in the",
+        "# ledger, marked in the figures and compared in the summary and the tables. REVIEW: choose yours.",
+        "baseline:",
+        f"  absorb: {'unit_time' if t else 'unit'}",
+        "  clustering: unit",
+        "  sample: all",
+    ]
+    if controls:
+        lines.append(f"  controls: {q('+'.join(controls))}")
+    lines += [
+        "",
         "# Estimators (a grid dimension; least squares alone when left out). Uncomment to add 2SLS with",
         "# your instrument(s), or Poisson PML for a count or other non-negative outcome with zeros.",
         "# estimators:",

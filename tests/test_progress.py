@@ -171,15 +171,25 @@ def test_a_report_stage_with_few_files_gives_no_time_left(tmp_path: Path) -> Non
 
 
 def test_the_terminal_summary_prints_blanks_not_nan(tiny_project: Path, monkeypatch, capsys) -> None:
-    """statsmodels' Grunfeld: `capital` has no baseline in the tiny grid, so its baseline is blank."""
+    """statsmodels' Grunfeld: `capital` has no baseline in the tiny grid, so its baseline is blank; a ledger
+    that is not the config's grid (the config changed since the run) is named an earlier run's."""
     import fegrid
     from fegrid.cli import main
 
     monkeypatch.chdir(tiny_project)
     fegrid.fit_grid("grid.yaml", cache="reports", progress=False)
     assert main(["summary", "--config", "grid.yaml"]) == 0
-    out = capsys.readouterr().out
-    assert "capital" in out and "nan" not in out
+    shown = capsys.readouterr()
+    assert "capital" in shown.out and "nan" not in shown.out and "note:" not in shown.err
+    # the config changed since: the summary says the ledger is an earlier run's
+    firm = "  firm: {kind: clustered, by: firm}"
+    text = (tiny_project / "grid.yaml").read_text()
+    (tiny_project / "grid.yaml").write_text(text.replace(firm, firm + "\n  year: {kind: clustered, by: year}")
+                                            .replace("  postwar: {range: {year: {min: 1946}}}\n", ""))
+    assert main(["summary", "--config", "grid.yaml"]) == 0
+    assert ("note: this ledger lacks 8 specification(s) the config declares and holds 16 the config no longer "
+            "declares: it is an earlier run's; 'fegrid run --config grid.yaml' brings it up to date.") in " ".join(
+        capsys.readouterr().err.split())
 
 
 def test_lines_stop_quietly_when_their_reader_goes_away(tmp_path: Path) -> None:

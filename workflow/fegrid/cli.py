@@ -345,7 +345,21 @@ def _cmd_summary(args: argparse.Namespace) -> int:
     if not path.is_file():
         raise FegridError(f"There is no ledger at {path}; run 'fegrid run' first.")
     _print_summary(path, level)
+    if not args.ledger:
+        _note_ledger_behind(plan, path, args.config)
     return 0
+
+
+def _note_ledger_behind(plan, path: Path, config: str) -> None:
+    """Say when the ledger is not the config's grid (the config changed since the run, or the run stopped)."""
+    held = set(read_ledger(path)["spec_id"])
+    declared = {s.spec_id for s in plan.specs}
+    if held == declared:
+        return
+    parts = [f"lacks {len(declared - held)} specification(s) the config declares"] if declared - held else []
+    parts += [f"holds {len(held - declared)} the config no longer declares"] if held - declared else []
+    print(f"note: this ledger {' and '.join(parts)}: it is an earlier run's; 'fegrid run --config {config}' "
+          "brings it up to date.", file=sys.stderr)
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:

@@ -5,7 +5,8 @@ content, a rerun that fits nothing (also after the data file is touched or rewri
 bytes), an added clustering choice that only adds specifications and demeans nothing again, a run
 killed with SIGKILL that resumes to a byte-identical ledger, parallel and serial runs giving the
 same bytes, a run whose progress lines' reader goes away, a failure on fegrid's side whose put-back
-results the next run redoes, and ``snakemake --lint``.
+results the next run redoes (also when an older version kept Snakemake's records of them), and
+``snakemake --lint``.
 """
 
 from __future__ import annotations
@@ -395,3 +396,34 @@ def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(ti
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert again.returncode == 0, again.stderr[-3000:]
     assert len(pd.read_csv(run / "ledger.csv")) == 48
+
+
+def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Path, fegrid_env, monkeypatch) -> None:
+    """The state a run of 0.6.8 left when its progress lines' reader went away: the previous grid's files put
+    back while Snakemake's records describe the new ones, every fit job done (made here as 0.6.8 made it:
+    a failure on fegrid's side, with the records kept). The next run rebuilds the reports for the
+    config's grid (before: "nothing to be done", and the 32-row ledger stayed under a 48-specification
+    config for good)."""
+    import fegrid.cli as cli
+
+    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    _add_year_clustering(tiny_project)
+
+    class Broken(cli.RunMonitor):
+        def __exit__(self, *exc: object) -> None:
+            super().__exit__(*exc)
+            raise RuntimeError("the progress monitor broke")
+
+    monkeypatch.chdir(tiny_project)
+    monkeypatch.setenv("PATH", fegrid_env["PATH"])
+    monkeypatch.setattr(cli, "RunMonitor", Broken)
+    monkeypatch.setattr(cli, "_forget_restored", lambda *args, **kwargs: None)  # as 0.6.8 did
+    with pytest.raises(RuntimeError, match="monitor broke"):
+        cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
+    run = tiny_project / "reports/tiny"
+    assert len(pd.read_csv(run / "ledger.csv")) == 32
+    monkeypatch.undo()
+    again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert len(pd.read_csv(run / "ledger.csv")) == 48 and "(48 specifications)" in again.stdout

@@ -19,6 +19,7 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+import pandas as pd
 from tabulate import tabulate
 
 from . import __version__
@@ -202,6 +203,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     with RunLock(plan.paths.lock) as lock:
         save_plan(plan)  # Snakemake's parse reads it back instead of expanding the grid again
         outputs = PublishedOutputs(plan.paths)
+        _redo_a_stale_ledger(args.config, plan, outputs)
         outputs.keep_previous()
         started = time.time()
         try:
@@ -262,6 +264,25 @@ def _profile(name: str) -> Path:
     known = sorted(p.name for p in PROFILES.iterdir() if p.is_dir())
     raise FegridError(f"--profile '{name}' is neither a profile shipped with fegrid ({', '.join(known)}) nor a "
                       "folder holding a Snakemake profile's config.yaml.")
+
+
+def _redo_a_stale_ledger(config: str, plan, outputs: PublishedOutputs) -> None:
+    """Make Snakemake rebuild the reports when the ledger is not the config's grid although no fit job is left.
+
+    With every fit job done, Snakemake would rebuild a ledger of another grid from its changed inputs;
+    one it calls up to date has records that describe other files: files put back or replaced outside a
+    run, as a run of fegrid 0.6.8 or older did when its progress lines' reader went away (it put the
+    previous run's files back and kept Snakemake's records of its own).
+    """
+    path = plan.paths.ledger_parquet
+    if not path.is_file() or not all(plan.paths.fit(job.key).is_file() for job in plan.jobs):
+        return  # no ledger yet, or fits to run: the ledger is rebuilt anyway
+    try:
+        held = set(pd.read_parquet(path, columns=["spec_id"])["spec_id"])
+    except (OSError, ValueError, KeyError):
+        return
+    if held != {s.spec_id for s in plan.specs}:
+        _forget_restored(config, outputs.current(), plan.paths)
 
 
 def _forget_restored(config: str, files: Sequence[Path], paths: RunPaths) -> None:

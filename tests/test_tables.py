@@ -54,7 +54,7 @@ def test_every_cell_comes_from_the_ledger(tmp_path: Path, wage_panel: pd.DataFra
     assert led.loc[table.spec_ids[2], "clustering"] == "hc1" and led.loc[table.spec_ids[3], "sample"] == "after_1981"
     assert rows[("nr effects", "text")] == ("Yes", "Yes", "No", "Yes", "Yes")
     assert rows[("year effects", "text")] == ("Yes", "No", "No", "Yes", "Yes")
-    assert rows[("hours (control)", "text")] == ("Yes",) * 5
+    assert rows[("hours (control)", "text")] == ("Yes",) * 5 and ("Controls", "text") not in rows
     assert rows[("Clustering", "text")] == ("nr", "nr", "none (HC1)", "nr", "nr")
     # the outcome's mean and SD in the estimation sample, by pandas (wage_panel is balanced: no singletons)
     late = wage_panel[wage_panel["year"] >= 1982]
@@ -129,3 +129,20 @@ def test_a_column_that_names_no_specification_is_refused_before_fitting(tmp_path
     raw["tables"]["main"]["columns"][-1] = {"colour": "blue"}
     with pytest.raises(ConfigError, match="unknown dimension"):
         make_plan(raw)
+
+
+def test_without_show_controls_a_row_names_each_columns_controls(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+    """A table that names no control to show still says which controls each column holds (the control set's
+    columns, labelled, or "none"), each dropped one with the ledger's reason: experience is absorbed by
+    worker and year effects (it rises by one a year for everyone in wage_panel) but not by worker effects
+    alone."""
+    raw = _raw(tmp_path, wage_panel, labels={"hours": "Annual hours"})
+    raw["control_sets"] = {"named": {"none": [], "hours_exper": ["hours", "exper"]}}
+    raw["baseline"]["controls"] = "hours_exper"
+    raw["tables"] = {"main": {"columns": [{}, {"controls": "none"}, {"absorb": "worker"}]}}
+    result = fegrid.fit_grid(raw, progress=False)
+    table = grid_tables(result._plan.grid, result.ledger)["main"]
+    rows = {(r.label, r.kind): r.cells for r in table.rows}
+    assert result.ledger.set_index("spec_id").loc[table.spec_ids[0], "controls_dropped"] == "exper (absorbed)"
+    assert rows[("Controls", "text")] == ("Annual hours, exper (absorbed)", "none", "Annual hours, exper")
+    assert "| Controls | Annual hours, exper (absorbed) | none | Annual hours, exper |" in markdown_table(table)

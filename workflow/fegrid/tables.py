@@ -5,7 +5,8 @@ One table model (:class:`ResultsTable`) is built from the ledger and rendered th
 A table is declared in the config's ``tables`` block; each column names one specification, either
 by its spec id or by the choices that differ from the baseline (``{absorb: orchard}`` is the
 baseline with orchard effects only). Rows: the focal coefficient with its standard error in
-parentheses beneath, indicators for the controls asked for and for each absorbed term, the
+parentheses beneath, indicators for the controls asked for (``show_controls``; without it, a row naming
+each column's controls) and for each absorbed term, the
 standard errors and sample of each column, then the number of observations, of clusters, the
 within R-squared and the outcome's mean and SD in the estimation sample.
 
@@ -163,10 +164,22 @@ def _count(x: float) -> str:
     return "" if x is None or not np.isfinite(x) or x <= 0 else f"{int(x):,}"
 
 
+def _controls_text(columns: Sequence[str], dropped: str, label: Any) -> str:
+    """A column's controls in words, each dropped one with the ledger's reason: ``hours, exper (absorbed)``."""
+    why = {}
+    for item in filter(None, (part.strip() for part in dropped.split(";"))):
+        name, _, reason = item.rpartition(" (")
+        if name and reason.endswith(")"):
+            why[name] = reason[:-1]
+    return ", ".join(label(x) + (f" ({why[x]})" if x in why else "") for x in columns) or "none"
+
+
 def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, absorb_terms: Mapping[str, Sequence[str]],
                 inference_text: Mapping[str, str], labels: Mapping[str, str],
-                significance: Significance) -> ResultsTable:
-    """The table model of ``tables.<name>`` (see the module docstring)."""
+                significance: Significance, control_columns: Mapping[str, Sequence[str]] | None = None
+                ) -> ResultsTable:
+    """The table model of ``tables.<name>`` (see the module docstring). Without ``show_controls``, one row
+    names each column's controls (``control_columns``: the columns of each control set, by name)."""
     def label(x: str) -> str:
         return str(labels.get(x, x))
 
@@ -191,6 +204,10 @@ def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, abs
     for control in body.get("show_controls", []):
         cells = tuple("Yes" if control in str(c["controls"]).split("+") else "No" for c in cols)
         rows.append(TableRow(f"{label(control)} (control)", cells, "text", "controls"))
+    if not body.get("show_controls") and control_columns is not None:  # which controls, in words
+        rows.append(TableRow("Controls", tuple(_controls_text(control_columns.get(str(c["controls"]), ()),
+                                                              str(c.get("controls_dropped") or ""), label)
+                                               for c in cols), "text", "controls"))
     terms = list(dict.fromkeys(t for c in cols for t in absorb_terms.get(str(c["absorb"]), ())))
     for term in terms:
         cells = tuple("Yes" if term in absorb_terms.get(str(c["absorb"]), ()) else "No" for c in cols)
@@ -349,5 +366,5 @@ def grid_tables(grid: Any, ledger: pd.DataFrame) -> dict[str, ResultsTable]:
     significance = Significance.from_config(raw)
     labels = dict(raw.get("labels") or {})
     return {name: build_table(name, body, ledger, absorb_terms=terms, inference_text=ses, labels=labels,
-                              significance=significance)
+                              significance=significance, control_columns=grid.controls)
             for name, body in sorted((raw.get("tables") or {}).items())}

@@ -18,8 +18,9 @@ effects, the commonest case, or unit and region-by-period effects), the iteratio
 direct solution: the large term's residuals, less their projection on the small term's dummies made
 orthogonal to the large term (Frisch-Waugh-Lovell), from small dense systems; the terms' group sums
 confirm the tolerance (a bound on what one more sweep could change), or failing them one more sweep.
-One dense system jumps at once, many parts after ten sweeps (at once when their layout is at hand:
-the later steps of an iteratively reweighted fit).
+One dense system jumps at once, many parts after ten sweeps (at once in the steps of an iteratively
+reweighted fit, which build their layout once; a column that starts warm there is first checked by its
+group sums, which may confirm it as it is).
 """
 
 from __future__ import annotations

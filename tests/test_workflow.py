@@ -335,6 +335,15 @@ def test_a_late_failure_puts_the_previous_results_back_as_a_set(tiny_project: Pa
     assert not (run / "figures" / "curve-invest--gone.png").exists() and not (run / ".previous").exists()
 
 
+def _lean(folder: Path) -> None:
+    """The tiny grid in one fit job and without its joint tests' draws (what these tests check is neither)."""
+    text = (folder / "grid.yaml").read_text()
+    draws, jobs = "joint_inference: {draws: 20, draws_per_job: 10, seed: 7}", "jobs: {specs_per_job: 4}"
+    assert draws in text and jobs in text
+    (folder / "grid.yaml").write_text(text.replace(draws, "joint_inference: {draws: 0}")
+                                      .replace(jobs, "jobs: {specs_per_job: 500}"))
+
+
 def _add_year_clustering(folder: Path) -> None:
     firm = "  firm: {kind: clustered, by: firm}"
     text = (folder / "grid.yaml").read_text().replace(firm, firm + "\n  year: {kind: clustered, by: year}")
@@ -346,6 +355,7 @@ def test_a_reader_that_goes_away_does_not_stop_the_run(tiny_project: Path, fegri
     and publishes the changed grid's ledger, exits 0, and shows no traceback (before: the progress thread
     died with a traceback, the run's new results were replaced by the previous run's, and Snakemake's
     records called them up to date, so the next run did nothing either)."""
+    _lean(tiny_project)
     first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert first.returncode == 0, first.stderr[-3000:]
     ledger = tiny_project / "reports/tiny/ledger.csv"
@@ -372,6 +382,7 @@ def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(ti
     previous grid's 32-row ledger under a 48-specification config)."""
     import fegrid.cli as cli
 
+    _lean(tiny_project)
     first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert first.returncode == 0, first.stderr[-3000:]
     run = tiny_project / "reports/tiny"
@@ -406,6 +417,7 @@ def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Pat
     config for good)."""
     import fegrid.cli as cli
 
+    _lean(tiny_project)
     first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert first.returncode == 0, first.stderr[-3000:]
     _add_year_clustering(tiny_project)

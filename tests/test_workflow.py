@@ -373,37 +373,47 @@ def test_a_reader_that_goes_away_does_not_stop_the_run(tiny_project: Path, fegri
     assert again.returncode == 0 and "0 to fit" in again.stdout and "(48 specifications)" in again.stdout
 
 
-def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(tiny_project: Path, fegrid_env,
-                                                                             monkeypatch) -> None:
-    """fegrid's own side fails while Snakemake works (a progress monitor that breaks stands in for any
-    error of fegrid's; the jobs are done by then): the previous run's files are put back, byte for byte,
-    and the next run rebuilds them for the changed grid instead of finding Snakemake's records of the
-    failed run's files and calling the put-back ones up to date (before: it ran nothing and left the
-    previous grid's 32-row ledger under a 48-specification config)."""
-    import fegrid.cli as cli
+def _published(run: Path) -> dict[Path, bytes]:
+    """The run folder's published files (not its working state), by path, with their bytes."""
+    return {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
+            and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
 
-    _lean(tiny_project)
-    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
-    assert first.returncode == 0, first.stderr[-3000:]
-    run = tiny_project / "reports/tiny"
-    before = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
-              and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
-    _add_year_clustering(tiny_project)
+
+def _fail_on_fegrids_side(folder: Path, env: dict, monkeypatch, *, keep_records: bool = False) -> None:
+    """`fegrid run` in this process, its progress monitor breaking once Snakemake is done (standing in for
+    any error of fegrid's own while Snakemake works); ``keep_records``: put the previous files back without
+    dropping Snakemake's records of the failed run's, as 0.6.8 did."""
+    import fegrid.cli as cli
 
     class Broken(cli.RunMonitor):
         def __exit__(self, *exc: object) -> None:
             super().__exit__(*exc)
             raise RuntimeError("the progress monitor broke")
 
-    monkeypatch.chdir(tiny_project)
-    monkeypatch.setenv("PATH", fegrid_env["PATH"])
-    monkeypatch.setattr(cli, "RunMonitor", Broken)
-    with pytest.raises(RuntimeError, match="monitor broke"):
-        cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
-    after = {p.relative_to(run): p.read_bytes() for p in run.rglob("*") if p.is_file()
-             and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
-    assert after == before
-    monkeypatch.undo()
+    with monkeypatch.context() as patch:
+        patch.chdir(folder)
+        patch.setenv("PATH", env["PATH"])
+        patch.setattr(cli, "RunMonitor", Broken)
+        if keep_records:
+            patch.setattr(cli, "_forget_restored", lambda *args, **kwargs: None)
+        with pytest.raises(RuntimeError, match="monitor broke"):
+            cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
+
+
+def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(tiny_project: Path, fegrid_env,
+                                                                             monkeypatch) -> None:
+    """fegrid's own side fails while Snakemake works (the jobs are done by then): the previous run's files are
+    put back, byte for byte, and the next run rebuilds them for the changed grid instead of finding
+    Snakemake's records of the failed run's files and calling the put-back ones up to date (before: it ran
+    nothing and left the previous grid's 32-row ledger under a 48-specification config)."""
+    _lean(tiny_project)
+    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    run = tiny_project / "reports/tiny"
+    before = _published(run)
+    _add_year_clustering(tiny_project)
+    _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch)
+    assert _published(run) == before
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert again.returncode == 0, again.stderr[-3000:]
     assert len(pd.read_csv(run / "ledger.csv")) == 48
@@ -415,27 +425,13 @@ def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Pat
     a failure on fegrid's side, with the records kept). The next run rebuilds the reports for the
     config's grid (before: "nothing to be done", and the 32-row ledger stayed under a 48-specification
     config for good)."""
-    import fegrid.cli as cli
-
     _lean(tiny_project)
     first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert first.returncode == 0, first.stderr[-3000:]
     _add_year_clustering(tiny_project)
-
-    class Broken(cli.RunMonitor):
-        def __exit__(self, *exc: object) -> None:
-            super().__exit__(*exc)
-            raise RuntimeError("the progress monitor broke")
-
-    monkeypatch.chdir(tiny_project)
-    monkeypatch.setenv("PATH", fegrid_env["PATH"])
-    monkeypatch.setattr(cli, "RunMonitor", Broken)
-    monkeypatch.setattr(cli, "_forget_restored", lambda *args, **kwargs: None)  # as 0.6.8 did
-    with pytest.raises(RuntimeError, match="monitor broke"):
-        cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
+    _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch, keep_records=True)
     run = tiny_project / "reports/tiny"
     assert len(pd.read_csv(run / "ledger.csv")) == 32
-    monkeypatch.undo()
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")
     assert again.returncode == 0, again.stderr[-3000:]
     assert len(pd.read_csv(run / "ledger.csv")) == 48 and "(48 specifications)" in again.stdout

@@ -146,3 +146,16 @@ def test_without_show_controls_a_row_names_each_columns_controls(tmp_path: Path,
     assert result.ledger.set_index("spec_id").loc[table.spec_ids[0], "controls_dropped"] == "exper (absorbed)"
     assert rows[("Controls", "text")] == ("Annual hours, exper (absorbed)", "none", "Annual hours, exper")
     assert "| Controls | Annual hours, exper (absorbed) | none | Annual hours, exper |" in markdown_table(table)
+
+
+def test_show_controls_reads_a_named_sets_columns(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
+    """A named control set (`full: [hours, married]`) holds the controls it lists, whatever its name: its
+    columns get Yes (before: the set's name was split at '+', so `full` held no control and every row read
+    No)."""
+    raw = _raw(tmp_path, wage_panel)
+    raw["control_sets"] = {"named": {"none": [], "full": ["hours", "exper"]}}
+    raw["baseline"]["controls"] = "full"
+    raw["tables"] = {"main": {"columns": [{}, {"controls": "none"}], "show_controls": ["hours", "exper"]}}
+    result = fegrid.fit_grid(raw, progress=False)
+    rows = {(r.label, r.kind): r.cells for r in grid_tables(result._plan.grid, result.ledger)["main"].rows}
+    assert rows[("hours (control)", "text")] == ("Yes", "No") and rows[("exper (control)", "text")] == ("Yes", "No")

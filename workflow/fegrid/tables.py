@@ -201,8 +201,12 @@ def build_table(name: str, body: Mapping[str, Any], ledger: pd.DataFrame, *, abs
                 se.append(f"({_fmt(c['std_error'], digits)})")
         rows += [TableRow(label(focal), tuple(est), "coef", "coefficients"),
                  TableRow("", tuple(se), "se", "coefficients")]
+    def holds(c: Any, control: str) -> bool:  # a control set's columns (a generated set's name lists them)
+        name = str(c["controls"])
+        return control in (control_columns.get(name, ()) if control_columns is not None else name.split("+"))
+
     for control in body.get("show_controls", []):
-        cells = tuple("Yes" if control in str(c["controls"]).split("+") else "No" for c in cols)
+        cells = tuple("Yes" if holds(c, control) else "No" for c in cols)
         rows.append(TableRow(f"{label(control)} (control)", cells, "text", "controls"))
     if not body.get("show_controls") and control_columns is not None:  # which controls, in words
         rows.append(TableRow("Controls", tuple(_controls_text(control_columns.get(str(c["controls"]), ()),

@@ -4,9 +4,9 @@ Data: statsmodels' Grunfeld investment data (see conftest.py). Checked: the ledg
 content, a rerun that fits nothing (also after the data file is touched or rewritten with the same
 bytes), an added clustering choice that only adds specifications and demeans nothing again, a run
 killed with SIGKILL that resumes to a byte-identical ledger, parallel and serial runs giving the
-same bytes, a run whose progress lines' reader goes away, a failure on fegrid's side whose put-back
-results the next run redoes (also when an older version kept Snakemake's records of them), and
-``snakemake --lint``.
+same bytes, a run whose progress lines' reader goes away, failures on fegrid's side and on Snakemake's
+(before any job) whose put-back results the next run redoes (also when an older version left them
+unmarked), and ``snakemake --lint``.
 """
 
 from __future__ import annotations
@@ -379,10 +379,10 @@ def _published(run: Path) -> dict[Path, bytes]:
             and p.relative_to(run).parts[0] not in {"cache", "logs", "benchmarks", ".lock", ".previous"}}
 
 
-def _fail_on_fegrids_side(folder: Path, env: dict, monkeypatch, *, keep_records: bool = False) -> None:
+def _fail_on_fegrids_side(folder: Path, env: dict, monkeypatch, *, unmarked: bool = False) -> None:
     """`fegrid run` in this process, its progress monitor breaking once Snakemake is done (standing in for
-    any error of fegrid's own while Snakemake works); ``keep_records``: put the previous files back without
-    dropping Snakemake's records of the failed run's, as 0.6.8 did."""
+    any error of fegrid's own while Snakemake works); ``unmarked``: put the previous files back without
+    marking the folder, as 0.6.8 did."""
     import fegrid.cli as cli
 
     class Broken(cli.RunMonitor):
@@ -394,8 +394,8 @@ def _fail_on_fegrids_side(folder: Path, env: dict, monkeypatch, *, keep_records:
         patch.chdir(folder)
         patch.setenv("PATH", env["PATH"])
         patch.setattr(cli, "RunMonitor", Broken)
-        if keep_records:
-            patch.setattr(cli, "_forget_restored", lambda *args, **kwargs: None)
+        if unmarked:
+            patch.setattr(cli, "_put_back", lambda outputs, paths: outputs.restore_previous())
         with pytest.raises(RuntimeError, match="monitor broke"):
             cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
 
@@ -413,10 +413,32 @@ def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(ti
     before = _published(run)
     _add_year_clustering(tiny_project)
     _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch)
-    assert _published(run) == before
+    assert _published(run) == before and (run / "cache/put-back").is_file()
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert again.returncode == 0, again.stderr[-3000:]
-    assert len(pd.read_csv(run / "ledger.csv")) == 48
+    assert len(pd.read_csv(run / "ledger.csv")) == 48 and not (run / "cache/put-back").exists()
+
+
+def test_a_run_that_fails_before_any_job_leaves_the_next_run_to_fit_the_changed_grid(tiny_project: Path,
+                                                                                   fegrid_env) -> None:
+    """Snakemake fails before any job runs (an executor it cannot load stands in for a cluster it cannot
+    reach): nothing was written over, and the next run fits the changed grid's new specifications and
+    rebuilds the ledger (before: the failed run's cleanup had dropped Snakemake's records of the published
+    files, and without them Snakemake saw no reason to rerun a ledger that exists for a fit job whose result
+    is missing: "nothing to be done", and the 32-row ledger stayed under the 48-specification config)."""
+    _lean(tiny_project)
+    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    run = tiny_project / "reports/tiny"
+    before = _published(run)
+    _add_year_clustering(tiny_project)
+    failed = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet", "--",
+                     "--executor", "no_such_executor")
+    assert failed.returncode != 0 and "were put back" in failed.stderr, failed.stderr[-3000:]
+    assert _published(run) == before
+    again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert "16 to fit" in again.stdout and len(pd.read_csv(run / "ledger.csv")) == 48
 
 
 def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Path, fegrid_env, monkeypatch) -> None:
@@ -429,7 +451,7 @@ def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Pat
     first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
     assert first.returncode == 0, first.stderr[-3000:]
     _add_year_clustering(tiny_project)
-    _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch, keep_records=True)
+    _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch, unmarked=True)
     run = tiny_project / "reports/tiny"
     assert len(pd.read_csv(run / "ledger.csv")) == 32
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")

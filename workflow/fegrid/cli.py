@@ -29,9 +29,9 @@ from .joint import shared_cluster_caution
 from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
 from .lock import RunLock
-from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status, save_plan
+from .pipeline import describe_sizes, fitted_specs, load_checked, make_plan, plan_status, save_plan, stage
 from .progress import Costs, RunMonitor, Stage, estimate_costs
-from .store import PublishedOutputs, RunPaths
+from .store import PublishedOutputs, RunPaths, atomic_write
 from .summary import choice_medians, curve_summary
 
 __all__ = ["main", "snakemake_command"]
@@ -203,22 +203,19 @@ def _cmd_run(args: argparse.Namespace) -> int:
     with RunLock(plan.paths.lock) as lock:
         save_plan(plan)  # Snakemake's parse reads it back instead of expanding the grid again
         outputs = PublishedOutputs(plan.paths)
-        _redo_a_stale_ledger(args.config, plan, outputs)
+        extra = [*_rebuild_reports(plan), *extra]
         outputs.keep_previous()
         started = time.time()
         try:
             code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
                                   while_snakemake_starts)
         except BaseException:  # fegrid's side failed (Snakemake was stopped): the earlier results stay whole
-            if outputs.restore_previous():  # and the next run redoes what this one wrote over them
-                _forget_restored(args.config, outputs.current(), plan.paths)
+            _put_back(outputs, plan.paths)
             raise
         if code != 0 and not args.verbose:
             _explain_failure(plan.paths, started)
         if code != 0:
-            restored = outputs.restore_previous()
-            if restored:
-                _forget_restored(args.config, outputs.current(), plan.paths)
+            restored = _put_back(outputs, plan.paths)
             what = (f"the previous run's {restored} output files were put back, so the run folder holds "
                     "one consistent set" if restored else
                     "there were no earlier results; what this run wrote before failing is kept")
@@ -228,6 +225,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
             print(f"fegrid: {reason}. {what.capitalize()}. Run the same command again to resume.", file=sys.stderr)
             return code if code > 0 else 128 - code
         outputs.drop_previous()
+        if _written_since(plan.paths.ledger_parquet, started):  # the reports were rebuilt (not a dry run)
+            plan.paths.put_back.unlink(missing_ok=True)
         stale = outputs.prune_undeclared(plan.declared_outputs(build_pdf=pdflatex() is not None))
         if stale:
             print(f"fegrid: removed {len(stale)} output(s) the grid no longer declares: {', '.join(stale)}")
@@ -266,34 +265,41 @@ def _profile(name: str) -> Path:
                       "folder holding a Snakemake profile's config.yaml.")
 
 
-def _redo_a_stale_ledger(config: str, plan, outputs: PublishedOutputs) -> None:
-    """Make Snakemake rebuild the reports when the ledger is not the config's grid although no fit job is left.
+def _put_back(outputs: PublishedOutputs, paths: RunPaths) -> int:
+    """Put the previous run's published files back after a failed run, and mark the folder (``paths.put_back``)
+    when there were any: Snakemake's records (each output's inputs and their checksums) may now describe
+    the failed run's files, so they cannot say whether the put-back ones are up to date."""
+    restored = outputs.restore_previous()
+    if restored:
+        paths.put_back.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write(paths.put_back, lambda fh: fh.write(b"the published files were put back after a failed run\n"),
+                     durable=False)
+    return restored
 
-    With every fit job done, Snakemake would rebuild a ledger of another grid from its changed inputs;
-    one it calls up to date has records that describe other files: files put back or replaced outside a
-    run, as a run of fegrid 0.6.8 or older did when its progress lines' reader went away (it put the
-    previous run's files back and kept Snakemake's records of its own).
-    """
-    path = plan.paths.ledger_parquet
-    if not path.is_file() or not all(plan.paths.fit(job.key).is_file() for job in plan.jobs):
-        return  # no ledger yet, or fits to run: the ledger is rebuilt anyway
+
+def _written_since(path: Path, started: float) -> bool:
     try:
-        held = set(pd.read_parquet(path, columns=["spec_id"])["spec_id"])
+        return path.stat().st_mtime >= started - 1.0
+    except FileNotFoundError:
+        return False
+
+
+def _rebuild_reports(plan) -> list[str]:
+    """Snakemake's arguments that rebuild the ledger, and with it every published file (all follow from it),
+    when Snakemake's records cannot be trusted to: after files were put back (the mark of :func:`_put_back`;
+    fegrid 0.6.8 and older left no mark), or whenever the ledger is not the config's grid. Records that
+    describe other files (checksums of the inputs of a ledger that was replaced) call it up to date; and
+    without records, a fit job whose result is missing is not rerun for a ledger that exists."""
+    paths = plan.paths
+    if paths.put_back.is_file():
+        return ["--forcerun", stage("gather_ledger")]
+    if not paths.ledger_parquet.is_file():
+        return []
+    try:
+        held = set(pd.read_parquet(paths.ledger_parquet, columns=["spec_id"])["spec_id"])
     except (OSError, ValueError, KeyError):
-        return
-    if held != {s.spec_id for s in plan.specs}:
-        _forget_restored(config, outputs.current(), plan.paths)
-
-
-def _forget_restored(config: str, files: Sequence[Path], paths: RunPaths) -> None:
-    """Make Snakemake redo the jobs of restored files on the next run.
-
-    Snakemake's records of those files describe the failed run's jobs (its inputs' checksums), so
-    a put-back file would look up to date; without a record, Snakemake reruns the job.
-    """
-    cmd = snakemake_command(config, 1, ["--cleanup-metadata", *(str(paths.run / f) for f in files)])
-    subprocess.run(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, check=False,
-                   env={**os.environ, RunLock.HELD_ENV: str(paths.lock)})
+        return ["--forcerun", stage("gather_ledger")]
+    return [] if held == {s.spec_id for s in plan.specs} else ["--forcerun", stage("gather_ledger")]
 
 
 def _run_snakemake(command: list[str], lock: RunLock,

@@ -136,6 +136,12 @@ class RunPaths:
         return self.run / ".previous"
 
     @property
+    def put_back(self) -> Path:
+        """Marks a run folder whose published files a failed ``fegrid run`` put back: Snakemake's records may
+        describe the failed run's files, so the next run rebuilds the reports."""
+        return self.cache / "put-back"
+
+    @property
     def cache(self) -> Path:
         return self.run / "cache"
 

@@ -400,18 +400,25 @@ def _fail_on_fegrids_side(folder: Path, env: dict, monkeypatch, *, unmarked: boo
             cli.main(["run", "--config", "grid.yaml", "-c", "1", "--quiet"])
 
 
+def _fitted_then_changed(folder: Path, env: dict) -> tuple[Path, dict[Path, bytes]]:
+    """The lean tiny grid run once (32 specifications), then the config changed to 48: the run folder and its
+    published files as that first run left them."""
+    _lean(folder)
+    first = _fegrid(folder, env, "run", "--config", "grid.yaml", "--quiet")
+    assert first.returncode == 0, first.stderr[-3000:]
+    run = folder / "reports/tiny"
+    before = _published(run)
+    _add_year_clustering(folder)
+    return run, before
+
+
 def test_when_fegrid_fails_during_a_run_the_next_run_redoes_what_was_put_back(tiny_project: Path, fegrid_env,
                                                                              monkeypatch) -> None:
     """fegrid's own side fails while Snakemake works (the jobs are done by then): the previous run's files are
     put back, byte for byte, and the next run rebuilds them for the changed grid instead of finding
     Snakemake's records of the failed run's files and calling the put-back ones up to date (before: it ran
     nothing and left the previous grid's 32-row ledger under a 48-specification config)."""
-    _lean(tiny_project)
-    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
-    assert first.returncode == 0, first.stderr[-3000:]
-    run = tiny_project / "reports/tiny"
-    before = _published(run)
-    _add_year_clustering(tiny_project)
+    run, before = _fitted_then_changed(tiny_project, fegrid_env)
     _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch)
     assert _published(run) == before and (run / "cache/put-back").is_file()
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
@@ -426,12 +433,7 @@ def test_a_run_that_fails_before_any_job_leaves_the_next_run_to_fit_the_changed_
     rebuilds the ledger (before: the failed run's cleanup had dropped Snakemake's records of the published
     files, and without them Snakemake saw no reason to rerun a ledger that exists for a fit job whose result
     is missing: "nothing to be done", and the 32-row ledger stayed under the 48-specification config)."""
-    _lean(tiny_project)
-    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
-    assert first.returncode == 0, first.stderr[-3000:]
-    run = tiny_project / "reports/tiny"
-    before = _published(run)
-    _add_year_clustering(tiny_project)
+    run, before = _fitted_then_changed(tiny_project, fegrid_env)
     failed = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet", "--",
                      "--executor", "no_such_executor")
     assert failed.returncode != 0 and "were put back" in failed.stderr, failed.stderr[-3000:]
@@ -447,12 +449,8 @@ def test_a_ledger_put_back_under_records_of_another_is_rebuilt(tiny_project: Pat
     a failure on fegrid's side, with the records kept). The next run rebuilds the reports for the
     config's grid (before: "nothing to be done", and the 32-row ledger stayed under a 48-specification
     config for good)."""
-    _lean(tiny_project)
-    first = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml", "--quiet")
-    assert first.returncode == 0, first.stderr[-3000:]
-    _add_year_clustering(tiny_project)
+    run, _ = _fitted_then_changed(tiny_project, fegrid_env)
     _fail_on_fegrids_side(tiny_project, fegrid_env, monkeypatch, unmarked=True)
-    run = tiny_project / "reports/tiny"
     assert len(pd.read_csv(run / "ledger.csv")) == 32
     again = _fegrid(tiny_project, fegrid_env, "run", "--config", "grid.yaml")
     assert again.returncode == 0, again.stderr[-3000:]

@@ -200,20 +200,23 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _note_pdflatex()
         return RunMonitor(_stages(plan) if not args.verbose else [])
 
+    # Snakemake's own output goes to a file while the terminal shows fegrid's progress lines (unless the user
+    # asked for Snakemake's view: --verbose, or Snakemake's own arguments, such as --dry-run)
+    captured = plan.paths.snakemake_log if not args.verbose and not args.snakemake_args else None
     with RunLock(plan.paths.lock) as lock:
         save_plan(plan)  # Snakemake's parse reads it back instead of expanding the grid again
         outputs = PublishedOutputs(plan.paths)
-        extra = [*_rebuild_reports(plan), *extra]
+        command = snakemake_command(args.config, args.cores, [*_rebuild_reports(plan), *extra],
+                                    quiet=not args.verbose and captured is None)
         outputs.keep_previous()
         started = time.time()
         try:
-            code = _run_snakemake(snakemake_command(args.config, args.cores, extra, quiet=not args.verbose), lock,
-                                  while_snakemake_starts)
+            code = _run_snakemake(command, lock, while_snakemake_starts, log=captured)
         except BaseException:  # fegrid's side failed (Snakemake was stopped): the earlier results stay whole
             _put_back(outputs, plan.paths)
             raise
         if code != 0 and not args.verbose:
-            _explain_failure(plan.paths, started)
+            _explain_failure(plan.paths, started, captured)
         if code != 0:
             restored = _put_back(outputs, plan.paths)
             what = (f"the previous run's {restored} output files were put back, so the run folder holds "
@@ -235,11 +238,14 @@ def _cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _explain_failure(paths: RunPaths, started: float) -> None:
-    """With Snakemake's log silenced, show why the run failed: the end of every job log written
-    during the run that reports an error, else the end of Snakemake's own log."""
+def _explain_failure(paths: RunPaths, started: float, captured: Path | None = None) -> None:
+    """With Snakemake's log off the terminal, show why the run failed: the end of every job log written
+    during the run that reports an error; else what Snakemake printed (``captured``) from its first error on
+    (a job it could not start, such as a cluster's refusal to queue it, leaves no job log); else the end of
+    Snakemake's own log."""
     shown = 0
-    logs = sorted((p for p in paths.run.joinpath("logs").rglob("*.log") if p.stat().st_mtime >= started - 1),
+    logs = sorted((p for p in paths.run.joinpath("logs").rglob("*.log")
+                   if p != paths.snakemake_log and p.stat().st_mtime >= started - 1),
                   key=lambda p: p.stat().st_mtime) if paths.run.joinpath("logs").is_dir() else []
     for log in logs:
         text = log.read_text(errors="replace")
@@ -247,8 +253,19 @@ def _explain_failure(paths: RunPaths, started: float) -> None:
             tail = "\n".join(text.rstrip().splitlines()[-20:])
             print(f"fegrid: the job logged in {log} failed:\n{tail}", file=sys.stderr)
             shown += 1
+    if shown:
+        return
+    if captured is not None and captured.is_file():
+        lines = captured.read_text(errors="replace").rstrip().splitlines()
+        # the last failed job's report (a job retried reports once per attempt), else the first error
+        jobs = [i for i, line in enumerate(lines) if line.startswith("Error in rule")]
+        first = jobs[-1] if jobs else next((i for i, line in enumerate(lines) if "Error" in line or "error:" in line),
+                                           max(len(lines) - 25, 0))
+        print(f"fegrid: Snakemake reported (all of it in {captured}):\n" + "\n".join(lines[first:][:25]),
+              file=sys.stderr)
+        return
     own = sorted(Path(".snakemake", "log").glob("*.snakemake.log"), key=lambda p: p.stat().st_mtime)
-    if not shown and own and own[-1].stat().st_mtime >= started - 1:
+    if own and own[-1].stat().st_mtime >= started - 1:
         tail = "\n".join(own[-1].read_text(errors="replace").rstrip().splitlines()[-25:])
         print(f"fegrid: Snakemake's log ({own[-1]}) ends with:\n{tail}", file=sys.stderr)
 
@@ -303,8 +320,10 @@ def _rebuild_reports(plan) -> list[str]:
 
 
 def _run_snakemake(command: list[str], lock: RunLock,
-                   meanwhile: Callable[[], contextlib.AbstractContextManager[object]] | None = None) -> int:
-    """Run Snakemake holding ``lock`` for it; forward SIGINT, SIGTERM and SIGHUP and wait for it.
+                   meanwhile: Callable[[], contextlib.AbstractContextManager[object]] | None = None, *,
+                   log: Path | None = None) -> int:
+    """Run Snakemake holding ``lock`` for it; forward SIGINT, SIGTERM and SIGHUP and wait for it. With
+    ``log``, what Snakemake prints goes to that file instead of the terminal.
 
     Snakemake inherits the open lock file, so the lock is held until Snakemake is gone, even when
     this process alone is killed outright; a signal to the whole process group (Ctrl-C in a
@@ -327,7 +346,16 @@ def _run_snakemake(command: list[str], lock: RunLock,
     try:
         if received:  # asked to stop before Snakemake started
             return -received[0]
-        proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock))
+        sink = None
+        if log is not None:
+            log.parent.mkdir(parents=True, exist_ok=True)
+            sink = open(log, "wb")  # noqa: SIM115 - closed once Snakemake holds its own copy
+        try:
+            proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock),
+                                    stdout=sink, stderr=subprocess.STDOUT if sink is not None else None)
+        finally:
+            if sink is not None:
+                sink.close()
         try:
             with meanwhile() if meanwhile is not None else contextlib.nullcontext():
                 code = proc.wait()

@@ -136,6 +136,12 @@ class RunPaths:
         return self.run / ".previous"
 
     @property
+    def snakemake_log(self) -> Path:
+        """What Snakemake printed during the last ``fegrid run`` whose terminal showed fegrid's progress lines
+        instead (the failure's explanation is read from it)."""
+        return self.run / "logs" / "snakemake.log"
+
+    @property
     def put_back(self) -> Path:
         """Marks a run folder whose published files a failed ``fegrid run`` put back: Snakemake's records may
         describe the failed run's files, so the next run rebuilds the reports."""

@@ -245,7 +245,7 @@ def _explain_failure(paths: RunPaths, started: float, captured: Path | None = No
     Snakemake's own log."""
     shown = 0
     logs = sorted((p for p in paths.run.joinpath("logs").rglob("*.log")
-                   if p != paths.snakemake_log and p.stat().st_mtime >= started - 1),
+                   if p != paths.snakemake_log and _written_since(p, started)),
                   key=lambda p: p.stat().st_mtime) if paths.run.joinpath("logs").is_dir() else []
     for log in logs:
         text = log.read_text(errors="replace")
@@ -265,7 +265,7 @@ def _explain_failure(paths: RunPaths, started: float, captured: Path | None = No
               file=sys.stderr)
         return
     own = sorted(Path(".snakemake", "log").glob("*.snakemake.log"), key=lambda p: p.stat().st_mtime)
-    if own and own[-1].stat().st_mtime >= started - 1:
+    if own and _written_since(own[-1], started):
         tail = "\n".join(own[-1].read_text(errors="replace").rstrip().splitlines()[-25:])
         print(f"fegrid: Snakemake's log ({own[-1]}) ends with:\n{tail}", file=sys.stderr)
 
@@ -295,6 +295,7 @@ def _put_back(outputs: PublishedOutputs, paths: RunPaths) -> int:
 
 
 def _written_since(path: Path, started: float) -> bool:
+    """Whether ``path`` was written during the run that started at ``started`` (a second's slack)."""
     try:
         return path.stat().st_mtime >= started - 1.0
     except FileNotFoundError:
@@ -308,15 +309,18 @@ def _rebuild_reports(plan) -> list[str]:
     describe other files (checksums of the inputs of a ledger that was replaced) call it up to date; and
     without records, a fit job whose result is missing is not rerun for a ledger that exists."""
     paths = plan.paths
-    if paths.put_back.is_file():
+    if paths.put_back.is_file() or (paths.ledger_parquet.is_file()
+                                    and _held_spec_ids(paths) != {s.spec_id for s in plan.specs}):
         return ["--forcerun", stage("gather_ledger")]
-    if not paths.ledger_parquet.is_file():
-        return []
+    return []
+
+
+def _held_spec_ids(paths: RunPaths) -> set[str] | None:
+    """The ids of the specifications the run folder's ledger holds (``None``: no ledger, or unreadable)."""
     try:
-        held = set(pd.read_parquet(paths.ledger_parquet, columns=["spec_id"])["spec_id"])
+        return set(pd.read_parquet(paths.ledger_parquet, columns=["spec_id"])["spec_id"])
     except (OSError, ValueError, KeyError):
-        return ["--forcerun", stage("gather_ledger")]
-    return [] if held == {s.spec_id for s in plan.specs} else ["--forcerun", stage("gather_ledger")]
+        return None
 
 
 def _run_snakemake(command: list[str], lock: RunLock,
@@ -401,15 +405,15 @@ def _cmd_summary(args: argparse.Namespace) -> int:
         raise FegridError(f"There is no ledger at {path}; run 'fegrid run' first.")
     _print_summary(path, level)
     if not args.ledger:
-        _note_ledger_behind(plan, path, args.config)
+        _note_ledger_behind(plan, args.config)
     return 0
 
 
-def _note_ledger_behind(plan, path: Path, config: str) -> None:
+def _note_ledger_behind(plan, config: str) -> None:
     """Say when the ledger is not the config's grid (the config changed since the run, or the run stopped)."""
-    held = set(read_ledger(path)["spec_id"])
+    held = _held_spec_ids(plan.paths)
     declared = {s.spec_id for s in plan.specs}
-    if held == declared:
+    if held is None or held == declared:
         return
     parts = [f"lacks {len(declared - held)} specification(s) the config declares"] if declared - held else []
     parts += [f"holds {len(held - declared)} the config no longer declares"] if held - declared else []

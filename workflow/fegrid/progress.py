@@ -145,7 +145,11 @@ class RunMonitor:
         except BrokenPipeError:
             self._gone = True
             try:  # what the stream still holds, and any later print to it, goes nowhere instead of failing
-                os.dup2(os.open(os.devnull, os.O_WRONLY), self.out.fileno())
+                devnull = os.open(os.devnull, os.O_WRONLY)
+                try:
+                    os.dup2(devnull, self.out.fileno())
+                finally:
+                    os.close(devnull)
             except (AttributeError, OSError, ValueError):
                 pass
 

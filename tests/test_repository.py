@@ -127,6 +127,20 @@ def test_no_module_imports_a_posix_only_module_at_top_level() -> None:
             assert not {n.split(".")[0] for n in names} & posix_only, (module.name, names)
 
 
+def test_starting_fegrid_or_its_workflow_does_not_import_scipy() -> None:
+    """Every command and the workflow's parse (``rules/common.smk``) import the CLI and the planning
+    modules; SciPy is for computing and loads when first used (fegrid.lazy), which took 0.2 s off each
+    start. A fresh interpreter, so that no other test's import counts; then one use loads it."""
+    code = ("import sys\n"
+            "import fegrid.cli, fegrid.pipeline, fegrid.keys, fegrid.renames, fegrid.lock, fegrid.store\n"
+            "print(sorted(m for m in sys.modules if m.split('.')[0] == 'scipy'))\n"
+            "from fegrid import estimate\n"
+            "print(estimate.special.stdtr(10.0, -2.0) > 0, 'scipy.special' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split("\n")
+    assert out[0] == "[]"
+    assert out[1] == "True True"
+
+
 def test_the_conda_environment_installs_this_release_not_a_path() -> None:
     """The rules' conda environment pins the package's own version and names no local path (a
     relative editable path resolves against the working directory, so it works only in the checkout);

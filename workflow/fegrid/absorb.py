@@ -33,11 +33,13 @@ from functools import cached_property
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
-from scipy.sparse.csgraph import connected_components
 
 from .defaults import DEFAULTS
 from .errors import ConfigError
+from .lazy import LazyModule
+
+sp = LazyModule("scipy.sparse")
+csgraph = LazyModule("scipy.sparse.csgraph")
 
 __all__ = [
     "ABSORB_KINDS",
@@ -633,7 +635,7 @@ def _components(a: np.ndarray, la: int, b: np.ndarray, lb: int) -> int:
                 table.all(axis=0).any() or table.all(axis=1).any()):
             return 1
     graph = sp.coo_array((np.ones(len(a)), (a, b + la)), shape=(la + lb, la + lb))
-    return int(connected_components(graph, directed=False)[0])
+    return int(csgraph.connected_components(graph, directed=False)[0])
 
 
 def _constant_within(values: np.ndarray | None, codes: np.ndarray) -> bool:
@@ -795,7 +797,7 @@ class Absorber:
             return a, b, DIRECT_AFTER_DENSE, np.zeros(n_small, dtype=np.int64)
         graph = sp.coo_array((np.ones(len(small.codes)), (large.codes, small.codes + n_large)),
                              shape=(n_large + n_small, n_large + n_small))
-        parts = connected_components(graph, directed=False)[1][n_large:]
+        parts = csgraph.connected_components(graph, directed=False)[1][n_large:]
         if np.bincount(parts).max() > DIRECT_MAX_LEVELS:
             return None
         return a, b, DIRECT_AFTER, np.unique(parts, return_inverse=True)[1]

@@ -22,9 +22,11 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.special import fdtrc, stdtr, stdtrit
 
 from .estimate import Coefficients
+from .lazy import LazyModule
+
+special = LazyModule("scipy.special")
 
 __all__ = ["STORED_COLUMN", "COEFFICIENT_COLUMNS", "encode", "decode", "coefficient_table", "combination_columns",
            "evaluate_combinations"]
@@ -63,14 +65,14 @@ def coefficient_table(encoded: Mapping[str, str], level: float) -> pd.DataFrame:
         if c is None:
             continue
         if c.df not in crit_of:
-            crit_of[c.df] = float(stdtrit(c.df, 0.5 + level / 2))
+            crit_of[c.df] = float(special.stdtrit(c.df, 0.5 + level / 2))
         crit = crit_of[c.df]
         for j, term in enumerate(c.terms):
             se = float(np.sqrt(max(c.covariance[j, j], 0.0)))
             est = float(c.estimates[j])
             t = est / se if se > 0 else float("nan")
             rows.append({"spec_id": spec_id, "term": term, "position": j, "estimate": est, "std_error": se,
-                         "t_stat": t, "p_value": float(2 * stdtr(c.df, -abs(t))) if se > 0 else float("nan"),
+                         "t_stat": t, "p_value": float(2 * special.stdtr(c.df, -abs(t))) if se > 0 else float("nan"),
                          "ci_low": est - crit * se, "ci_high": est + crit * se, "df_inference": c.df,
                          "covariance": c.covariance[j].tolist()})
     return pd.DataFrame(rows, columns=[*COEFFICIENT_COLUMNS, "covariance"])
@@ -104,8 +106,8 @@ def evaluate_combinations(encoded: Mapping[str, str], declared: Mapping[str, Map
                 weights = np.array([float(body["sum"][t]) for t in terms])
                 est = float(weights @ c.estimates[idx])
                 se = float(np.sqrt(max(weights @ c.covariance[np.ix_(idx, idx)] @ weights, 0.0)))
-                crit = float(stdtrit(c.df, 0.5 + level / 2))
-                p = float(2 * stdtr(c.df, -abs(est / se))) if se > 0 else float("nan")
+                crit = float(special.stdtrit(c.df, 0.5 + level / 2))
+                p = float(2 * special.stdtr(c.df, -abs(est / se))) if se > 0 else float("nan")
                 row.update(zip(cols, (est, se, p, est - crit * se, est + crit * se)))
             else:
                 b = c.estimates[idx]
@@ -114,6 +116,6 @@ def evaluate_combinations(encoded: Mapping[str, str], declared: Mapping[str, Map
                     stat = float(b @ np.linalg.solve(v, b)) / len(idx)
                 except np.linalg.LinAlgError:
                     continue
-                row.update(zip(cols, (stat, float(fdtrc(len(idx), c.df, stat)))))
+                row.update(zip(cols, (stat, float(special.fdtrc(len(idx), c.df, stat)))))
         rows.append(row)
     return pd.DataFrame(rows, columns=columns)

@@ -26,7 +26,6 @@ from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 import pandas as pd
-from scipy.special import stdtr, stdtrit  # t distribution; lighter to import than scipy.stats
 
 from . import __version__, keys
 from .absorb import Absorber, CodesOf, LevelCodes, Term, codes_on_rows, drop_singletons, float_columns, parse_absorb
@@ -34,6 +33,7 @@ from .covariance import FitPieces, OneWay, Robust, covariance_kind, fused_fit, s
 from .defaults import DEFAULTS
 from .errors import EstimationError
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE, CovarianceOf, Estimator, anderson_rubin, first_stage
+from .lazy import LazyModule
 from .poisson import irls, separated_rows
 from .staggered import (
     EVENT_STUDY,
@@ -54,6 +54,8 @@ from .staggered import (
     wald_p_value,
 )
 from .wild import WildBootstrap, wild_cluster_test
+
+special = LazyModule("scipy.special")
 
 __all__ = [
     "Inference",
@@ -1436,9 +1438,10 @@ def _with_std_error(result: SpecResult, estimate: float, se: float, df: float, l
     """``result`` with the standard error ``se`` of ``estimate``, and the t statistic, p-value and
     confidence interval that follow (t with ``df`` degrees of freedom): the one place every estimator's
     result gets them."""
-    crit = float(stdtrit(df, 0.5 + level / 2))
+    crit = float(special.stdtrit(df, 0.5 + level / 2))
     t = estimate / se if se > 0 else float("nan")
-    return _updated(result, std_error=se, t_stat=t, p_value=float(2 * stdtr(df, -abs(t))) if se > 0 else float("nan"),
+    p_value = float(2 * special.stdtr(df, -abs(t))) if se > 0 else float("nan")
+    return _updated(result, std_error=se, t_stat=t, p_value=p_value,
                     ci_low=estimate - crit * se, ci_high=estimate + crit * se)
 
 

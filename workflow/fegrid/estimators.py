@@ -31,10 +31,9 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
-from scipy.optimize import brentq
-from scipy.special import fdtrc, fdtri
 
 from .errors import ConfigError
+from .lazy import LazyModule
 from .staggered import (
     EVENT_STUDY,
     GROUP_TIME,
@@ -44,6 +43,9 @@ from .staggered import (
     StaggeredOptions,
     parse_options,
 )
+
+optimize = LazyModule("scipy.optimize")
+special = LazyModule("scipy.special")
 
 __all__ = [
     "METHODS",
@@ -301,8 +303,8 @@ def anderson_rubin(w: np.ndarray, n_excluded: int, y: np.ndarray, x: np.ndarray,
         except np.linalg.LinAlgError:  # a singular point: each on its own, as ``stat`` treats it
             return np.array([stat(float(b)) for b in bs])
 
-    p_value = float(fdtrc(k, df, stat(0.0))) if np.isfinite(df) and df > 0 else float("nan")
-    crit = float(fdtri(k, df, level)) if np.isfinite(df) and df > 0 else float("nan")
+    p_value = float(special.fdtrc(k, df, stat(0.0))) if np.isfinite(df) and df > 0 else float("nan")
+    crit = float(special.fdtri(k, df, level)) if np.isfinite(df) and df > 0 else float("nan")
     if not np.isfinite(crit):
         return ArSet(p_value, float("nan"), float("nan"), "not available (no df)")
     if k == 1:
@@ -344,7 +346,7 @@ def _scan_set(g: Callable[[float], float], many: Callable[[np.ndarray], np.ndarr
     for i in range(1, len(t)):
         if inside[i] == inside[i - 1]:
             continue
-        edge = math.tan(brentq(lambda v: g(math.tan(v)), t[i - 1], t[i], xtol=1e-14))
+        edge = math.tan(optimize.brentq(lambda v: g(math.tan(v)), t[i - 1], t[i], xtol=1e-14))
         if inside[i]:
             start = edge
         else:

@@ -47,15 +47,17 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.special import ndtri, stdtr
 
 from .errors import FegridError
 from .estimate import SpecRequest, fit_block
 from .estimators import POISSON
 from .grid import LINEARIZED, REFIT, Grid, Spec
+from .lazy import LazyModule
 from .ledger import PAIR, STATUS_OK
 from .reweight import BATCH_DRAWS, Draw, draw_levels, draw_picks, prepare_blocks
 from .samples import SampleDef, apply_sample, sample_rows
+
+special = LazyModule("scipy.special")
 
 __all__ = ["REFIT", "LINEARIZED", "method_text", "shared_cluster_caution", "resample_panel", "stack_draw",
            "without_wild", "draw_curves",
@@ -304,7 +306,7 @@ def curve_statistics(estimate: np.ndarray, p_value: np.ndarray, dominant: float,
     return {
         "median_estimate": float(np.median(est)),
         "share_significant": float(np.mean((p < alpha) & (np.sign(est) == dominant))),
-        "stouffer_z": float(np.sum(signs * -ndtri(p / 2)) / np.sqrt(len(est))),
+        "stouffer_z": float(np.sum(signs * -special.ndtri(p / 2)) / np.sqrt(len(est))),
     }
 
 
@@ -335,7 +337,8 @@ def joint_tests(ledger: pd.DataFrame, draws: pd.DataFrame, level: float) -> pd.D
         imposed = merged["imposed"].fillna(False).astype(bool) if "imposed" in merged else False
         merged["centered"] = np.where(imposed, merged["estimate"], merged["estimate"] - merged["observed"])
         t = merged["centered"] / merged["std_error"]
-        merged["p_null"] = 2 * stdtr(merged["df_inference"].to_numpy(dtype=float), -np.abs(t.to_numpy(dtype=float)))
+        merged["p_null"] = 2 * special.stdtr(merged["df_inference"].to_numpy(dtype=float),
+                                             -np.abs(t.to_numpy(dtype=float)))
         per_draw = pd.DataFrame([
             curve_statistics(g["centered"].to_numpy(), g["p_null"].to_numpy(), _dominant(g["centered"]), alpha)
             for _, g in merged.groupby("draw", sort=True)

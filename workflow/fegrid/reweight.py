@@ -52,8 +52,6 @@ from typing import Any, NamedTuple
 
 import numpy as np
 import pandas as pd
-import scipy.sparse as sp
-from scipy.sparse.csgraph import connected_components
 
 from .absorb import (
     HUB_CELLS,
@@ -72,8 +70,12 @@ from .errors import EstimationError, FegridError
 from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE
 from .grid import Grid, Spec
+from .lazy import LazyModule
 from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
+
+sp = LazyModule("scipy.sparse")
+csgraph = LazyModule("scipy.sparse.csgraph")
 
 __all__ = ["Draw", "draw_picks", "draw_levels", "fast_specs", "REWEIGHTED_METHODS", "BATCH_DRAWS", "ReweightedBlock",
            "prepare_blocks"]
@@ -452,7 +454,7 @@ class _CopiesDf:
                 meets = sp.csr_array((np.ones(len(groups)), (levels, groups)),
                                      shape=(self.n_levels, self.dims[self.terms[shared].groups].n))
                 linked = (meets @ meets.T).astype(bool).tocsr()
-                n_blocks, block = connected_components(linked, directed=False)
+                n_blocks, block = csgraph.connected_components(linked, directed=False)
                 sizes = np.bincount(block[self.level_ids], minlength=n_blocks)
                 per_level = np.diff(linked.indptr)[self.level_ids]  # the levels each meets (itself too)
                 if np.array_equal(per_level, sizes[block[self.level_ids]]):  # every block complete
@@ -588,7 +590,7 @@ class _CopiesDf:
             pa, pb = self._pair(self.terms[a].groups), self._pair(self.terms[b].groups)
             na, nb = len(self.dims[self.terms[a].groups].pair_level), len(self.dims[self.terms[b].groups].pair_level)
             graph = sp.coo_array((np.ones(len(pa)), (pa, pb + na)), shape=(na + nb, na + nb))
-            labels = connected_components(graph, directed=False)[1]
+            labels = csgraph.connected_components(graph, directed=False)[1]
             level_of_node = np.concatenate([self.dims[self.terms[a].groups].pair_level,
                                             self.dims[self.terms[b].groups].pair_level])
             first = np.unique(labels, return_index=True)[1]
@@ -713,7 +715,8 @@ class _LocalDummies:
         self.level_of_row = level_of_row
         # the connected parts of the groups (linked by the levels they share), and each part's block
         graph = sp.coo_array((np.ones(len(pairs)), (pair_id, pair_level + n_ids)), shape=(n_ids + n_levels,) * 2)
-        parts = np.unique(connected_components(graph, directed=False)[1][:n_ids], return_inverse=True)[1].ravel()
+        labels = csgraph.connected_components(graph, directed=False)[1]
+        parts = np.unique(labels[:n_ids], return_inverse=True)[1].ravel()
         self.sizes = np.bincount(parts)
         order = np.argsort(parts, kind="stable")
         local = np.empty(n_ids, dtype=np.int64)

@@ -39,10 +39,12 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
 
 from .defaults import DEFAULTS
 from .errors import EstimationError
+from .lazy import LazyModule
+
+sp = LazyModule("scipy.sparse")
 
 __all__ = ["WildBootstrap", "WEIGHT_KINDS", "wild_weights", "WildOutcome", "wild_cluster_test"]
 

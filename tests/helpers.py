@@ -22,6 +22,23 @@ NEEDS_TEX = pytest.mark.skipif(
 )
 
 
+def training_panel() -> pd.DataFrame:
+    """linearmodels' jobtraining panel (an open dataset: training grants to Michigan manufacturing firms,
+    1987-1989) as a staggered adoption: a firm is treated from its first grant on (``trained``), adopting in
+    ``grant_year``. Firms with a missing outcome are dropped; the last year of five firms too, so that only
+    the sample 'balanced' is."""
+    from linearmodels.datasets import jobtraining
+
+    d = jobtraining.load().sort_values(["fcode", "year"]).reset_index(drop=True)
+    d["trained"] = d.groupby("fcode")["grant"].cummax()
+    first = d[d["trained"] == 1].groupby("fcode")["year"].min()
+    d["grant_year"] = d["fcode"].map(first)
+    d = d[d.groupby("fcode")["lhrsemp"].transform(lambda v: v.notna().all())]
+    gone = d["fcode"].drop_duplicates().iloc[:5]
+    d = d[~(d["fcode"].isin(gone) & (d["year"] == 1989))]
+    return d[["fcode", "year", "trained", "grant_year", "lhrsemp", "lemploy", "union"]]
+
+
 def wage_grid(tmp: Path, wage_panel: pd.DataFrame, **extra) -> dict:
     wage_panel.to_csv(tmp / "wage.csv", index=False)
     raw = {

@@ -9,7 +9,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 import yaml
-from helpers import NEEDS_TEX
+from helpers import NEEDS_TEX, training_panel
 
 import fegrid
 from fegrid.cli import main
@@ -17,23 +17,8 @@ from fegrid.grid import load_config
 from fegrid.pipeline import appendix, compile_appendix, draw_adoption, make_plan
 
 
-def _panel() -> pd.DataFrame:
-    from linearmodels.datasets import jobtraining
-
-    d = jobtraining.load().sort_values(["fcode", "year"]).reset_index(drop=True)
-    d["trained"] = d.groupby("fcode")["grant"].cummax()
-    first = d[d["trained"] == 1].groupby("fcode")["year"].min()
-    d["grant_year"] = d["fcode"].map(first)
-    # firms with a missing outcome are dropped; the last year of five firms too, so that only the
-    # sample 'balanced' is
-    d = d[d.groupby("fcode")["lhrsemp"].transform(lambda v: v.notna().all())]
-    gone = d["fcode"].drop_duplicates().iloc[:5]
-    d = d[~(d["fcode"].isin(gone) & (d["year"] == 1989))]
-    return d[["fcode", "year", "trained", "grant_year", "lhrsemp", "lemploy", "union"]]
-
-
 def _config(folder: Path, **extra) -> dict:
-    _panel().to_csv(folder / "jobs.csv", index=False)
+    training_panel().to_csv(folder / "jobs.csv", index=False)
     raw = {
         "run_name": "jobs",
         "data": {"path": str(folder / "jobs.csv"), "unit": "fcode", "time": "year", "treatment": "trained",

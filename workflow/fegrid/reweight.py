@@ -39,15 +39,19 @@ own iterations (:func:`fegrid.poisson.irls`, started from the design's own fit u
 scores are laid out on the stacked rows and taken by the engine's covariance kinds (and so are the
 least-squares specifications of a design that holds Poisson ones); the rules it meets first (zero
 groups, separation, regressors left constant) follow the engine's, and a draw they could decide
-differently takes the stacked refit (see :meth:`_Design._poisson`). Staggered-adoption specifications
-always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
+differently takes the stacked refit (see :meth:`_Design._poisson`). A two-way event study is the
+least-squares regression on its relative-period indicators reparametrized so that the focal coefficient is
+the reported average (:func:`_as_least_squares`), refitted with the least-squares draws; a draw that
+leaves out one of its regressors, comes near the stacked fit's identification rule or lacks a period takes
+the stacked refit, and so does an event study with two-way clustering. The other staggered-adoption
+specifications always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
 convergence rule's, for Poisson PML; tests/test_reweight.py).
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, NamedTuple
 
 import numpy as np
@@ -68,11 +72,12 @@ from .absorb import (
 from .covariance import TWO_WAY_SIGNS, FitPieces, Iid, OneWay, Robust, TwoWay, clip_negative, covariance_kind
 from .errors import EstimationError, FegridError
 from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
-from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE
+from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE, Estimator
 from .grid import Grid, Spec
 from .lazy import LazyModule
 from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
+from .staggered import EVENT_STUDY, Cohorts, cohorts_of, event_indicators
 
 sp = LazyModule("scipy.sparse")
 csgraph = LazyModule("scipy.sparse.csgraph")
@@ -136,10 +141,85 @@ def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = Non
     """The specifications a reweighting can refit (least squares, 2SLS, and Poisson PML with its observed
     estimate in ``observed``, whose null the draws impose) and the others."""
     observed = observed or {}
-    fast = [s for s in specs if s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
-            and (s.estimator.method != POISSON or s.spec_id in observed)]
+    fast = [s for s in specs if (s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
+                                 and (s.estimator.method != POISSON or s.spec_id in observed)) or _event_study(s)]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
+
+
+def _event_study(spec: Spec) -> bool:
+    """Whether ``spec`` is a two-way event study that draws refit as least squares (:func:`_as_least_squares`):
+    not with two-way clustering, whose covariance of the indicators is clipped as a whole before it is
+    combined (the combination's own variance, clipped, can differ)."""
+    return spec.estimator.method == EVENT_STUDY and not isinstance(covariance_kind(spec.inference.kind), TwoWay)
+
+
+#: The prefix of the columns a design adds for its event studies' reparametrized indicators.
+EVENT_COLUMN = "__fegrid_event_study__"
+
+
+def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSettings
+                      ) -> tuple[pd.DataFrame, list[Spec], dict[str, tuple[list[str], np.ndarray]], Cohorts | None]:
+    """The design's rows and specifications with each two-way event study as the least-squares regression that
+    gives its estimate as the focal coefficient.
+
+    The event study regresses the outcome on relative-period indicators ``X`` (and the controls) and reports
+    ``a'b``, ``a`` the average over the periods from adoption on. With ``X~ = X M``, ``M``'s first column
+    ``e_j0 / a_j0`` (``j0`` the first period after adoption) and the others ``e_j - (a_j / a_j0) e_j0``
+    (``j != j0``), the regression on ``X~`` has coefficients ``T b`` with ``T = M^-1``, whose first row is
+    ``a``: its first coefficient is ``a'b``, and its first row of the inverse cross products gives
+    ``h = X B a``, so every covariance kind that sums over ``h e`` (and the homoskedastic one, ``a'Ba``)
+    gives the event study's standard error; the df are the same (as many regressors). The indicators are
+    those of :func:`fegrid.staggered.event_indicators` on the design's rows, with their cohorts (of
+    :func:`fegrid.staggered.cohorts_of`, as the stacked fit computes them).
+
+    Returns the rows with the new columns, the specifications (event studies replaced by least squares with
+    the same id), per event study its regressors in order with ``T`` (the stacked fit's identification rule
+    reads the indicators' cross products, ``T' G T``; see :meth:`_Design._event_study_checks`), and the
+    rows' cohorts (``None`` without event studies)."""
+    strict: dict[str, tuple[list[str], np.ndarray]] = {}
+    if not any(s.estimator.method == EVENT_STUDY for s in specs):
+        return rows, specs, strict, None
+    assert settings.unit and settings.time and settings.treatment
+    if settings.adoption:
+        cohorts = cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
+                             adoption=rows[settings.adoption].to_numpy(dtype=float))
+    else:
+        cohorts = cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
+                             treatment=rows[settings.treatment].to_numpy(dtype=float))
+    if cohorts.counts()["cohorts"] == 0:
+        raise _Unsupported("no unit adopts the treatment")  # the stacked fit says why
+    made: dict[object, tuple[list[str], np.ndarray]] = {}
+    added: dict[str, np.ndarray] = {}
+    out: list[Spec] = []
+    for spec in specs:
+        options = spec.estimator.staggered
+        if spec.estimator.method != EVENT_STUDY or options is None:
+            out.append(spec)
+            continue
+        if options not in made:
+            x, names = event_indicators(cohorts, options)
+            rel = np.array([int(n.split("=")[1]) for n in names])
+            a = (rel >= 0) / max(int((rel >= 0).sum()), 1)
+            after = np.flatnonzero(a)
+            if not len(after):
+                raise _Unsupported("no period after adoption in the window")
+            j0, k = int(after[0]), len(names)
+            others = [j for j in range(k) if j != j0]
+            m = np.zeros((k, k))
+            m[j0, 0] = 1.0 / a[j0]
+            for col, j in enumerate(others, start=1):
+                m[j, col] = 1.0
+                m[j0, col] = -a[j] / a[j0]
+            tag = f"{EVENT_COLUMN}{len(made)}_"
+            columns = [f"{tag}focal", *(f"{tag}{j}" for j in others)]
+            for name, values in zip(columns, (x @ m).T):
+                added[name] = values
+            made[options] = (columns, np.linalg.inv(m))
+        columns, t = made[options]
+        strict[spec.spec_id] = ([*columns, *spec.controls], t)
+        out.append(replace(spec, focal=columns[0], controls=(*columns[1:], *spec.controls), estimator=Estimator()))
+    return rows.assign(**added), out, strict, cohorts
 
 
 class _Fit(NamedTuple):
@@ -839,6 +919,10 @@ class _Design:
         if not keep.any():
             raise _Unsupported("no rows")
         rows = sub.loc[keep]
+        # two-way event studies: least squares on their indicators, reparametrized (_as_least_squares); a
+        # draw must keep every one of their regressors and pass the stacked fit's rule, or takes the stacked refit
+        rows, specs, self.strict, cohorts = _as_least_squares(rows, specs, settings)
+        self.specs = specs
         self.cc_index = np.full(len(frame), -1, dtype=np.int64)
         self.cc_index[cc_pos] = np.arange(len(cc_pos))
         self.base_index = np.full(len(frame), -1, dtype=np.int64)
@@ -901,6 +985,14 @@ class _Design:
         # failing that, each draw demeans the drawn rows, weighted by their copies
         self.level_ids = np.unique(self.levels)
         level_of_row = np.searchsorted(self.level_ids, self.levels)
+        # the periods of each resampling level's rows: an event study's cohorts and relative periods are those
+        # of the copies only when the draw holds every period (they are positions among the rows' periods)
+        self.periods_of_level: np.ndarray | None = None
+        if cohorts is not None:
+            n_periods = int(cohorts.period.max()) + 1
+            presence = np.zeros((len(self.level_ids), n_periods))
+            presence[level_of_row, cohorts.period.astype(np.int64)] = 1.0
+            self.periods_of_level = presence
         self.local: _LocalDummies | None = None
         crossing = [i for i in (absorber._active if settings.absorb else []) if i not in nested]
         if d is None and nested and crossing and not any(settings.absorb[i].has_slope for i in crossing):
@@ -1063,6 +1155,8 @@ class _Design:
                 transform = np.concatenate([np.broadcast_to(np.eye(m), (d_count, m, m)), -gamma], axis=1)
         gram = (gram + gram.transpose(0, 2, 1)) / 2
         norm = np.sqrt(np.maximum(np.diagonal(gram, axis1=1, axis2=2), 0.0))
+        if self.strict:
+            self._event_study_checks(counts, gram, alone)
         results: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         fits: dict[tuple[object, ...], _Batch | None] = {}
         absorbed: np.ndarray | None = None
@@ -1073,6 +1167,9 @@ class _Design:
             if key not in fits:
                 fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, (transform, local_gamma))
             fit = fits[key]
+            if spec.spec_id in self.strict and (fit is None or len(fit.idx) != 1 + len(spec.controls)):
+                alone[:] = True  # an event study's regressor left out: the stacked fit decides (not identified)
+                fit = None
             if fit is None:  # not identified in these draws (those deciding otherwise take their own refit)
                 results[spec.spec_id] = (np.full(d_count, nan), np.full(d_count, nan), np.full(d_count, nan))
                 continue
@@ -1097,6 +1194,35 @@ class _Design:
             out.append([(s.spec_id, float(results[s.spec_id][0][i]), float(results[s.spec_id][1][i]),
                          float(results[s.spec_id][2][i])) for s in specs])
         return out
+
+    def _event_study_checks(self, counts: np.ndarray, gram: np.ndarray, alone: np.ndarray) -> None:
+        """Mark in ``alone`` the draws whose event studies the reparametrized least squares cannot vouch for:
+        a draw without some period of the design's rows (the cohorts' positions would shift), or whose
+        indicators and controls come near the stacked fit's rule (a column's norm at most 1e-9 of the
+        largest, or the least eigenvalue of their correlation matrix at most 1e-10: not identified), with
+        a margin of 100. Those draws take :meth:`_refit_weighted`, which leaves event studies to the stacked
+        refit."""
+        if self.periods_of_level is not None:
+            seen = (counts[:, self.level_ids] > 0).astype(float) @ self.periods_of_level
+            alone |= ~np.all(seen > 0, axis=1)
+        for columns, t in self.strict.values():
+            live = np.flatnonzero(~alone)
+            if not len(live):
+                return
+            idx = [self.pos[c] for c in columns]
+            full = np.eye(len(idx))
+            full[: len(t), : len(t)] = t
+            g = full.T @ gram[live][:, idx][:, :, idx] @ full  # the indicators' (and controls') cross products
+            nrm = np.sqrt(np.maximum(np.diagonal(g, axis1=1, axis2=2), 0.0))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = nrm.min(axis=1) / nrm.max(axis=1)
+                corr = g / (nrm[:, :, None] * nrm[:, None, :])
+            fine = ratio > 1e-9 * MARGIN
+            if fine.any():
+                least = np.full(len(live), -np.inf)
+                least[fine] = np.linalg.eigvalsh(corr[fine]).min(axis=1)
+                fine &= least > 1e-10 * MARGIN
+            alone[live[~fine]] = True
 
     def _batch_decide(self, j: int, kept: Sequence[int], norm: np.ndarray, raw_norm: np.ndarray, gram: np.ndarray,
                       alone: np.ndarray) -> bool | None:
@@ -1336,6 +1462,8 @@ class _Design:
         copies = draw.counts[self.levels]
         if not copies.any():  # none of the design's rows drawn: the stacked refit decides
             return None
+        if self.strict and any(s.spec_id in self.strict for s in (self.specs if specs is None else specs)):
+            return None  # an event study the batch could not vouch for (see _event_study_checks)
         m = len(self.columns)
         transform: np.ndarray | None = None
         local_gamma: np.ndarray | None = None  # the columns (partialled) from the rows' stored columns

@@ -423,7 +423,7 @@ def test_a_poisson_draw_starts_from_effects_updated_in_closed_form(wage_panel: p
 
 
 def _event_grid(tmp_path: Path, adoption: bool):
-    """Two-way event studies on linearmodels' jobtraining panel (tests/helpers.training_panel: an open dataset,
+    """Two-way event studies and group-time effects on linearmodels' jobtraining panel (tests/helpers.training_panel: an open dataset,
     training grants adopted by firms in 1988 or 1989, 65 firms never treated; 5 firms miss 1989)."""
     frame = training_panel()
     frame["employment"] = np.exp(frame["lemploy"])
@@ -445,7 +445,10 @@ def _event_grid(tmp_path: Path, adoption: bool):
         "weights": {"unweighted": None, "by_employment": "employment"},
         "control_sets": {"named": {"none": [], "size": ["lemploy"]}},
         "estimators": {"events": {"method": "event_study", "window": [-1, 1]},
-                       "wider": {"method": "event_study", "window": [-2, 1]}},
+                       "wider": {"method": "event_study", "window": [-2, 1]},
+                       "group_time": {"method": "group_time", "window": [-1, 1]},
+                       "group_time_later": {"method": "group_time", "window": [-1, 1],
+                                            "controls_from": "not_yet_treated"}},
         "joint_inference": {"draws": 0},
     }
     grid = load_config(raw)
@@ -453,18 +456,23 @@ def _event_grid(tmp_path: Path, adoption: bool):
 
 
 @pytest.mark.parametrize("adoption", [True, False])
-def test_event_study_draws_as_least_squares_equal_stacked_refits(tmp_path: Path, adoption: bool) -> None:
+def test_staggered_draws_from_the_copies_equal_stacked_refits(tmp_path: Path, adoption: bool) -> None:
     """A two-way event study's draw refitted as least squares on its reparametrized indicators (the focal
-    coefficient is the post-adoption average) equals the stacked refit: estimates and SEs to 1e-9, df exactly,
-    with weights, controls, the firm's, a coarser shared and the heteroskedasticity-robust and homoskedastic
-    kinds, adoption read from a year column or from the treatment; draws without an adopting cohort's firms
-    (not identified) take the stacked refit and say so the same way; two-way clustering stays stacked."""
+    coefficient is the post-adoption average), and group-time effects computed from the units' copies, equal
+    the stacked refits: estimates and SEs to 1e-9, df exactly, with controls (the event study's regressors,
+    the group-time covariates), never-treated and not-yet-treated controls, the firm's (relabelled per copy)
+    and a shared cluster, the heteroskedasticity-robust and homoskedastic kinds, weights for the event
+    study, an unbalanced sample (group-time effects leave out five firms), adoption read from a year column
+    or from the treatment; draws without an adopting cohort's firms (not identified) take the stacked refit and
+    say so the same way; two-way clustered event studies and weighted group-time effects stay stacked."""
     grid, specs, frame = _event_grid(tmp_path, adoption)
     codes, levels = pd.factorize(frame["fcode"], sort=True)
     blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), "fcode")
     reweighted = {s.spec_id for b in blocks for s in b.specs}
-    assert reweighted == {s.spec_id for s in specs if s.inference.kind != "two_way_clustered"}
-    assert {s.inference.kind for s in rest} == {"two_way_clustered"}
+    stacked = {s.spec_id for s in specs if (s.estimator.method == "event_study" and s.inference.kind ==
+                                            "two_way_clustered") or (s.estimator.method == "group_time" and s.weights)}
+    assert reweighted == {s.spec_id for s in specs} - stacked and {s.spec_id for s in rest} == stacked
+    assert {s.estimator.method for s in specs if s.spec_id in reweighted} == {"event_study", "group_time"}
     draws = range(12)
     fast = draw_curves(grid, frame, specs, draws, seed=3, column="fcode").sort_values(KEY, ignore_index=True)
     slow = draw_curves(grid, frame, specs, draws, seed=3, column="fcode", reweight=False).sort_values(

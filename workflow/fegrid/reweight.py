@@ -43,8 +43,9 @@ differently takes the stacked refit (see :meth:`_Design._poisson`). A two-way ev
 least-squares regression on its relative-period indicators reparametrized so that the focal coefficient is
 the reported average (:func:`_as_least_squares`), refitted with the least-squares draws; a draw that
 leaves out one of its regressors, comes near the stacked fit's identification rule or lacks a period takes
-the stacked refit, and so does an event study with two-way clustering. The other staggered-adoption
-specifications always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
+the stacked refit, and so does an event study with two-way clustering. Group-time effects (unweighted)
+are computed from the balanced units counted by their copies (:class:`_GroupTimeDraws`). The other
+staggered-adoption specifications always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
 convergence rule's, for Poisson PML; tests/test_reweight.py).
 """
 
@@ -77,7 +78,7 @@ from .grid import Grid, Spec
 from .lazy import LazyModule
 from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
-from .staggered import EVENT_STUDY, Cohorts, cohorts_of, event_indicators
+from .staggered import EVENT_STUDY, GROUP_TIME, Cohorts, cohorts_of, event_indicators
 
 sp = LazyModule("scipy.sparse")
 csgraph = LazyModule("scipy.sparse.csgraph")
@@ -142,7 +143,8 @@ def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = Non
     estimate in ``observed``, whose null the draws impose) and the others."""
     observed = observed or {}
     fast = [s for s in specs if (s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
-                                 and (s.estimator.method != POISSON or s.spec_id in observed)) or _event_study(s)]
+                                 and (s.estimator.method != POISSON or s.spec_id in observed))
+            or _event_study(s) or _group_time(s)]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
 
@@ -152,6 +154,23 @@ def _event_study(spec: Spec) -> bool:
     not with two-way clustering, whose covariance of the indicators is clipped as a whole before it is
     combined (the combination's own variance, clipped, can differ)."""
     return spec.estimator.method == EVENT_STUDY and not isinstance(covariance_kind(spec.inference.kind), TwoWay)
+
+
+def _row_cohorts(rows: pd.DataFrame, settings: BlockSettings) -> Cohorts:
+    """The adoption design of a design's rows, as the engine computes it (``estimate._design_cohorts``)."""
+    assert settings.unit and settings.time and settings.treatment
+    if settings.adoption:
+        return cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
+                          adoption=rows[settings.adoption].to_numpy(dtype=float))
+    return cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
+                      treatment=rows[settings.treatment].to_numpy(dtype=float))
+
+
+def _group_time(spec: Spec) -> bool:
+    """Whether ``spec`` holds group-time effects that draws refit from the copies' counts (:class:`_GroupTimeDraws`):
+    not weighted (the engine refuses weights for them), clustered by one column or by the unit."""
+    return (spec.estimator.method == GROUP_TIME and spec.weights is None
+            and (spec.inference.kind != "clustered" or len(spec.inference.by[0]) == 1))
 
 
 #: The prefix of the columns a design adds for its event studies' reparametrized indicators.
@@ -180,13 +199,7 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
     strict: dict[str, tuple[list[str], np.ndarray]] = {}
     if not any(s.estimator.method == EVENT_STUDY for s in specs):
         return rows, specs, strict, None
-    assert settings.unit and settings.time and settings.treatment
-    if settings.adoption:
-        cohorts = cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
-                             adoption=rows[settings.adoption].to_numpy(dtype=float))
-    else:
-        cohorts = cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
-                             treatment=rows[settings.treatment].to_numpy(dtype=float))
+    cohorts = _row_cohorts(rows, settings)
     if cohorts.counts()["cohorts"] == 0:
         raise _Unsupported("no unit adopts the treatment")  # the stacked fit says why
     made: dict[object, tuple[list[str], np.ndarray]] = {}
@@ -901,14 +914,12 @@ class _Dim:
         return offsets[position] + self.local[rows]
 
 
-class _Design:
-    """One complete-case group of a block's least-squares, 2SLS and Poisson PML specifications, prepared
-    once per chunk of draws."""
+class _DesignRows:
+    """The rows of one complete-case group of a block, singletons dropped as the engine drops them, with what
+    tells whether a draw's stacked rows drop exactly the copies of the rows dropped here."""
 
-    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
-                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str],
-                 observed: Mapping[str, float]) -> None:
-        self.specs = specs
+    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, settings: BlockSettings,
+                 levels: np.ndarray, n_levels: int, copied: set[str]) -> None:
         self.settings = settings
         self.n_frame = len(frame)
         cc_pos = positions[cc]
@@ -918,11 +929,7 @@ class _Design:
                 if self.check_singletons else np.ones(len(sub), dtype=bool))
         if not keep.any():
             raise _Unsupported("no rows")
-        rows = sub.loc[keep]
-        # two-way event studies: least squares on their indicators, reparametrized (_as_least_squares); a
-        # draw must keep every one of their regressors and pass the stacked fit's rule, or takes the stacked refit
-        rows, specs, self.strict, cohorts = _as_least_squares(rows, specs, settings)
-        self.specs = specs
+        self.rows = sub.loc[keep]
         self.cc_index = np.full(len(frame), -1, dtype=np.int64)
         self.cc_index[cc_pos] = np.arange(len(cc_pos))
         self.base_index = np.full(len(frame), -1, dtype=np.int64)
@@ -938,6 +945,48 @@ class _Design:
         # counts: only the levels of terms shared by the copies can be left alone in a draw
         self.quick_singletons = bool(keep.all()) and all(
             _nested(dim.codes, self.cc_levels) for dim in self._cc_dims.values() if dim.copied)
+
+    def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
+        n = int(codes.max()) + 1 if len(codes) else 0
+        if not self.copied.intersection(columns):
+            return _Dim(codes, n, False)
+        pair = levels.astype(np.int64) * max(n, 1) + codes
+        uniq, inverse = np.unique(pair, return_inverse=True)
+        first_of_level = np.searchsorted(uniq // max(n, 1), np.arange(self.n_levels))
+        local = inverse - first_of_level[levels]
+        per_level = np.bincount(uniq // max(n, 1), minlength=self.n_levels)
+        return _Dim(codes, n, True, local.astype(np.int64), per_level, inverse.astype(np.int64), uniq // max(n, 1))
+
+    def _singletons_agree(self, draw: Draw) -> bool:
+        """Whether the stacked draw drops exactly the copies of the rows the original design drops."""
+        if not self.check_singletons:
+            return True
+        if self.quick_singletons:  # no level of a term shared by the copies is left alone: nothing changes
+            copies = draw.counts[self.cc_levels]
+            if all(not np.any(np.bincount(dim.codes, copies, minlength=dim.n) == 1)
+                   for dim in self._cc_dims.values() if not dim.copied):
+                return True
+        cc = self.cc_index[draw.rows]
+        on = cc >= 0
+        rows, position = cc[on], draw.position[on]
+        codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self._cc_dims.items()}
+        frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
+        keep = drop_singletons(frame, self.settings.absorb, codes_of=lambda g: codes[g])
+        return bool(np.array_equal(keep, self.cc_keep[rows]))
+
+
+class _Design(_DesignRows):
+    """One complete-case group of a block's least-squares, 2SLS and Poisson PML specifications, prepared
+    once per chunk of draws."""
+
+    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
+                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str],
+                 observed: Mapping[str, float]) -> None:
+        super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
+        # two-way event studies: least squares on their indicators, reparametrized (_as_least_squares); a
+        # draw must keep every one of their regressors and pass the stacked fit's rule, or takes the stacked refit
+        rows, specs, self.strict, cohorts = _as_least_squares(self.rows, specs, settings)
+        self.specs = specs
         codes = LevelCodes(rows)
         dims = {t.groups for t in settings.absorb}
         for s in specs:
@@ -1056,34 +1105,6 @@ class _Design:
                 ok = eigval > 1e-12 * max(float(eigval.max()), 1e-300)
                 within = within - d @ (((eigvec[:, ok] / eigval[ok]) @ eigvec[:, ok].T) @ (dw.T @ within))
         return np.ascontiguousarray(within)
-
-    def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
-        n = int(codes.max()) + 1 if len(codes) else 0
-        if not self.copied.intersection(columns):
-            return _Dim(codes, n, False)
-        pair = levels.astype(np.int64) * max(n, 1) + codes
-        uniq, inverse = np.unique(pair, return_inverse=True)
-        first_of_level = np.searchsorted(uniq // max(n, 1), np.arange(self.n_levels))
-        local = inverse - first_of_level[levels]
-        per_level = np.bincount(uniq // max(n, 1), minlength=self.n_levels)
-        return _Dim(codes, n, True, local.astype(np.int64), per_level, inverse.astype(np.int64), uniq // max(n, 1))
-
-    def _singletons_agree(self, draw: Draw) -> bool:
-        """Whether the stacked draw drops exactly the copies of the rows the original design drops."""
-        if not self.check_singletons:
-            return True
-        if self.quick_singletons:  # no level of a term shared by the copies is left alone: nothing changes
-            copies = draw.counts[self.cc_levels]
-            if all(not np.any(np.bincount(dim.codes, copies, minlength=dim.n) == 1)
-                   for dim in self._cc_dims.values() if not dim.copied):
-                return True
-        cc = self.cc_index[draw.rows]
-        on = cc >= 0
-        rows, position = cc[on], draw.position[on]
-        codes = {g: dim.stacked(rows, position, draw.picks) for g, dim in self._cc_dims.items()}
-        frame = pd.DataFrame(index=pd.RangeIndex(len(rows)))
-        keep = drop_singletons(frame, self.settings.absorb, codes_of=lambda g: codes[g])
-        return bool(np.array_equal(keep, self.cc_keep[rows]))
 
     def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
         """``(spec_id, estimate, std_error, df)`` per specification, or ``None`` to take the stacked refit."""
@@ -1914,6 +1935,205 @@ class _Design:
         return spec.spec_id, float(fit.beta[0]), se, float(cov.df)
 
 
+class _GroupTimeDraws(_DesignRows):
+    """One complete-case group of a block's group-time specifications (Callaway & Sant'Anna 2021, overall
+    estimate, as :func:`fegrid.staggered.group_time` computes it for a draw), refitted from the design's units
+    counted by their copies.
+
+    Every quantity of the estimator is a mean over the balanced panel's units: on a draw's stacked rows, a
+    unit drawn ``c`` times counts ``c`` times (cohort shares, treated and control means, the covariates' fit
+    among the controls), and each copy has the same influence on the estimate. Its variance sums that
+    influence by cluster: a cluster that the copies relabel (the unit's, the resampling column's) once per
+    copy of its level, with the copies' count of clusters; a shared cluster over its units' copies, counted
+    once if drawn at all. A draw without some period of the design's rows (the periods are positions among
+    them), without an adopting unit or cohort, with a covariates' fit near rank deficiency, or whose
+    estimate or SE is not finite, takes the stacked refit (which decides and says why)."""
+
+    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
+                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str], column: str) -> None:
+        super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
+        rows, self.specs = self.rows, specs
+        design = _row_cohorts(rows, settings)
+        unit, period = design.unit, design.period.astype(np.int64)
+        self.n_periods = n_periods = int(period.max()) + 1
+        if np.unique(unit * n_periods + period).size != len(rows):
+            raise _Unsupported("a unit observed twice in a period")
+        n_units = int(unit.max()) + 1
+        unit_level = np.full(n_units, -1, dtype=np.int64)
+        unit_level[unit] = self.levels
+        if not np.array_equal(unit_level[unit], self.levels):
+            raise _Unsupported("a unit in several resampling levels")
+        first_row = np.full(n_units, len(unit))
+        np.minimum.at(first_row, unit, np.arange(len(unit)))
+        start = design.cohort[first_row]
+        # per level: its rows' periods, and its units that adopt inside the periods (the engine's cohort count)
+        self.periods_of_level = np.zeros((n_levels, n_periods))
+        self.periods_of_level[self.levels, period] = 1.0
+        self.adopters_of_level = np.bincount(unit_level, np.isfinite(start) & (start > 0), minlength=n_levels)
+        full = np.bincount(unit, minlength=n_units) == n_periods
+        if not full.any():
+            raise _Unsupported("no unit observed in every period")
+        self.full = np.flatnonzero(full)  # the balanced panel's units (the engine renumbers them in this order)
+        self.unit_level = unit_level[self.full]
+        group = np.where(np.isfinite(start), start, np.inf)[self.full]
+        self.group = group
+        self.cohorts = [int(g) for g in np.unique(group[np.isfinite(group)]) if 0 < g < n_periods]
+        if not self.cohorts:
+            raise _Unsupported("no cohort adopts inside the periods among the balanced units")
+        self.member = np.column_stack([group == g for g in self.cohorts]).astype(float)
+        on_full = full[unit]
+        where = np.full(n_units, -1, dtype=np.int64)
+        where[self.full] = np.arange(len(self.full))
+        self._unit_rows = (where[unit[on_full]], period[on_full], np.flatnonzero(on_full))
+        # each covariance choice's clusters, per balanced unit: relabelled per copy, or shared by the copies
+        self.clusters: dict[tuple[str, ...], tuple[np.ndarray, bool]] = {}
+        for spec in specs:
+            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (settings.unit,)
+            if dim in self.clusters:
+                continue
+            codes = pd.factorize(rows[dim[0]])[0] if dim[0] in rows else None
+            if codes is None or (codes < 0).any():
+                raise _Unsupported("a cluster column the design lacks")
+            per_unit = np.full(len(self.full), -1, dtype=np.int64)
+            u_rows, _, r = self._unit_rows
+            per_unit[u_rows] = codes[r]
+            if not np.array_equal(per_unit[u_rows], codes[r]):
+                raise _Unsupported("clusters that vary within a unit")  # the engine refuses them: stacked
+            self.clusters[dim] = (pd.factorize(per_unit)[0], dim[0] in (settings.unit, column))
+        self._tables: dict[tuple[str, tuple[str, ...]], tuple[np.ndarray, np.ndarray | None]] = {}
+
+    def _table(self, outcome: str, controls: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray | None]:
+        """The balanced units' outcome by period (units, periods), and their covariates (units, periods, k)."""
+        key = (outcome, controls)
+        if key not in self._tables:
+            u, t, r = self._unit_rows
+            ymat = np.full((len(self.full), self.n_periods), np.nan)
+            ymat[u, t] = self.rows[outcome].to_numpy(dtype=float)[r]
+            xmat = None
+            if controls:
+                xmat = np.full((len(self.full), self.n_periods, len(controls)), np.nan)
+                xmat[u, t] = self.rows[list(controls)].to_numpy(dtype=float)[r]
+            self._tables[key] = (ymat, xmat)
+        return self._tables[key]
+
+    def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
+        return self.refit_many([draw])[0]
+
+    def refit_many(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
+        """``(spec_id, estimate, std_error, df)`` per specification and draw, or ``None``: the stacked refit."""
+        if not draws:
+            return []
+        counts = np.stack([d.counts for d in draws]).astype(float)
+        ok = counts[:, self.levels].sum(axis=1) > 0
+        ok &= np.all(counts @ self.periods_of_level > 0, axis=1)
+        ok &= counts @ self.adopters_of_level > 0
+        ok &= np.array([bool(ok[i]) and self._singletons_agree(d) for i, d in enumerate(draws)])
+        c = counts[:, self.unit_level]  # (draws, balanced units): each unit's copies
+        n = c.sum(axis=1)
+        ok &= (n > 0) & ((c @ self.member) > 0).any(axis=1)
+        live = np.flatnonzero(ok)
+        got: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        size = max(1, BATCH_CELLS // max(1, len(self.full) * len(self.cohorts) * self.n_periods))
+        for spec in self.specs:
+            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (self.settings.unit,)
+            options = spec.estimator.staggered
+            assert options is not None
+            key = (spec.outcome, spec.controls, options.control, dim)
+            if key not in got:
+                out = np.full((3, len(draws)), np.nan)
+                for start in range(0, len(live), size):
+                    part = live[start: start + size]
+                    out[:, part] = self._overall(spec, options.control, dim, c[part], n[part], counts[part])
+                got[key] = (out[0], out[1], out[2])
+        results: list[list[tuple[str, float, float, float]] | None] = []
+        for i in range(len(draws)):
+            rows = []
+            for spec in self.specs:
+                dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (self.settings.unit,)
+                options = spec.estimator.staggered
+                assert options is not None
+                est, se, df = got[(spec.outcome, spec.controls, options.control, dim)]
+                if not (ok[i] and np.isfinite(est[i]) and np.isfinite(se[i])):
+                    rows = None
+                    break
+                rows.append((spec.spec_id, float(est[i]), float(se[i]), float(df[i])))
+            results.append(rows)
+        return results
+
+    def _overall(self, spec: Spec, control: str, dim: tuple[str, ...], c: np.ndarray, n: np.ndarray,
+                 counts: np.ndarray) -> np.ndarray:
+        """Estimates, SEs and df of the overall group-time effect for draws with units' copies ``c``
+        (draws, units); NaN for a draw that the stacked refit must decide."""
+        ymat, xmat = self._table(spec.outcome, spec.controls)
+        group, member = self.group, self.member
+        d_count = len(n)
+        pg = (c @ member) / n[:, None]  # the cohorts' shares of the units
+        cells = [(gi, g, t) for gi, g in enumerate(self.cohorts) for t in range(g, self.n_periods)]
+        att = np.zeros((d_count, len(cells)))
+        psi = np.zeros((d_count, len(group), len(cells)))
+        sel = np.zeros((d_count, len(cells)))
+        doubt = np.zeros(d_count, dtype=bool)
+        for k, (gi, g, t) in enumerate(cells):
+            mine = member[:, gi]
+            ctrl = (~np.isfinite(group) if control == "never_treated" else (group > max(t, g - 1)) & (mine == 0))
+            ctrl = ctrl.astype(float)
+            dy = ymat[:, t] - ymat[:, g - 1]
+            s1, s0 = c @ mine, c @ ctrl
+            fine = (s1 > 0) & (s0 > 0)
+            if not fine.any():
+                continue
+            s1, s0 = np.where(fine, s1, 1.0), np.where(fine, s0, 1.0)
+            if xmat is None:
+                mu1, mu0 = (c @ (mine * dy)) / s1, (c @ (ctrl * dy)) / s0
+                a = mu1 - mu0
+                ps = (mine * (dy - mu1[:, None]) / (s1 / n)[:, None]
+                      - ctrl * (dy - mu0[:, None]) / (s0 / n)[:, None]) / n[:, None]
+            else:
+                x = np.column_stack([np.ones(len(group)), xmat[:, g - 1, :]])
+                cw = c * ctrl
+                gram = np.einsum("du,ui,uj->dij", cw, x, x)
+                gram[~fine] = np.eye(x.shape[1])
+                sv = np.linalg.svd(gram, compute_uv=False)
+                doubt |= fine & ~(sv[:, -1] > 1e-9 * sv[:, 0])  # near the engine's rank rule: the stacked refit
+                gram[doubt] = np.eye(x.shape[1])
+                b = np.linalg.solve(gram, ((cw * dy) @ x)[:, :, None])[:, :, 0]
+                resid = dy[None, :] - b @ x.T
+                a = (c * mine * resid).sum(axis=1) / s1
+                lever = np.linalg.solve(gram, (((c * mine) @ x) / s1[:, None])[:, :, None])[:, :, 0]
+                ps = mine * (resid - a[:, None]) / s1[:, None] - ctrl * (lever @ x.T) * resid
+            att[:, k] = np.where(fine, a, 0.0)
+            psi[:, :, k] = np.where(fine[:, None], ps, 0.0)
+            sel[:, k] = fine
+        coh = np.array([gi for gi, _, _ in cells])
+        raw = sel * pg[:, coh]
+        total = raw.sum(axis=1)
+        doubt |= ~(total > 0)
+        total = np.where(total > 0, total, 1.0)
+        estimate = (raw * att).sum(axis=1) / total
+        # the cohort shares' influence, and the overall estimate's (as group_time's aggregate)
+        share = ((member[None, :, :] - pg[:, None, :]) / n[:, None, None])[:, :, coh] * sel[:, None, :]
+        influence = (np.einsum("duc,dc->du", psi, raw / total[:, None])
+                     + np.einsum("duc,dc->du", share, att) / total[:, None]
+                     - share.sum(axis=2) * ((raw * att).sum(axis=1) / total**2)[:, None])
+        codes, relabelled = self.clusters[dim]
+        n_clusters = int(codes.max()) + 1
+        if relabelled:  # each copy of a level holds its clusters once: sums over the units, counted per copy
+            sums = np.stack([np.bincount(codes, row, minlength=n_clusters) for row in influence])
+            level = np.zeros(n_clusters, dtype=np.int64)
+            level[codes] = self.unit_level
+            copies = counts[:, level]
+            squares, n_cl = (sums * sums * copies).sum(axis=1), copies.sum(axis=1)
+        else:  # a shared cluster: over its units' copies, one cluster whatever the copies
+            sums = np.stack([np.bincount(codes, row, minlength=n_clusters) for row in c * influence])
+            held = np.stack([np.bincount(codes, row, minlength=n_clusters) for row in c]) > 0
+            squares, n_cl = (sums * sums).sum(axis=1), held.sum(axis=1).astype(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            factor = np.where(n_cl > 1, n_cl / (n_cl - 1), np.nan)
+            se = np.sqrt(squares * factor)
+        estimate[doubt] = np.nan
+        return np.vstack([estimate, se, n_cl - 1])
+
+
 class ReweightedBlock:
     """The least-squares, 2SLS and Poisson PML specifications of one block (sample, absorbed effects,
     weights), prepared once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the
@@ -1937,10 +2157,17 @@ class ReweightedBlock:
                 mask &= notna[col]
             groups.setdefault(np.packbits(mask).tobytes(), (mask, []))[1].append(spec)
         copied = {grid.panel.unit, column}
-        self.designs = [_Design(frame, positions, mask, members, settings, levels, n_levels, copied, observed)
-                        for mask, members in groups.values() if mask.any()]
-        if len(self.designs) != len(groups):
+        if not all(mask.any() for mask, _ in groups.values()):
             raise _Unsupported("a design without rows")
+        self.designs: list[_Design | _GroupTimeDraws] = []
+        for mask, members in groups.values():
+            group_time = [s for s in members if s.estimator.method == GROUP_TIME]
+            rest = [s for s in members if s.estimator.method != GROUP_TIME]
+            if rest:
+                self.designs.append(_Design(frame, positions, mask, rest, settings, levels, n_levels, copied, observed))
+            if group_time:
+                self.designs.append(_GroupTimeDraws(frame, positions, mask, group_time, settings, levels, n_levels,
+                                                    copied, column))
 
     def refit(self, draw: Draw) -> list[dict[str, Any]] | None:
         if not draw.counts[self.levels_in_sample].any():

@@ -423,8 +423,9 @@ def test_a_poisson_draw_starts_from_effects_updated_in_closed_form(wage_panel: p
 
 
 def _event_grid(tmp_path: Path, adoption: bool):
-    """Two-way event studies and group-time effects on linearmodels' jobtraining panel (tests/helpers.training_panel: an open dataset,
-    training grants adopted by firms in 1988 or 1989, 65 firms never treated; 5 firms miss 1989)."""
+    """Two-way event studies and group-time effects on linearmodels' jobtraining panel (an open dataset, see
+    tests/helpers.training_panel: training grants adopted by firms in 1988 or 1989, 65 firms never treated;
+    5 firms miss 1989)."""
     frame = training_panel()
     frame["employment"] = np.exp(frame["lemploy"])
     treated_1988 = frame.loc[frame["grant_year"] == 1988, "fcode"].drop_duplicates().iloc[:3].tolist()

@@ -45,8 +45,8 @@ the reported average (:func:`_as_least_squares`), refitted with the least-square
 leaves out one of its regressors, comes near the stacked fit's identification rule or lacks a period takes
 the stacked refit, and so does an event study with two-way clustering. Group-time effects (unweighted)
 are computed from the balanced units counted by their copies (:class:`_GroupTimeDraws`). The other
-staggered-adoption specifications always take the stacked path. The results equal the stacked refits' to the demeaning tolerance (the
-convergence rule's, for Poisson PML; tests/test_reweight.py).
+staggered-adoption specifications always take the stacked path. The results equal the stacked refits' to
+the demeaning tolerance (the convergence rule's, for Poisson PML; tests/test_reweight.py).
 """
 
 from __future__ import annotations

@@ -20,6 +20,7 @@ from fegrid.estimate import fit_block
 from fegrid.grid import load_config, spec_table
 from fegrid.joint import draw_curves, joint_tests
 from fegrid.reweight import draw_levels, prepare_blocks
+from fegrid.samples import sample_rows
 
 KEY = ["draw", "spec_id"]
 
@@ -423,11 +424,16 @@ def test_a_poisson_draw_starts_from_effects_updated_in_closed_form(wage_panel: p
 
 
 def _event_grid(tmp_path: Path, adoption: bool):
-    """Two-way event studies and group-time effects on linearmodels' jobtraining panel (an open dataset, see
+    """Two-way event studies, group-time effects and interaction-weighted estimates on linearmodels' jobtraining
+    panel (an open dataset, see
     tests/helpers.training_panel: training grants adopted by firms in 1988 or 1989, 65 firms never treated;
     5 firms miss 1989)."""
     frame = training_panel()
     frame["employment"] = np.exp(frame["lemploy"])
+    if adoption:  # two never-treated firms made treated throughout (adopting in 1987): the interaction-weighted
+        # estimate drops their rows, which a draw's design cannot do; its samples holding them stay stacked
+        always = frame.loc[frame["grant_year"].isna(), "fcode"].drop_duplicates().iloc[-2:]
+        frame.loc[frame["fcode"].isin(always), ["grant_year", "trained"]] = [1987.0, 1]
     treated_1988 = frame.loc[frame["grant_year"] == 1988, "fcode"].drop_duplicates().iloc[:3].tolist()
     others = frame.loc[frame["grant_year"] != 1988, "fcode"].drop_duplicates().iloc[:9].tolist()
     raw = {
@@ -449,7 +455,10 @@ def _event_grid(tmp_path: Path, adoption: bool):
                        "wider": {"method": "event_study", "window": [-2, 1]},
                        "group_time": {"method": "group_time", "window": [-1, 1]},
                        "group_time_later": {"method": "group_time", "window": [-1, 1],
-                                            "controls_from": "not_yet_treated"}},
+                                            "controls_from": "not_yet_treated"},
+                       "cohort_weighted": {"method": "interaction_weighted", "window": [-1, 1]},
+                       "last_as_controls": {"method": "interaction_weighted", "window": [-1, 1],
+                                            "controls_from": "last_adopters"}},
         "joint_inference": {"draws": 0},
     }
     grid = load_config(raw)
@@ -459,21 +468,37 @@ def _event_grid(tmp_path: Path, adoption: bool):
 @pytest.mark.parametrize("adoption", [True, False])
 def test_staggered_draws_from_the_copies_equal_stacked_refits(tmp_path: Path, adoption: bool) -> None:
     """A two-way event study's draw refitted as least squares on its reparametrized indicators (the focal
-    coefficient is the post-adoption average), and group-time effects computed from the units' copies, equal
-    the stacked refits: estimates and SEs to 1e-9, df exactly, with controls (the event study's regressors,
-    the group-time covariates), never-treated and not-yet-treated controls, the firm's (relabelled per copy)
-    and a shared cluster, the heteroskedasticity-robust and homoskedastic kinds, weights for the event
-    study, an unbalanced sample (group-time effects leave out five firms), adoption read from a year column
-    or from the treatment; draws without an adopting cohort's firms (not identified) take the stacked refit and
-    say so the same way; two-way clustered event studies and weighted group-time effects stay stacked."""
+    coefficient is the post-adoption average), an interaction-weighted estimate as least squares on its cells
+    with the draw's cohort shares (and their variance), and group-time effects computed from the units'
+    copies, equal the stacked refits: estimates and SEs to 1e-9, df exactly, with controls, never-treated and
+    not-yet-treated controls, the firm's (relabelled per copy) and a shared cluster, the
+    heteroskedasticity-robust and homoskedastic kinds, weights for the least-squares forms, an unbalanced
+    sample (group-time effects leave out five firms), adoption read from a year column or from the treatment,
+    units treated throughout; draws without an adopting cohort's firms (not identified) take the stacked
+    refit and say so the same way; what the shortcuts do not cover stays stacked: two-way clustered event
+    studies, weighted group-time effects, interaction-weighted estimates with homoskedastic or two-way
+    covariance, with the last adopters as controls, or in a sample holding units treated throughout."""
     grid, specs, frame = _event_grid(tmp_path, adoption)
     codes, levels = pd.factorize(frame["fcode"], sort=True)
     blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), "fcode")
     reweighted = {s.spec_id for b in blocks for s in b.specs}
-    stacked = {s.spec_id for s in specs if (s.estimator.method == "event_study" and s.inference.kind ==
-                                            "two_way_clustered") or (s.estimator.method == "group_time" and s.weights)}
+    always = set(frame.loc[frame["grant_year"] == 1987, "fcode"])
+
+    def stays_stacked(s) -> bool:
+        method, kind = s.estimator.method, s.inference.kind
+        if method == "interaction_weighted":
+            rows = frame.iloc[sample_rows(frame, s.sample, grid.panel)]
+            return (kind in ("homoskedastic", "two_way_clustered") or s.estimator.staggered.control != "never_treated"
+                    or bool(always & set(rows["fcode"])))
+        return (method == "event_study" and kind == "two_way_clustered") or (method == "group_time" and bool(s.weights))
+
+    stacked = {s.spec_id for s in specs if stays_stacked(s)}
     assert reweighted == {s.spec_id for s in specs} - stacked and {s.spec_id for s in rest} == stacked
-    assert {s.estimator.method for s in specs if s.spec_id in reweighted} == {"event_study", "group_time"}
+    assert {s.estimator.method for s in specs if s.spec_id in reweighted} == {
+        "event_study", "group_time", "interaction_weighted"}
+    assert bool(always) == adoption and (not adoption or any(s.estimator.method == "interaction_weighted" and
+                                                             s.estimator.staggered.control == "never_treated" and
+                                                             s.inference.kind == "clustered" for s in rest))
     draws = range(12)
     fast = draw_curves(grid, frame, specs, draws, seed=3, column="fcode").sort_values(KEY, ignore_index=True)
     slow = draw_curves(grid, frame, specs, draws, seed=3, column="fcode", reweight=False).sort_values(

@@ -78,7 +78,15 @@ from .grid import Grid, Spec
 from .lazy import LazyModule
 from .poisson import irls, positives_span_everything, zero_group_rows
 from .samples import sample_rows
-from .staggered import EVENT_STUDY, GROUP_TIME, Cohorts, cohorts_of, event_indicators
+from .staggered import (
+    EVENT_STUDY,
+    GROUP_TIME,
+    INTERACTION_WEIGHTED,
+    Cohorts,
+    cohorts_of,
+    event_indicators,
+    interaction_cells,
+)
 
 sp = LazyModule("scipy.sparse")
 csgraph = LazyModule("scipy.sparse.csgraph")
@@ -102,6 +110,10 @@ MARGIN = 100.0
 #: level once, so that a draw's cross products are those sums weighted by the levels' copies (8 MB); larger
 #: designs sum over their rows on each draw.
 MAX_CROSS_CELLS = 1_000_000
+
+#: The same for a design holding event studies or interaction-weighted estimates (64 MB): their many indicator
+#: columns need the batch (each draw alone would take the stacked refit, several times slower).
+MAX_CROSS_CELLS_STAGGERED = 8_000_000
 
 #: Draws a least-squares design refits together (:meth:`_Design.refit_many`): one batched product per
 #: step for all of them instead of one per draw.
@@ -144,7 +156,7 @@ def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = Non
     observed = observed or {}
     fast = [s for s in specs if (s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
                                  and (s.estimator.method != POISSON or s.spec_id in observed))
-            or _event_study(s) or _group_time(s)]
+            or _event_study(s) or _group_time(s) or _interaction_weighted(s)]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
 
@@ -166,6 +178,33 @@ def _row_cohorts(rows: pd.DataFrame, settings: BlockSettings) -> Cohorts:
                       treatment=rows[settings.treatment].to_numpy(dtype=float))
 
 
+def _interaction_weighted(spec: Spec) -> bool:
+    """Whether ``spec`` is an interaction-weighted estimate that draws refit as least squares on its cells with
+    the draw's cohort shares (:func:`_as_least_squares`): never-treated controls, and a covariance kind that
+    sums over ``h e`` (clustered, heteroskedasticity-robust), whose variance the engine's draws take from the
+    aggregate's own ``h`` and the shares' part (``estimate._indicator_result``)."""
+    return (spec.estimator.method == INTERACTION_WEIGHTED and spec.estimator.staggered is not None
+            and spec.estimator.staggered.control == "never_treated"
+            and isinstance(covariance_kind(spec.inference.kind), (OneWay, Robust)))
+
+
+class _LeaveStacked(Exception):
+    """Specifications that a design cannot refit (their ids): the block leaves them to the stacked refit."""
+
+    def __init__(self, ids: set[str]) -> None:
+        super().__init__(", ".join(sorted(ids)))
+        self.ids = ids
+
+
+class _Shares(NamedTuple):
+    """An interaction-weighted estimate's aggregation, computed per draw from the copies: each row's cell
+    (-1: none), which cells are from adoption on, and the clusters of the shares' variance."""
+
+    cell_of_row: np.ndarray
+    post: np.ndarray
+    share_dim: tuple[str, ...]
+
+
 def _group_time(spec: Spec) -> bool:
     """Whether ``spec`` holds group-time effects that draws refit from the copies' counts (:class:`_GroupTimeDraws`):
     not weighted (the engine refuses weights for them), clustered by one column or by the unit."""
@@ -178,7 +217,8 @@ EVENT_COLUMN = "__fegrid_event_study__"
 
 
 def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSettings
-                      ) -> tuple[pd.DataFrame, list[Spec], dict[str, tuple[list[str], np.ndarray]], Cohorts | None]:
+                      ) -> tuple[pd.DataFrame, list[Spec], dict[str, tuple[list[str], np.ndarray]], Cohorts | None,
+                                 dict[str, _Shares]]:
     """The design's rows and specifications with each two-way event study as the least-squares regression that
     gives its estimate as the focal coefficient.
 
@@ -192,13 +232,22 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
     those of :func:`fegrid.staggered.event_indicators` on the design's rows, with their cohorts (of
     :func:`fegrid.staggered.cohorts_of`, as the stacked fit computes them).
 
-    Returns the rows with the new columns, the specifications (event studies replaced by least squares with
-    the same id), per event study its regressors in order with ``T`` (the stacked fit's identification rule
-    reads the indicators' cross products, ``T' G T``; see :meth:`_Design._event_study_checks`), and the
-    rows' cohorts (``None`` without event studies)."""
+    An interaction-weighted estimate (Sun & Abraham 2021) is least squares on its cohort x relative-period
+    cells: the reported aggregate weights the cells from adoption on by their observations, which each draw
+    counts from the copies (the weights then vary by draw: :meth:`_Design._refit_batch` takes the aggregate
+    and its ``h = X B a`` from them), and the estimated shares add their variance (as
+    :func:`fegrid.staggered.share_covariance`). Its rows must all be kept (no unit treated throughout), else
+    :class:`_LeaveStacked`.
+
+    Returns the rows with the new columns, the specifications (replaced by least squares with the same id),
+    per event study and interaction-weighted estimate its regressors in order with ``T`` (the stacked fit's
+    identification rule reads the indicators' cross products, ``T' G T``; see
+    :meth:`_Design._event_study_checks`), the rows' cohorts (``None`` without either), and the
+    interaction-weighted estimates' aggregations."""
     strict: dict[str, tuple[list[str], np.ndarray]] = {}
-    if not any(s.estimator.method == EVENT_STUDY for s in specs):
-        return rows, specs, strict, None
+    shares: dict[str, _Shares] = {}
+    if not any(s.estimator.method in (EVENT_STUDY, INTERACTION_WEIGHTED) for s in specs):
+        return rows, specs, strict, None, shares
     cohorts = _row_cohorts(rows, settings)
     if cohorts.counts()["cohorts"] == 0:
         raise _Unsupported("no unit adopts the treatment")  # the stacked fit says why
@@ -207,6 +256,30 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
     out: list[Spec] = []
     for spec in specs:
         options = spec.estimator.staggered
+        if spec.estimator.method == INTERACTION_WEIGHTED and options is not None:
+            # least squares on the cohort x relative-period cells (the design's rows must all be kept: no unit
+            # treated throughout), the aggregate's weights from each draw's cell counts
+            key = ("cells", options)
+            if key not in made:
+                try:
+                    cells = interaction_cells(cohorts, options)
+                except ValueError:
+                    raise _LeaveStacked({t.spec_id for t in specs if t.estimator.method == INTERACTION_WEIGHTED}
+                                        ) from None
+                if not cells.rows.all() or not cells.cells:
+                    raise _LeaveStacked({t.spec_id for t in specs if t.estimator.method == INTERACTION_WEIGHTED})
+                tag = f"{EVENT_COLUMN}{len(made)}_"
+                columns = [f"{tag}{j}" for j in range(len(cells.cells))]
+                added.update(zip(columns, cells.matrix.T))
+                cell_of_row = np.where(cells.matrix.any(axis=1), cells.matrix.argmax(axis=1), -1)
+                post = np.array([r >= 0 for _, r in cells.cells], dtype=float)
+                made[key] = (columns, np.eye(len(columns)), cell_of_row, post)  # type: ignore[assignment]
+            columns, t, cell_of_row, post = made[key]  # type: ignore[misc]
+            strict[spec.spec_id] = ([*columns, *spec.controls], t)
+            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (settings.unit,)
+            shares[spec.spec_id] = _Shares(cell_of_row, post, dim)  # type: ignore[arg-type]
+            out.append(replace(spec, focal=columns[0], controls=(*columns[1:], *spec.controls), estimator=Estimator()))
+            continue
         if spec.estimator.method != EVENT_STUDY or options is None:
             out.append(spec)
             continue
@@ -232,7 +305,7 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
         columns, t = made[options]
         strict[spec.spec_id] = ([*columns, *spec.controls], t)
         out.append(replace(spec, focal=columns[0], controls=(*columns[1:], *spec.controls), estimator=Estimator()))
-    return rows.assign(**added), out, strict, cohorts
+    return rows.assign(**added), out, strict, cohorts, shares
 
 
 class _Fit(NamedTuple):
@@ -314,14 +387,15 @@ class _Weighted(NamedTuple):
         return codes if self.rows is None else codes[self.rows]
 
 
-def _cross_per_level(u: np.ndarray, w: np.ndarray, level: np.ndarray, n_levels: int) -> np.ndarray | None:
+def _cross_per_level(u: np.ndarray, w: np.ndarray, level: np.ndarray, n_levels: int,
+                     most: int = MAX_CROSS_CELLS) -> np.ndarray | None:
     """``sum_i w_i u_i u_i'`` over the rows of each level, flattened (levels, q * q): the rows laid out
     level by level in a table padded with zero rows, and one batched product; ``None`` when the table
-    would be too large (:data:`MAX_CROSS_CELLS`) or more than half padding."""
+    would be larger than ``most`` numbers or more than half padding."""
     n, q = u.shape
     sizes = np.bincount(level, minlength=n_levels)
     longest = int(sizes.max()) if n else 0
-    if n_levels * q * q > MAX_CROSS_CELLS or n_levels * longest > 2 * n:
+    if n_levels * q * q > most or n_levels * longest > 2 * n:
         return None
     order = np.argsort(level, kind="stable")
     first = np.concatenate([[0], np.cumsum(sizes)[:-1]])
@@ -985,10 +1059,10 @@ class _Design(_DesignRows):
         super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
         # two-way event studies: least squares on their indicators, reparametrized (_as_least_squares); a
         # draw must keep every one of their regressors and pass the stacked fit's rule, or takes the stacked refit
-        rows, specs, self.strict, cohorts = _as_least_squares(self.rows, specs, settings)
+        rows, specs, self.strict, cohorts, self.shares = _as_least_squares(self.rows, specs, settings)
         self.specs = specs
         codes = LevelCodes(rows)
-        dims = {t.groups for t in settings.absorb}
+        dims = {t.groups for t in settings.absorb} | {sh.share_dim for sh in self.shares.values()}
         for s in specs:
             by = s.inference.by
             dims.update(by)
@@ -1042,6 +1116,13 @@ class _Design(_DesignRows):
             presence = np.zeros((len(self.level_ids), n_periods))
             presence[level_of_row, cohorts.period.astype(np.int64)] = 1.0
             self.periods_of_level = presence
+        # interaction-weighted estimates: each resampling level's rows per cell (a draw's cell counts)
+        self.level_cells: dict[str, np.ndarray] = {}
+        for spec_id, sh in self.shares.items():
+            on = sh.cell_of_row >= 0
+            table = np.zeros((n_levels, len(sh.post)))
+            np.add.at(table, (self.levels[on], sh.cell_of_row[on]), 1.0)
+            self.level_cells[spec_id] = table
         self.local: _LocalDummies | None = None
         crossing = [i for i in (absorber._active if settings.absorb else []) if i not in nested]
         if d is None and nested and crossing and not any(settings.absorb[i].has_slope for i in crossing):
@@ -1079,7 +1160,8 @@ class _Design(_DesignRows):
             self.within = self._partialled(self.within, level_of_row)
         if not self.reweighted:
             self.u = np.ascontiguousarray(np.hstack([self.within, self.dummies]))
-            self.cross = _cross_per_level(self.u, self.w, level_of_row, len(self.level_ids))
+            self.cross = _cross_per_level(self.u, self.w, level_of_row, len(self.level_ids),
+                                          MAX_CROSS_CELLS_STAGGERED if self.strict else MAX_CROSS_CELLS)
             if self.local is not None and self.cross is None:  # too large: each draw demeans the drawn rows
                 self.reweighted, self.local, self.u = True, None, None
                 self.within = self.dummies = np.zeros((len(rows), 0))
@@ -1185,8 +1267,16 @@ class _Design(_DesignRows):
         copies_t: np.ndarray | None = None  # (rows, draws)
         for spec in specs:
             key = (spec.outcome, spec.focal, spec.controls)
+            combine = None
+            if spec.spec_id in self.shares:  # the draws' aggregation weights: cells from adoption on, by count
+                post = counts @ self.level_cells[spec.spec_id] * self.shares[spec.spec_id].post
+                total = post.sum(axis=1)
+                alone |= ~(total > 0)
+                combine = np.zeros((d_count, 1 + len(spec.controls)))
+                combine[:, : post.shape[1]] = post / np.where(total > 0, total, 1.0)[:, None]
             if key not in fits:
-                fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, (transform, local_gamma))
+                fits[key] = self._batch_regression(spec, gram, norm, raw_norm, alone, (transform, local_gamma),
+                                                   combine)
             fit = fits[key]
             if spec.spec_id in self.strict and (fit is None or len(fit.idx) != 1 + len(spec.controls)):
                 alone[:] = True  # an event study's regressor left out: the stacked fit decides (not identified)
@@ -1207,6 +1297,8 @@ class _Design(_DesignRows):
                 copies_t = np.ascontiguousarray(copies.T)
             results[spec.spec_id] = self._batch_inference(spec, fit, copies_t, counts, absorbed,
                                                           nested[spec.inference.by])
+            if spec.spec_id in self.shares:
+                results[spec.spec_id] = self._with_shares(spec, fit, results[spec.spec_id], copies_t, counts, alone)
         out: list[list[tuple[str, float, float, float]] | None] = []
         for i in range(d_count):
             if alone[i]:
@@ -1275,16 +1367,22 @@ class _Design(_DesignRows):
         return True
 
     def _batch_regression(self, spec: Spec, gram: np.ndarray, norm: np.ndarray, raw_norm: np.ndarray,
-                          alone: np.ndarray, basis: tuple[np.ndarray | None, np.ndarray | None]) -> _Batch | None:
-        """:meth:`_regression` on the draws not marked ``alone`` (``None``: the focal regressor is absorbed)."""
+                          alone: np.ndarray, basis: tuple[np.ndarray | None, np.ndarray | None],
+                          combine: np.ndarray | None = None) -> _Batch | None:
+        """:meth:`_regression` on the draws not marked ``alone`` (``None``: the focal regressor is absorbed).
+        With ``combine`` (draws, regressors in the specification's order), the estimate is that combination of
+        the coefficients and ``h`` its row of ``B X'`` (every regressor must then be kept)."""
         kept: list[int] = []
-        for c in spec.controls:
-            keep = self._batch_decide(self.pos[c], kept, norm, raw_norm, gram, alone)
-            if keep:
-                kept.append(self.pos[c])
         j = self.pos[spec.focal]
-        if not self._batch_decide(j, kept, norm, raw_norm, gram, alone):
-            return None
+        if spec.spec_id in self.strict:  # every regressor: the stacked fit's own rule was checked on these draws
+            kept = [self.pos[c] for c in spec.controls]
+        else:
+            for c in spec.controls:
+                keep = self._batch_decide(self.pos[c], kept, norm, raw_norm, gram, alone)
+                if keep:
+                    kept.append(self.pos[c])
+            if not self._batch_decide(j, kept, norm, raw_norm, gram, alone):
+                return None
         idx = [j, *kept]
         live = np.flatnonzero(~alone)
         y = self.pos[spec.outcome]
@@ -1299,10 +1397,18 @@ class _Design(_DesignRows):
         ev[:, y] = 1.0
         ev[:, idx] -= beta
         hv = np.zeros_like(ev)
-        hv[:, idx] = bread[:, :, 0]
+        memo: dict[object, Any] = {}
+        if combine is not None and len(idx) == combine.shape[1]:
+            a = combine[live]
+            hv[:, idx] = (bread @ a[:, :, None])[:, :, 0]
+            estimate = (beta * a).sum(axis=1)
+            memo["coefficients"] = beta
+        else:
+            hv[:, idx] = bread[:, :, 0]
+            estimate = beta[:, 0]
         own = tuple(None if b is None else b[live] for b in basis)
         on_rows = self._batch_rows(own, np.stack([ev, hv], axis=2))
-        return _Batch(live, idx, bread, beta[:, 0], on_rows[:, :, 0], on_rows[:, :, 1], own, {})
+        return _Batch(live, idx, bread, estimate, on_rows[:, :, 0], on_rows[:, :, 1], own, memo)
 
     def _batch_rows(self, basis: tuple[np.ndarray | None, np.ndarray | None], v: np.ndarray) -> np.ndarray:
         """``z @ v`` on the rows for each draw (as :meth:`_Weighted.at`): ``v`` (draws, m, r) gives (rows,
@@ -1453,6 +1559,31 @@ class _Design(_DesignRows):
             n = len(codes)
             self._cluster_matrices[dim] = sp.csr_array((np.ones(n), (codes, np.arange(n))), shape=(size, n))
         return self._cluster_matrices[dim]
+
+    def _with_shares(self, spec: Spec, fit: _Batch, got: tuple[np.ndarray, np.ndarray, np.ndarray],
+                     copies: np.ndarray, counts: np.ndarray, alone: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """An interaction-weighted estimate's SE with the variance its estimated cohort shares add (as
+        :func:`fegrid.staggered.share_covariance` on the stacked rows): a row in cell ``c`` from adoption on
+        moves the aggregate by ``(b_c - theta) / M`` (``M`` the draw's observations in those cells), summed by
+        cluster (a relabelled cluster once per copy), times ``G/(G-1)``. A draw where either part is not
+        finite takes the stacked refit (marked in ``alone``)."""
+        estimate, std_error, dfs = got
+        live, sh = fit.draws, self.shares[spec.spec_id]
+        k = len(sh.post)
+        cells_count = (counts[live] @ self.level_cells[spec.spec_id]) * sh.post
+        total = cells_count.sum(axis=1)
+        spread = sh.post * (fit.memo["coefficients"][:, :k] - fit.beta[:, None]) / total[:, None]
+        first = np.vstack([spread.T, np.zeros((1, len(live)))])[np.where(sh.cell_of_row >= 0, sh.cell_of_row, k)]
+        sums, mult, g = self._batch_cluster_sums(sh.share_dim, first, copies[:, live], counts[live])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            added = (sums * sums * mult.T).sum(axis=0) * np.where(g > 1, g / (g - 1), np.nan)
+            se = np.sqrt(std_error[live] ** 2 + added)
+        doubt = ~(np.isfinite(se) & np.isfinite(estimate[live]))
+        alone[live[doubt]] = True
+        std_error = std_error.copy()
+        std_error[live] = se
+        return estimate, std_error, dfs
 
     def _batch_cluster_sums(self, dim: tuple[str, ...], values: np.ndarray, copies: np.ndarray, counts: np.ndarray
                             ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -2160,14 +2291,24 @@ class ReweightedBlock:
         if not all(mask.any() for mask, _ in groups.values()):
             raise _Unsupported("a design without rows")
         self.designs: list[_Design | _GroupTimeDraws] = []
+        self.left: list[Spec] = []  # specifications a design leaves to the stacked refit
         for mask, members in groups.values():
             group_time = [s for s in members if s.estimator.method == GROUP_TIME]
             rest = [s for s in members if s.estimator.method != GROUP_TIME]
-            if rest:
-                self.designs.append(_Design(frame, positions, mask, rest, settings, levels, n_levels, copied, observed))
+            while rest:
+                try:
+                    self.designs.append(_Design(frame, positions, mask, rest, settings, levels, n_levels, copied,
+                                                observed))
+                    break
+                except _LeaveStacked as exc:  # those specifications take the stacked refit; the others stay
+                    self.left.extend(s for s in rest if s.spec_id in exc.ids)
+                    rest = [s for s in rest if s.spec_id not in exc.ids]
             if group_time:
                 self.designs.append(_GroupTimeDraws(frame, positions, mask, group_time, settings, levels, n_levels,
                                                     copied, column))
+        if self.left:
+            gone = {s.spec_id for s in self.left}
+            self.specs = [s for s in specs if s.spec_id not in gone]
 
     def refit(self, draw: Draw) -> list[dict[str, Any]] | None:
         if not draw.counts[self.levels_in_sample].any():
@@ -2211,7 +2352,11 @@ def prepare_blocks(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], level
     blocks: list[ReweightedBlock] = []
     for key in sorted(by_block):
         try:
-            blocks.append(ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column, observed))
+            block = ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column, observed)
         except (_Unsupported, FegridError, np.linalg.LinAlgError):
             rest.extend(by_block[key])
+            continue
+        rest.extend(block.left)
+        if block.specs:
+            blocks.append(block)
     return blocks, rest

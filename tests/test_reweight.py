@@ -456,6 +456,7 @@ def _event_grid(tmp_path: Path, adoption: bool):
                        "group_time": {"method": "group_time", "window": [-1, 1]},
                        "group_time_later": {"method": "group_time", "window": [-1, 1],
                                             "controls_from": "not_yet_treated"},
+                       "imputed": {"method": "imputation", "window": [-1, 1]},
                        "cohort_weighted": {"method": "interaction_weighted", "window": [-1, 1]},
                        "last_as_controls": {"method": "interaction_weighted", "window": [-1, 1],
                                             "controls_from": "last_adopters"}},
@@ -469,15 +470,16 @@ def _event_grid(tmp_path: Path, adoption: bool):
 def test_staggered_draws_from_the_copies_equal_stacked_refits(tmp_path: Path, adoption: bool) -> None:
     """A two-way event study's draw refitted as least squares on its reparametrized indicators (the focal
     coefficient is the post-adoption average), an interaction-weighted estimate as least squares on its cells
-    with the draw's cohort shares (and their variance), and group-time effects computed from the units'
-    copies, equal the stacked refits: estimates and SEs to 1e-9, df exactly, with controls, never-treated and
-    not-yet-treated controls, the firm's (relabelled per copy) and a shared cluster, the
-    heteroskedasticity-robust and homoskedastic kinds, weights for the least-squares forms, an unbalanced
-    sample (group-time effects leave out five firms), adoption read from a year column or from the treatment,
-    units treated throughout; draws without an adopting cohort's firms (not identified) take the stacked
-    refit and say so the same way; what the shortcuts do not cover stays stacked: two-way clustered event
-    studies, weighted group-time effects, interaction-weighted estimates with homoskedastic or two-way
-    covariance, with the last adopters as controls, or in a sample holding units treated throughout."""
+    with the draw's cohort shares (and their variance), group-time effects computed from the units' copies,
+    and imputation estimates from the copies' arrays, equal the stacked refits: estimates and SEs to 1e-9, df
+    exactly, with controls, never-treated and not-yet-treated controls, the firm's (relabelled per copy) and a
+    shared cluster, the heteroskedasticity-robust and homoskedastic kinds, weights for the least-squares
+    forms, an unbalanced sample (group-time effects leave out five firms), adoption read from a year column or
+    from the treatment, units treated throughout; draws without an adopting cohort's firms (not identified)
+    take the stacked refit and say so the same way; what the shortcuts do not cover stays stacked: two-way
+    clustered event studies, weighted group-time and imputation estimates, interaction-weighted estimates
+    with homoskedastic or two-way covariance, with the last adopters as controls, or in a sample holding
+    units treated throughout."""
     grid, specs, frame = _event_grid(tmp_path, adoption)
     codes, levels = pd.factorize(frame["fcode"], sort=True)
     blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), "fcode")
@@ -490,12 +492,13 @@ def test_staggered_draws_from_the_copies_equal_stacked_refits(tmp_path: Path, ad
             rows = frame.iloc[sample_rows(frame, s.sample, grid.panel)]
             return (kind in ("homoskedastic", "two_way_clustered") or s.estimator.staggered.control != "never_treated"
                     or bool(always & set(rows["fcode"])))
-        return (method == "event_study" and kind == "two_way_clustered") or (method == "group_time" and bool(s.weights))
+        return ((method == "event_study" and kind == "two_way_clustered")
+                or (method in ("group_time", "imputation") and bool(s.weights)))
 
     stacked = {s.spec_id for s in specs if stays_stacked(s)}
     assert reweighted == {s.spec_id for s in specs} - stacked and {s.spec_id for s in rest} == stacked
     assert {s.estimator.method for s in specs if s.spec_id in reweighted} == {
-        "event_study", "group_time", "interaction_weighted"}
+        "event_study", "group_time", "interaction_weighted", "imputation"}
     assert bool(always) == adoption and (not adoption or any(s.estimator.method == "interaction_weighted" and
                                                              s.estimator.staggered.control == "never_treated" and
                                                              s.inference.kind == "clustered" for s in rest))

@@ -135,10 +135,10 @@ def draw_curves(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], draws: S
                 seed: int, column: str, reweight: bool = True) -> pd.DataFrame:
     """Refit ``specs`` on each bootstrap draw; one row per draw and specification.
 
-    Least-squares, 2SLS, Poisson PML, two-way event-study and group-time specifications are refitted as
-    reweightings of the data (:mod:`fegrid.reweight`) unless ``reweight`` is false; the others (the other
-    staggered-adoption methods), and any block of a draw the reweighting leaves, are refitted on the draw's
-    stacked panel.
+    Least-squares, 2SLS, Poisson PML and (most) staggered-adoption specifications are refitted as
+    reweightings of the data, or from the copies' arrays (:mod:`fegrid.reweight`), unless ``reweight`` is
+    false; the others, and any block of a draw those shortcuts leave, are refitted on the draw's stacked
+    panel.
     """
     rows: list[dict[str, Any]] = []
     all_blocks: dict[str, list[Spec]] = {}

@@ -43,9 +43,11 @@ differently takes the stacked refit (see :meth:`_Design._poisson`). A two-way ev
 least-squares regression on its relative-period indicators reparametrized so that the focal coefficient is
 the reported average (:func:`_as_least_squares`), refitted with the least-squares draws; a draw that
 leaves out one of its regressors, comes near the stacked fit's identification rule or lacks a period takes
-the stacked refit, and so does an event study with two-way clustering. Group-time effects (unweighted)
-are computed from the balanced units counted by their copies (:class:`_GroupTimeDraws`). The other
-staggered-adoption specifications always take the stacked path. The results equal the stacked refits' to
+the stacked refit, and so does an event study with two-way clustering. An interaction-weighted estimate is
+least squares on its cohort x period cells with each draw's cohort shares (never-treated controls, clustered
+or heteroskedasticity-robust). Group-time effects (unweighted) are computed from the balanced units counted
+by their copies (:class:`_GroupTimeDraws`), and imputation estimates by the engine's own function on the
+copies' arrays (:class:`_ImputationDraws`). Other staggered-adoption specifications take the stacked path. The results equal the stacked refits' to
 the demeaning tolerance (the convergence rule's, for Poisson PML; tests/test_reweight.py).
 """
 
@@ -81,10 +83,12 @@ from .samples import sample_rows
 from .staggered import (
     EVENT_STUDY,
     GROUP_TIME,
+    IMPUTATION,
     INTERACTION_WEIGHTED,
     Cohorts,
     cohorts_of,
     event_indicators,
+    imputation_pieces,
     interaction_cells,
 )
 
@@ -156,7 +160,7 @@ def fast_specs(specs: Sequence[Spec], observed: Mapping[str, float] | None = Non
     observed = observed or {}
     fast = [s for s in specs if (s.estimator.method in REWEIGHTED_METHODS and s.estimator.staggered is None
                                  and (s.estimator.method != POISSON or s.spec_id in observed))
-            or _event_study(s) or _group_time(s) or _interaction_weighted(s)]
+            or _event_study(s) or _group_time(s) or _interaction_weighted(s) or _imputation(s)]
     ids = {s.spec_id for s in fast}
     return fast, [s for s in specs if s.spec_id not in ids]
 
@@ -186,6 +190,14 @@ def _interaction_weighted(spec: Spec) -> bool:
     return (spec.estimator.method == INTERACTION_WEIGHTED and spec.estimator.staggered is not None
             and spec.estimator.staggered.control == "never_treated"
             and isinstance(covariance_kind(spec.inference.kind), (OneWay, Robust)))
+
+
+def _imputation(spec: Spec) -> bool:
+    """Whether ``spec`` is an imputation estimate that draws compute from the copies' arrays
+    (:class:`_ImputationDraws`): unweighted, absorbing effects only (what the engine takes), clustered by one
+    set of columns or by the unit."""
+    return (spec.estimator.method == IMPUTATION and spec.weights is None
+            and all(t.kind == "effect" for t in spec.absorb))
 
 
 class _LeaveStacked(Exception):
@@ -2265,6 +2277,84 @@ class _GroupTimeDraws(_DesignRows):
         return np.vstack([estimate, se, n_cl - 1])
 
 
+class _ImputationDraws(_DesignRows):
+    """One complete-case group of a block's imputation specifications (Borusyak, Jaravel & Spiess 2024), computed
+    on each draw by the engine's own :func:`fegrid.staggered.imputation_pieces` from the design's arrays taken at
+    the copies' rows, without a stacked table: each copy's unit (and resampling-column) levels are its own, the
+    other effects' and clusters' levels shared, and the cohorts are the rows' own (the same positions when the
+    draw holds every period of the design's rows). The same numbers as the stacked refit, in another row order;
+    a draw without some period or adopting unit, or whose estimate the engine refuses, takes the stacked refit."""
+
+    def __init__(self, frame: pd.DataFrame, positions: np.ndarray, cc: np.ndarray, specs: list[Spec],
+                 settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str], column: str) -> None:
+        super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
+        rows, self.specs = self.rows, specs
+        self.cohorts = _row_cohorts(rows, settings)
+        period = self.cohorts.period.astype(np.int64)
+        self.periods_of_level = np.zeros((n_levels, int(period.max()) + 1))
+        self.periods_of_level[self.levels, period] = 1.0
+        first = pd.Series(self.cohorts.cohort).groupby(self.cohorts.unit).first()
+        adopts = (np.isfinite(first) & (first > 0)).to_numpy()[self.cohorts.unit]
+        unit_first = np.zeros(len(rows), dtype=bool)
+        unit_first[np.unique(self.cohorts.unit, return_index=True)[1]] = True
+        self.adopters_of_level = np.bincount(self.levels, adopts & unit_first, minlength=n_levels)
+        level_codes = LevelCodes(rows)
+        relabel = {settings.unit, column}
+
+        def coded(columns: tuple[str, ...]) -> tuple[np.ndarray, int, bool]:
+            codes = np.asarray(level_codes(columns), dtype=np.int64)
+            return codes, int(codes.max()) + 1, bool(relabel.intersection(columns))
+
+        self.terms = [coded(t.groups) for t in settings.absorb]
+        self.clusters = {dim: coded(dim) for dim in {self._dim_of(spec) for spec in specs}}
+
+    def _dim_of(self, spec: Spec) -> tuple[str, ...]:
+        unit = self.settings.unit
+        assert unit is not None
+        return spec.inference.by[0] if spec.inference.kind == "clustered" else (unit,)
+
+    def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
+        """``(spec_id, estimate, std_error, df)`` per specification, or ``None``: the stacked refit."""
+        counts = draw.counts.astype(float)
+        if not (counts[self.levels].any() and np.all(counts @ self.periods_of_level > 0)
+                and counts @ self.adopters_of_level > 0 and self._singletons_agree(draw)):
+            return None
+        on = self.base_index[draw.rows]
+        held = on >= 0
+        idx, position = on[held], draw.position[held].astype(np.int64)
+
+        def taken(code: tuple[np.ndarray, int, bool]) -> np.ndarray:
+            values, n, relabelled = code
+            return position * n + values[idx] if relabelled else values[idx]
+
+        c = self.cohorts
+        design = Cohorts(c.unit[idx], c.period[idx], c.cohort[idx], c.labels, c.treated[idx])
+        codes = [taken(t) for t in self.terms]
+        out: list[tuple[str, float, float, float]] = []
+        pieces: dict[tuple[object, ...], Any] = {}
+        for spec in self.specs:
+            options = spec.estimator.staggered
+            assert options is not None
+            key = (spec.outcome, spec.controls, options)
+            try:
+                if key not in pieces:
+                    y = self.rows[spec.outcome].to_numpy(dtype=float)[idx]
+                    x = (self.rows[list(spec.controls)].to_numpy(dtype=float)[idx] if spec.controls
+                         else np.zeros((len(idx), 0)))
+                    pieces[key] = imputation_pieces(y, design, codes, x, options, pretrend=False, per_period=False)
+                got = pieces[key].with_clusters(taken(self.clusters[self._dim_of(spec)]))
+            except ValueError:
+                return None
+            estimate, se = float(got.estimates[0]), float(np.sqrt(got.covariance[0, 0]))
+            if not (np.isfinite(estimate) and np.isfinite(se)):
+                return None
+            out.append((spec.spec_id, estimate, se, got.df))
+        return out
+
+    def refit_many(self, draws: Sequence[Draw]) -> list[list[tuple[str, float, float, float]] | None]:
+        return [self.refit(d) for d in draws]
+
+
 class ReweightedBlock:
     """The least-squares, 2SLS and Poisson PML specifications of one block (sample, absorbed effects,
     weights), prepared once per chunk of draws; :meth:`refit` gives a draw's rows, or ``None`` for the
@@ -2290,22 +2380,31 @@ class ReweightedBlock:
         copied = {grid.panel.unit, column}
         if not all(mask.any() for mask, _ in groups.values()):
             raise _Unsupported("a design without rows")
-        self.designs: list[_Design | _GroupTimeDraws] = []
+        self.designs: list[_Design | _GroupTimeDraws | _ImputationDraws] = []
         self.left: list[Spec] = []  # specifications a design leaves to the stacked refit
         for mask, members in groups.values():
             group_time = [s for s in members if s.estimator.method == GROUP_TIME]
-            rest = [s for s in members if s.estimator.method != GROUP_TIME]
-            while rest:
-                try:
-                    self.designs.append(_Design(frame, positions, mask, rest, settings, levels, n_levels, copied,
-                                                observed))
-                    break
-                except _LeaveStacked as exc:  # those specifications take the stacked refit; the others stay
-                    self.left.extend(s for s in rest if s.spec_id in exc.ids)
-                    rest = [s for s in rest if s.spec_id not in exc.ids]
+            imputed = [s for s in members if s.estimator.method == IMPUTATION]
+            # the event studies' and cells' regressions in a design of their own: their many indicator columns
+            # would otherwise enter every other regression's cross products
+            indicators = [s for s in members if s.estimator.method in (EVENT_STUDY, INTERACTION_WEIGHTED)]
+            others = [s for s in members
+                      if s.estimator.method not in (GROUP_TIME, EVENT_STUDY, INTERACTION_WEIGHTED, IMPUTATION)]
+            for rest in (others, indicators):
+                while rest:
+                    try:
+                        self.designs.append(_Design(frame, positions, mask, rest, settings, levels, n_levels, copied,
+                                                    observed))
+                        break
+                    except _LeaveStacked as exc:  # those specifications take the stacked refit; the others stay
+                        self.left.extend(s for s in rest if s.spec_id in exc.ids)
+                        rest = [s for s in rest if s.spec_id not in exc.ids]
             if group_time:
                 self.designs.append(_GroupTimeDraws(frame, positions, mask, group_time, settings, levels, n_levels,
                                                     copied, column))
+            if imputed:
+                self.designs.append(_ImputationDraws(frame, positions, mask, imputed, settings, levels, n_levels,
+                                                     copied, column))
         if self.left:
             gone = {s.spec_id for s in self.left}
             self.specs = [s for s in specs if s.spec_id not in gone]

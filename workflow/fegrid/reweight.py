@@ -47,8 +47,9 @@ the stacked refit, and so does an event study with two-way clustering. An intera
 least squares on its cohort x period cells with each draw's cohort shares (never-treated controls, clustered
 or heteroskedasticity-robust). Group-time effects (unweighted) are computed from the balanced units counted
 by their copies (:class:`_GroupTimeDraws`), and imputation estimates by the engine's own function on the
-copies' arrays (:class:`_ImputationDraws`). Other staggered-adoption specifications take the stacked path. The results equal the stacked refits' to
-the demeaning tolerance (the convergence rule's, for Poisson PML; tests/test_reweight.py).
+copies' arrays (:class:`_ImputationDraws`). Other staggered-adoption specifications take the stacked path.
+The results equal the stacked refits' to the demeaning tolerance (the convergence rule's, for Poisson PML;
+tests/test_reweight.py).
 """
 
 from __future__ import annotations

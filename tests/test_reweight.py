@@ -55,6 +55,23 @@ def _ledger(grid, frame, specs) -> pd.DataFrame:
     return spec_table(grid, specs).merge(pd.DataFrame(rows), on="spec_id")
 
 
+def _equal_draws(grid, frame: pd.DataFrame, specs, draws, seed: int, column: str, *, rtol: float
+                 ) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The draws refitted by the shortcuts and on stacked copies (sorted by draw and specification), after
+    checking that they agree: the same missing values, estimates and SEs to ``rtol``, df exactly."""
+    fast = draw_curves(grid, frame, specs, draws, seed=seed, column=column).sort_values(KEY, ignore_index=True)
+    slow = draw_curves(grid, frame, specs, draws, seed=seed, column=column, reweight=False).sort_values(
+        KEY, ignore_index=True)
+    pd.testing.assert_frame_equal(fast[KEY], slow[KEY])
+    for col in ("estimate", "std_error"):
+        a, b = fast[col].to_numpy(), slow[col].to_numpy()
+        assert np.array_equal(np.isnan(a), np.isnan(b)), col
+        ok = ~np.isnan(b)
+        np.testing.assert_allclose(a[ok], b[ok], rtol=rtol, atol=1e-12, err_msg=col)
+    pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
+    return fast, slow
+
+
 def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.DataFrame) -> None:
     """Estimates, SEs and df of every least-squares and 2SLS draw equal the stacked refits' (estimates and SEs
     to 1e-8 relative, nearly all to 1e-9: the stacked path demeans by alternating projections to 1e-10
@@ -68,17 +85,11 @@ def test_reweighted_draws_equal_stacked_refits(tmp_path: Path, wage_panel: pd.Da
     blocks, rest = prepare_blocks(grid, frame, specs, codes, len(levels), "nr")
     assert sum(len(b.specs) for b in blocks) > 0.9 * len(specs) and len(blocks) + len(rest) > 0
     draws = range(6)
-    fast = draw_curves(grid, frame, specs, draws, seed=5, column="nr").sort_values(KEY, ignore_index=True)
-    slow = draw_curves(grid, frame, specs, draws, seed=5, column="nr", reweight=False).sort_values(
-        KEY, ignore_index=True)
-    pd.testing.assert_frame_equal(fast[KEY], slow[KEY])
+    fast, slow = _equal_draws(grid, frame, specs, draws, 5, "nr", rtol=1e-8)
     for col in ("estimate", "std_error"):
         a, b = fast[col].to_numpy(), slow[col].to_numpy()
-        assert np.array_equal(np.isnan(a), np.isnan(b)), col
         ok = ~np.isnan(b)
-        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-8, atol=1e-12, err_msg=col)
         assert np.quantile(np.abs(a[ok] - b[ok]) / np.maximum(np.abs(b[ok]), 1e-12), 0.99) < 1e-9, col
-    pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
     # the cases the test is meant to cover did occur: a draw's sample is the copies of the sample's rows,
     # so a filter on the unit column keeps its meaning in every draw (before, it was applied again to the
     # copies' new labels: "without_worker_13" failed in nearly every draw and left the curve), and a draw
@@ -503,16 +514,7 @@ def test_staggered_draws_from_the_copies_equal_stacked_refits(tmp_path: Path, ad
                                                              s.estimator.staggered.control == "never_treated" and
                                                              s.inference.kind == "clustered" for s in rest))
     draws = range(12)
-    fast = draw_curves(grid, frame, specs, draws, seed=3, column="fcode").sort_values(KEY, ignore_index=True)
-    slow = draw_curves(grid, frame, specs, draws, seed=3, column="fcode", reweight=False).sort_values(
-        KEY, ignore_index=True)
-    pd.testing.assert_frame_equal(fast[KEY], slow[KEY])
-    for col in ("estimate", "std_error"):
-        a, b = fast[col].to_numpy(), slow[col].to_numpy()
-        assert np.array_equal(np.isnan(a), np.isnan(b)), col
-        ok = ~np.isnan(b)
-        np.testing.assert_allclose(a[ok], b[ok], rtol=1e-9, atol=1e-12, err_msg=col)
-    pd.testing.assert_series_equal(fast["df_inference"], slow["df_inference"])
+    _, slow = _equal_draws(grid, frame, specs, draws, 3, "fcode", rtol=1e-9)
     # the reweighted path answered for the samples with every cohort in nearly every draw, and the draws of
     # 'few' without a 1988 adopter were not identified (by the stacked refit, which those draws took)
     drawn = [draw_levels(codes, len(levels), np.random.default_rng([3, d])) for d in draws]

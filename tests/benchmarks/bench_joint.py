@@ -3,9 +3,10 @@
 Compares, on the same draws: the path of fegrid 0.2 (each draw a stacked copy of the panel, every
 specification refitted as the fit jobs do, wild bootstrap included), the stacked path of fegrid 0.5
 (``draw_curves(..., reweight=False)``: no wild bootstrap in draws, text keys as categories) and the
-current path (least squares and 2SLS refitted as reweightings, :mod:`fegrid.reweight`). All three give the
-same estimates, SEs and df to 1e-9 (checked here; Poisson PML rows, whose null the 0.2 path did not
-impose, are compared between the stacked and the reweighted paths only).
+current path (least squares, 2SLS, Poisson PML and the staggered-adoption estimators refitted as
+reweightings or from the copies' arrays, :mod:`fegrid.reweight`). All three give the same estimates, SEs
+and df to 1e-9 (checked here; Poisson PML rows, whose null the 0.2 path did not impose, are compared
+between the stacked and the reweighted paths only).
 Prints CPU seconds per draw and for the demo's 500 draws against the target of issue 12 (500 draws
 in <= 35 CPU s), from one run: the three paths on the first draws, and the current path as a draw job
 runs it (one job's draws, ``joint_inference.draws_per_job``, its blocks prepared once), with each

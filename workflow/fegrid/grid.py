@@ -260,6 +260,13 @@ class Grid:
         specs: dict[str, Spec] = {}
         dims = [list(d) for d in (self.outcomes, self.focals, self.absorb, self.clustering, samples, self.controls,
                                   self.weights, self.estimators)]
+        # each choice's canonical form once (a grid's specifications repeat every choice many times)
+        absorb_canonical = {a: sorted((t.canonical() for t in terms), key=json.dumps)
+                            for a, terms in self.absorb.items()}
+        absorb_terms = {a: tuple(sorted(terms, key=lambda t: json.dumps(t.canonical())))
+                        for a, terms in self.absorb.items()}
+        inference_canonical = {c: inf.canonical() for c, inf in self.clustering.items()}
+        sample_canonical = {name: samples[name][1].canonical() for name in dims[4]}
         for combo in _kept_combinations(dims, [samples[s][0] for s in dims[4]], self.exclude):
             outcome, focal, absorb, clus, sample, controls, weights, est_name = combo
             names = dict(zip(DIMENSIONS, combo))
@@ -279,9 +286,9 @@ class Grid:
             body = {
                 "outcome": outcome,
                 "focal": focal,
-                "absorb": sorted((t.canonical() for t in self.absorb[absorb]), key=json.dumps),
-                "inference": inference.canonical(),
-                "sample": samples[sample][1].canonical(),
+                "absorb": absorb_canonical[absorb],
+                "inference": inference_canonical[clus],
+                "sample": sample_canonical[sample],
                 "controls": list(ctrl),
                 "weights": self.weights[weights],
                 "panel": panel,
@@ -304,7 +311,7 @@ class Grid:
                 names=tuple(names.items()),
                 outcome=outcome,
                 focal=focal,
-                absorb=tuple(sorted(self.absorb[absorb], key=lambda t: json.dumps(t.canonical()))),
+                absorb=absorb_terms[absorb],
                 inference=inference,
                 sample=samples[sample][1],
                 controls=ctrl,

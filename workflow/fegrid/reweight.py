@@ -2453,7 +2453,7 @@ def prepare_blocks(grid: Grid, frame: pd.DataFrame, specs: Sequence[Spec], level
     for key in sorted(by_block):
         try:
             block = ReweightedBlock(grid, frame, by_block[key], levels, n_levels, column, observed)
-        except (_Unsupported, FegridError, np.linalg.LinAlgError):
+        except (_Unsupported, FegridError, np.linalg.LinAlgError, ValueError):  # the stacked refit decides (and says)
             rest.extend(by_block[key])
             continue
         rest.extend(block.left)

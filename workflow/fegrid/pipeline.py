@@ -60,6 +60,7 @@ from .store import (
     write_parquet,
     write_text,
 )
+from .threads import THREAD_VARIABLES
 
 __all__ = [
     "Plan",
@@ -353,7 +354,7 @@ PLAN_ENV = "FEGRID_PLAN_FILE"
 #: Environment variables that size the linear-algebra libraries' thread pools. Every job declares one
 #: thread and Snakemake runs as many jobs side by side as it has cores, so each job's pool gets one
 #: thread (unless the user set them): a pool per job would spin on cores that other jobs use.
-JOB_THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+JOB_THREAD_VARIABLES = THREAD_VARIABLES
 
 
 def save_plan(plan: Plan) -> Path:

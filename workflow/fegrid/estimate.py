@@ -1124,12 +1124,18 @@ def _cohorts(design: _Design) -> Cohorts:
 
 
 def _design_cohorts(design: _Design) -> Cohorts:
-    s = design.settings
+    return rows_cohorts(design.frame, design.settings)
+
+
+def rows_cohorts(frame: pd.DataFrame, s: BlockSettings) -> Cohorts:
+    """The adoption design of a design's rows: from data.adoption when declared, else from the treatment
+    (also the joint tests' draws computed from the copies, :mod:`fegrid.reweight`)."""
     assert s.unit and s.time and s.treatment
-    f = design.frame
     if s.adoption:
-        return cohorts_of(f[s.unit].to_numpy(), f[s.time].to_numpy(), adoption=f[s.adoption].to_numpy(dtype=float))
-    return cohorts_of(f[s.unit].to_numpy(), f[s.time].to_numpy(), treatment=f[s.treatment].to_numpy(dtype=float))
+        return cohorts_of(frame[s.unit].to_numpy(), frame[s.time].to_numpy(),
+                          adoption=frame[s.adoption].to_numpy(dtype=float))
+    return cohorts_of(frame[s.unit].to_numpy(), frame[s.time].to_numpy(),
+                      treatment=frame[s.treatment].to_numpy(dtype=float))
 
 
 def _with_counts(result: SpecResult, design: _Design) -> SpecResult:

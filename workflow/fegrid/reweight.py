@@ -75,7 +75,14 @@ from .absorb import (
 )
 from .covariance import TWO_WAY_SIGNS, FitPieces, Iid, OneWay, Robust, TwoWay, clip_negative, covariance_kind
 from .errors import EstimationError, FegridError
-from .estimate import FIRST_STAGE_RANK_TOL, BlockSettings, _covariance_codes, _needed, first_stage_rank
+from .estimate import (
+    FIRST_STAGE_RANK_TOL,
+    BlockSettings,
+    _covariance_codes,
+    _needed,
+    first_stage_rank,
+    rows_cohorts,
+)
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE, Estimator
 from .grid import Grid, Spec
 from .lazy import LazyModule
@@ -87,7 +94,6 @@ from .staggered import (
     IMPUTATION,
     INTERACTION_WEIGHTED,
     Cohorts,
-    cohorts_of,
     event_indicators,
     imputation_pieces,
     interaction_cells,
@@ -173,16 +179,6 @@ def _event_study(spec: Spec) -> bool:
     return spec.estimator.method == EVENT_STUDY and not isinstance(covariance_kind(spec.inference.kind), TwoWay)
 
 
-def _row_cohorts(rows: pd.DataFrame, settings: BlockSettings) -> Cohorts:
-    """The adoption design of a design's rows, as the engine computes it (``estimate._design_cohorts``)."""
-    assert settings.unit and settings.time and settings.treatment
-    if settings.adoption:
-        return cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
-                          adoption=rows[settings.adoption].to_numpy(dtype=float))
-    return cohorts_of(rows[settings.unit].to_numpy(), rows[settings.time].to_numpy(),
-                      treatment=rows[settings.treatment].to_numpy(dtype=float))
-
-
 def _interaction_weighted(spec: Spec) -> bool:
     """Whether ``spec`` is an interaction-weighted estimate that draws refit as least squares on its cells with
     the draw's cohort shares (:func:`_as_least_squares`): never-treated controls, and a covariance kind that
@@ -261,7 +257,7 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
     shares: dict[str, _Shares] = {}
     if not any(s.estimator.method in (EVENT_STUDY, INTERACTION_WEIGHTED) for s in specs):
         return rows, specs, strict, None, shares
-    cohorts = _row_cohorts(rows, settings)
+    cohorts = rows_cohorts(rows, settings)
     if cohorts.counts()["cohorts"] == 0:
         raise _Unsupported("no unit adopts the treatment")  # the stacked fit says why
     made: dict[object, tuple[list[str], np.ndarray]] = {}
@@ -2097,7 +2093,7 @@ class _GroupTimeDraws(_DesignRows):
                  settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str], column: str) -> None:
         super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
         rows, self.specs = self.rows, specs
-        design = _row_cohorts(rows, settings)
+        design = rows_cohorts(rows, settings)
         unit, period = design.unit, design.period.astype(np.int64)
         self.n_periods = n_periods = int(period.max()) + 1
         if np.unique(unit * n_periods + period).size != len(rows):
@@ -2290,7 +2286,7 @@ class _ImputationDraws(_DesignRows):
                  settings: BlockSettings, levels: np.ndarray, n_levels: int, copied: set[str], column: str) -> None:
         super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
         rows, self.specs = self.rows, specs
-        self.cohorts = _row_cohorts(rows, settings)
+        self.cohorts = rows_cohorts(rows, settings)
         period = self.cohorts.period.astype(np.int64)
         self.periods_of_level = np.zeros((n_levels, int(period.max()) + 1))
         self.periods_of_level[self.levels, period] = 1.0

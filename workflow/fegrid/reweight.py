@@ -255,64 +255,62 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
     interaction-weighted estimates' aggregations."""
     strict: dict[str, tuple[list[str], np.ndarray]] = {}
     shares: dict[str, _Shares] = {}
-    if not any(s.estimator.method in (EVENT_STUDY, INTERACTION_WEIGHTED) for s in specs):
+    indicators = {s.spec_id for s in specs if s.estimator.method in (EVENT_STUDY, INTERACTION_WEIGHTED)}
+    if not indicators:
         return rows, specs, strict, None, shares
     cohorts = rows_cohorts(rows, settings)
     if cohorts.counts()["cohorts"] == 0:
-        raise _Unsupported("no unit adopts the treatment")  # the stacked fit says why
-    made: dict[object, tuple[list[str], np.ndarray]] = {}
+        raise _LeaveStacked(indicators)  # no unit adopts: the stacked fit says so
+    events: dict[object, tuple[list[str], np.ndarray]] = {}  # per options: columns, T
+    cells_of: dict[object, tuple[list[str], np.ndarray, np.ndarray]] = {}  # per options: columns, row cells, post
     added: dict[str, np.ndarray] = {}
     out: list[Spec] = []
     for spec in specs:
         options = spec.estimator.staggered
-        if spec.estimator.method == INTERACTION_WEIGHTED and options is not None:
+        if spec.spec_id not in indicators or options is None:
+            out.append(spec)
+            continue
+        tag = f"{EVENT_COLUMN}{len(events) + len(cells_of)}_"
+        if spec.estimator.method == INTERACTION_WEIGHTED:
             # least squares on the cohort x relative-period cells (the design's rows must all be kept: no unit
             # treated throughout), the aggregate's weights from each draw's cell counts
-            key = ("cells", options)
-            if key not in made:
+            if options not in cells_of:
+                ours = {t.spec_id for t in specs if t.estimator.method == INTERACTION_WEIGHTED}
                 try:
                     cells = interaction_cells(cohorts, options)
                 except ValueError:
-                    raise _LeaveStacked({t.spec_id for t in specs if t.estimator.method == INTERACTION_WEIGHTED}
-                                        ) from None
+                    raise _LeaveStacked(ours) from None
                 if not cells.rows.all() or not cells.cells:
-                    raise _LeaveStacked({t.spec_id for t in specs if t.estimator.method == INTERACTION_WEIGHTED})
-                tag = f"{EVENT_COLUMN}{len(made)}_"
-                columns = [f"{tag}{j}" for j in range(len(cells.cells))]
-                added.update(zip(columns, cells.matrix.T))
-                cell_of_row = np.where(cells.matrix.any(axis=1), cells.matrix.argmax(axis=1), -1)
-                post = np.array([r >= 0 for _, r in cells.cells], dtype=float)
-                made[key] = (columns, np.eye(len(columns)), cell_of_row, post)  # type: ignore[assignment]
-            columns, t, cell_of_row, post = made[key]  # type: ignore[misc]
-            strict[spec.spec_id] = ([*columns, *spec.controls], t)
+                    raise _LeaveStacked(ours)
+                names = [f"{tag}{j}" for j in range(len(cells.cells))]
+                added.update(zip(names, cells.matrix.T))
+                cells_of[options] = (names, np.where(cells.matrix.any(axis=1), cells.matrix.argmax(axis=1), -1),
+                                     np.array([r >= 0 for _, r in cells.cells], dtype=float))
+            columns, cell_of_row, post = cells_of[options]
+            strict[spec.spec_id] = ([*columns, *spec.controls], np.eye(len(columns)))
             dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (settings.unit,)
-            shares[spec.spec_id] = _Shares(cell_of_row, post, dim)  # type: ignore[arg-type]
-            out.append(replace(spec, focal=columns[0], controls=(*columns[1:], *spec.controls), estimator=Estimator()))
-            continue
-        if spec.estimator.method != EVENT_STUDY or options is None:
-            out.append(spec)
-            continue
-        if options not in made:
-            x, names = event_indicators(cohorts, options)
-            rel = np.array([int(n.split("=")[1]) for n in names])
-            a = (rel >= 0) / max(int((rel >= 0).sum()), 1)
-            after = np.flatnonzero(a)
-            if not len(after):
-                raise _Unsupported("no period after adoption in the window")
-            j0, k = int(after[0]), len(names)
-            others = [j for j in range(k) if j != j0]
-            m = np.zeros((k, k))
-            m[j0, 0] = 1.0 / a[j0]
-            for col, j in enumerate(others, start=1):
-                m[j, col] = 1.0
-                m[j0, col] = -a[j] / a[j0]
-            tag = f"{EVENT_COLUMN}{len(made)}_"
-            columns = [f"{tag}focal", *(f"{tag}{j}" for j in others)]
-            for name, values in zip(columns, (x @ m).T):
-                added[name] = values
-            made[options] = (columns, np.linalg.inv(m))
-        columns, t = made[options]
-        strict[spec.spec_id] = ([*columns, *spec.controls], t)
+            assert dim[0] is not None
+            shares[spec.spec_id] = _Shares(cell_of_row, post, dim)
+        else:
+            if options not in events:
+                x, names = event_indicators(cohorts, options)
+                rel = np.array([int(n.split("=")[1]) for n in names])
+                a = (rel >= 0) / max(int((rel >= 0).sum()), 1)
+                after = np.flatnonzero(a)
+                if not len(after):
+                    raise _LeaveStacked({t.spec_id for t in specs if t.estimator.method == EVENT_STUDY})
+                j0, k = int(after[0]), len(names)
+                others = [j for j in range(k) if j != j0]
+                m = np.zeros((k, k))
+                m[j0, 0] = 1.0 / a[j0]
+                for col, j in enumerate(others, start=1):
+                    m[j, col] = 1.0
+                    m[j0, col] = -a[j] / a[j0]
+                names = [f"{tag}focal", *(f"{tag}{j}" for j in others)]
+                added.update(zip(names, (x @ m).T))
+                events[options] = (names, np.linalg.inv(m))
+            columns, t = events[options]
+            strict[spec.spec_id] = ([*columns, *spec.controls], t)
         out.append(replace(spec, focal=columns[0], controls=(*columns[1:], *spec.controls), estimator=Estimator()))
     return rows.assign(**added), out, strict, cohorts, shares
 

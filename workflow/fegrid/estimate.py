@@ -1171,16 +1171,22 @@ def _with_adoption_diagnostics(design: _Design, spec: SpecRequest, pieces: FitPi
                    already_treated_weight=float(table.loc[late, "weight"].sum()))
 
 
-def _cluster_for_staggered(design: _Design, spec: SpecRequest) -> tuple[np.ndarray, str, str]:
-    """The clusters of an estimator with its own inference: the specification's one-way clusters, else
-    the unit; with the dimension's label and a note when the specification asked for something else."""
-    if spec.inference.kind == "clustered":
-        dim = spec.inference.by[0]
-        return design.cluster_codes(dim), " x ".join(dim), ""
-    unit = design.settings.unit
+def staggered_cluster_dim(inference: Inference, unit: str | None) -> tuple[str, ...]:
+    """The clusters of an estimator with its own inference (and of the interaction-weighted estimator's
+    cohort shares): the specification's one-way clusters, else the unit."""
+    if inference.kind == "clustered":
+        return inference.by[0]
     assert unit is not None
-    note = f"clustered by {unit} (this estimator's inference is cluster-robust by unit or a declared cluster)"
-    return design.cluster_codes((unit,)), unit, note
+    return (unit,)
+
+
+def _cluster_for_staggered(design: _Design, spec: SpecRequest) -> tuple[np.ndarray, str, str]:
+    """The clusters of an estimator with its own inference (:func:`staggered_cluster_dim`), with the
+    dimension's label and a note when the specification asked for something else."""
+    dim = staggered_cluster_dim(spec.inference, design.settings.unit)
+    note = "" if spec.inference.kind == "clustered" else (
+        f"clustered by {dim[0]} (this estimator's inference is cluster-robust by unit or a declared cluster)")
+    return design.cluster_codes(dim), " x ".join(dim), note
 
 
 class _IndicatorFit(NamedTuple):
@@ -1403,7 +1409,7 @@ def _indicator_result(design: _Design, spec: SpecRequest, base: SpecResult, fit:
     codes = [cluster_of(dim) for dim in spec.inference.by]
     nested = fit.absorber.nested_df(codes) if codes else 0
     base = replace(base, n_obs=len(fit.sub))
-    share_dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (design.settings.unit,)
+    share_dim = staggered_cluster_dim(spec.inference, design.settings.unit)
     if not (design.diagnostics or keep) and isinstance(covariance_kind(spec.inference.kind), (OneWay, Robust)):
         # the joint tests' draws: the reported combination's variance from its own h = X B a (the kinds
         # that are sums over h e: not the homoskedastic one, which reads B's first element, nor two-way,

@@ -82,6 +82,7 @@ from .estimate import (
     _needed,
     first_stage_rank,
     rows_cohorts,
+    staggered_cluster_dim,
 )
 from .estimators import LEAST_SQUARES, POISSON, TWO_STAGE, Estimator
 from .grid import Grid, Spec
@@ -288,9 +289,7 @@ def _as_least_squares(rows: pd.DataFrame, specs: list[Spec], settings: BlockSett
                                      np.array([r >= 0 for _, r in cells.cells], dtype=float))
             columns, cell_of_row, post = cells_of[options]
             strict[spec.spec_id] = ([*columns, *spec.controls], np.eye(len(columns)))
-            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (settings.unit,)
-            assert dim[0] is not None
-            shares[spec.spec_id] = _Shares(cell_of_row, post, dim)
+            shares[spec.spec_id] = _Shares(cell_of_row, post, staggered_cluster_dim(spec.inference, settings.unit))
         else:
             if options not in events:
                 x, names = event_indicators(cohorts, options)
@@ -1027,6 +1026,22 @@ class _DesignRows:
         self.quick_singletons = bool(keep.all()) and all(
             _nested(dim.codes, self.cc_levels) for dim in self._cc_dims.values() if dim.copied)
 
+    def _note_adoption(self, cohorts: Cohorts) -> None:
+        """Per resampling level, its rows' periods and its units adopting inside them (the engine's count of
+        cohorts), for :meth:`_holds_adoption`."""
+        period = cohorts.period.astype(np.int64)
+        self.periods_of_level = np.zeros((self.n_levels, int(period.max()) + 1))
+        self.periods_of_level[self.levels, period] = 1.0
+        first = np.unique(cohorts.unit, return_index=True)[1]  # each unit's first row (cohorts are the unit's)
+        adopts = np.isfinite(cohorts.cohort[first]) & (cohorts.cohort[first] > 0)
+        self.adopters_of_level = np.bincount(self.levels[first], adopts, minlength=self.n_levels)
+
+    def _holds_adoption(self, counts: np.ndarray) -> np.ndarray:
+        """Per draw (``counts``: draws x levels), whether it holds a row of every period of the design's rows
+        (so that the copies' cohorts and relative periods, positions among the periods, are the rows' own)
+        and an adopting unit (else the stacked fit refuses, and says why)."""
+        return np.all(counts @ self.periods_of_level > 0, axis=1) & (counts @ self.adopters_of_level > 0)
+
     def _dim(self, codes: np.ndarray, levels: np.ndarray, columns: tuple[str, ...]) -> _Dim:
         n = int(codes.max()) + 1 if len(codes) else 0
         if not self.copied.intersection(columns):
@@ -1115,14 +1130,8 @@ class _Design(_DesignRows):
         # failing that, each draw demeans the drawn rows, weighted by their copies
         self.level_ids = np.unique(self.levels)
         level_of_row = np.searchsorted(self.level_ids, self.levels)
-        # the periods of each resampling level's rows: an event study's cohorts and relative periods are those
-        # of the copies only when the draw holds every period (they are positions among the rows' periods)
-        self.periods_of_level: np.ndarray | None = None
         if cohorts is not None:
-            n_periods = int(cohorts.period.max()) + 1
-            presence = np.zeros((len(self.level_ids), n_periods))
-            presence[level_of_row, cohorts.period.astype(np.int64)] = 1.0
-            self.periods_of_level = presence
+            self._note_adoption(cohorts)
         # interaction-weighted estimates: each resampling level's rows per cell (a draw's cell counts)
         self.level_cells: dict[str, np.ndarray] = {}
         for spec_id, sh in self.shares.items():
@@ -1322,9 +1331,7 @@ class _Design(_DesignRows):
         largest, or the least eigenvalue of their correlation matrix at most 1e-10: not identified), with
         a margin of 100. Those draws take :meth:`_refit_weighted`, which leaves event studies to the stacked
         refit."""
-        if self.periods_of_level is not None:
-            seen = (counts[:, self.level_ids] > 0).astype(float) @ self.periods_of_level
-            alone |= ~np.all(seen > 0, axis=1)
+        alone |= ~self._holds_adoption(counts)
         for columns, t in self.strict.values():
             live = np.flatnonzero(~alone)
             if not len(live):
@@ -2104,10 +2111,7 @@ class _GroupTimeDraws(_DesignRows):
         first_row = np.full(n_units, len(unit))
         np.minimum.at(first_row, unit, np.arange(len(unit)))
         start = design.cohort[first_row]
-        # per level: its rows' periods, and its units that adopt inside the periods (the engine's cohort count)
-        self.periods_of_level = np.zeros((n_levels, n_periods))
-        self.periods_of_level[self.levels, period] = 1.0
-        self.adopters_of_level = np.bincount(unit_level, np.isfinite(start) & (start > 0), minlength=n_levels)
+        self._note_adoption(design)
         full = np.bincount(unit, minlength=n_units) == n_periods
         if not full.any():
             raise _Unsupported("no unit observed in every period")
@@ -2126,7 +2130,7 @@ class _GroupTimeDraws(_DesignRows):
         # each covariance choice's clusters, per balanced unit: relabelled per copy, or shared by the copies
         self.clusters: dict[tuple[str, ...], tuple[np.ndarray, bool]] = {}
         for spec in specs:
-            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (settings.unit,)
+            dim = staggered_cluster_dim(spec.inference, settings.unit)
             if dim in self.clusters:
                 continue
             codes = pd.factorize(rows[dim[0]])[0] if dim[0] in rows else None
@@ -2154,6 +2158,12 @@ class _GroupTimeDraws(_DesignRows):
             self._tables[key] = (ymat, xmat)
         return self._tables[key]
 
+    def _key(self, spec: Spec) -> tuple[str, tuple[str, ...], str, tuple[str, ...]]:
+        """What a specification's result depends on here: outcome, covariates, control group, clusters."""
+        options = spec.estimator.staggered
+        assert options is not None
+        return (spec.outcome, spec.controls, options.control, staggered_cluster_dim(spec.inference, self.settings.unit))
+
     def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
         return self.refit_many([draw])[0]
 
@@ -2162,9 +2172,7 @@ class _GroupTimeDraws(_DesignRows):
         if not draws:
             return []
         counts = np.stack([d.counts for d in draws]).astype(float)
-        ok = counts[:, self.levels].sum(axis=1) > 0
-        ok &= np.all(counts @ self.periods_of_level > 0, axis=1)
-        ok &= counts @ self.adopters_of_level > 0
+        ok = (counts[:, self.levels].sum(axis=1) > 0) & self._holds_adoption(counts)
         ok &= np.array([bool(ok[i]) and self._singletons_agree(d) for i, d in enumerate(draws)])
         c = counts[:, self.unit_level]  # (draws, balanced units): each unit's copies
         n = c.sum(axis=1)
@@ -2173,24 +2181,18 @@ class _GroupTimeDraws(_DesignRows):
         got: dict[str, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         size = max(1, BATCH_CELLS // max(1, len(self.full) * len(self.cohorts) * self.n_periods))
         for spec in self.specs:
-            dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (self.settings.unit,)
-            options = spec.estimator.staggered
-            assert options is not None
-            key = (spec.outcome, spec.controls, options.control, dim)
+            key = self._key(spec)
             if key not in got:
                 out = np.full((3, len(draws)), np.nan)
                 for start in range(0, len(live), size):
                     part = live[start: start + size]
-                    out[:, part] = self._overall(spec, options.control, dim, c[part], n[part], counts[part])
+                    out[:, part] = self._overall(spec, key[2], key[3], c[part], n[part], counts[part])
                 got[key] = (out[0], out[1], out[2])
         results: list[list[tuple[str, float, float, float]] | None] = []
         for i in range(len(draws)):
             rows = []
             for spec in self.specs:
-                dim = spec.inference.by[0] if spec.inference.kind == "clustered" else (self.settings.unit,)
-                options = spec.estimator.staggered
-                assert options is not None
-                est, se, df = got[(spec.outcome, spec.controls, options.control, dim)]
+                est, se, df = got[self._key(spec)]
                 if not (ok[i] and np.isfinite(est[i]) and np.isfinite(se[i])):
                     rows = None
                     break
@@ -2285,14 +2287,7 @@ class _ImputationDraws(_DesignRows):
         super().__init__(frame, positions, cc, settings, levels, n_levels, copied)
         rows, self.specs = self.rows, specs
         self.cohorts = rows_cohorts(rows, settings)
-        period = self.cohorts.period.astype(np.int64)
-        self.periods_of_level = np.zeros((n_levels, int(period.max()) + 1))
-        self.periods_of_level[self.levels, period] = 1.0
-        first = pd.Series(self.cohorts.cohort).groupby(self.cohorts.unit).first()
-        adopts = (np.isfinite(first) & (first > 0)).to_numpy()[self.cohorts.unit]
-        unit_first = np.zeros(len(rows), dtype=bool)
-        unit_first[np.unique(self.cohorts.unit, return_index=True)[1]] = True
-        self.adopters_of_level = np.bincount(self.levels, adopts & unit_first, minlength=n_levels)
+        self._note_adoption(self.cohorts)
         level_codes = LevelCodes(rows)
         relabel = {settings.unit, column}
 
@@ -2301,18 +2296,13 @@ class _ImputationDraws(_DesignRows):
             return codes, int(codes.max()) + 1, bool(relabel.intersection(columns))
 
         self.terms = [coded(t.groups) for t in settings.absorb]
-        self.clusters = {dim: coded(dim) for dim in {self._dim_of(spec) for spec in specs}}
-
-    def _dim_of(self, spec: Spec) -> tuple[str, ...]:
-        unit = self.settings.unit
-        assert unit is not None
-        return spec.inference.by[0] if spec.inference.kind == "clustered" else (unit,)
+        self.clusters = {dim: coded(dim) for dim in {staggered_cluster_dim(s.inference, settings.unit) for s in specs}}
 
     def refit(self, draw: Draw) -> list[tuple[str, float, float, float]] | None:
         """``(spec_id, estimate, std_error, df)`` per specification, or ``None``: the stacked refit."""
         counts = draw.counts.astype(float)
-        if not (counts[self.levels].any() and np.all(counts @ self.periods_of_level > 0)
-                and counts @ self.adopters_of_level > 0 and self._singletons_agree(draw)):
+        if not (counts[self.levels].any() and self._holds_adoption(counts[None, :])[0]
+                and self._singletons_agree(draw)):
             return None
         on = self.base_index[draw.rows]
         held = on >= 0
@@ -2337,7 +2327,8 @@ class _ImputationDraws(_DesignRows):
                     x = (self.rows[list(spec.controls)].to_numpy(dtype=float)[idx] if spec.controls
                          else np.zeros((len(idx), 0)))
                     pieces[key] = imputation_pieces(y, design, codes, x, options, pretrend=False, per_period=False)
-                got = pieces[key].with_clusters(taken(self.clusters[self._dim_of(spec)]))
+                dim = staggered_cluster_dim(spec.inference, self.settings.unit)
+                got = pieces[key].with_clusters(taken(self.clusters[dim]))
             except ValueError:
                 return None
             estimate, se = float(got.estimates[0]), float(np.sqrt(got.covariance[0, 0]))

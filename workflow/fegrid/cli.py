@@ -22,7 +22,7 @@ from pathlib import Path
 import pandas as pd
 from tabulate import tabulate
 
-from . import __version__
+from . import __version__, early
 from .defaults import DEFAULTS
 from .errors import FegridDeprecationWarning, FegridError
 from .joint import shared_cluster_caution
@@ -113,7 +113,9 @@ def _note_baseline(plan) -> None:
         return
     base = plan.grid.baseline_id(plan.specs)
     first = next(s for s in plan.specs if s.spec_id == base)
-    choices = ", ".join(f"{d} {n}" for d, n in first.names if len({s.name(d) for s in plan.specs}) > 1)
+    # the dimensions whose choice varies across the grid (each specification's names, in the same order)
+    varying = {names[0][0] for names in zip(*(s.names for s in plan.specs), strict=True) if len(set(names)) > 1}
+    choices = ", ".join(f"{d} {n}" for d, n in first.names if d in varying)
     print(f"note: the config names no baseline, so the first specification by id ({first.spec_id}: {choices}) "
           "stands as the baseline in the ledger, summary, figures and tables; name your headline specification "
           "under 'baseline' (one choice per dimension).", file=sys.stderr)
@@ -353,21 +355,33 @@ def _run_snakemake(command: list[str], lock: RunLock,
         sink = None
         if log is not None:
             log.parent.mkdir(parents=True, exist_ok=True)
-            sink = open(log, "wb")  # noqa: SIM115 - closed once Snakemake holds its own copy
-        try:
-            proc = subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock),
+            sink = open(log, "wb")  # noqa: SIM115 - closed once Snakemake has ended
+
+        def start() -> subprocess.Popen[bytes]:
+            return subprocess.Popen(command, pass_fds=(lock.fileno(),), env=RunLock.inheritable_env(lock),
                                     stdout=sink, stderr=subprocess.STDOUT if sink is not None else None)
+
+        try:
+            waiting = early.take()  # the Snakemake process started with the command, if any (fegrid.early)
+            proc = waiting.launch(command, env=RunLock.inheritable_env(lock), pass_fds=(lock.fileno(),),
+                                  stdout=None if sink is None else sink.fileno()) if waiting is not None else None
+            handed = proc is not None
+            if proc is None:
+                proc = start()
+            with meanwhile() if meanwhile is not None else contextlib.nullcontext():
+                code = proc.wait()
+                if handed and code == early.NOT_STARTED and not received:  # it could not run Snakemake
+                    proc = start()
+                    code = proc.wait()
+        except BaseException:  # this side failed while Snakemake works: stop it before the error shows
+            if proc is not None:
+                with contextlib.suppress(ProcessLookupError):
+                    proc.send_signal(signal.SIGINT)
+                proc.wait()
+            raise
         finally:
             if sink is not None:
                 sink.close()
-        try:
-            with meanwhile() if meanwhile is not None else contextlib.nullcontext():
-                code = proc.wait()
-        except BaseException:  # this side failed while Snakemake works: stop it before the error shows
-            with contextlib.suppress(ProcessLookupError):
-                proc.send_signal(signal.SIGINT)
-            proc.wait()
-            raise
     finally:
         for s, handler in previous.items():
             signal.signal(s, handler)
@@ -528,6 +542,8 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+#: the commands that run Snakemake (fegrid.early starts it while they check the grid)
+SNAKEMAKE_COMMANDS = ("run", "demo")
 COMMANDS = {"init": _cmd_init, "check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
             "demo": _cmd_demo, "compare": _cmd_compare, "archive": _cmd_archive}
 
@@ -550,7 +566,16 @@ def _show_deprecations() -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    try:
+        return _main(argv)
+    finally:
+        early.cancel_pending()  # a Snakemake started ahead for a run that stopped before handing it its command
+
+
+def _main(argv: Sequence[str] | None) -> int:
     args = build_parser().parse_args(argv)
+    if args.command in SNAKEMAKE_COMMANDS:
+        early.begin()  # Snakemake starts while fegrid checks the grid (once: `fegrid` may have started it already)
     _show_deprecations()
     extra = getattr(args, "snakemake_args", None)
     if extra and extra[0] != "--":  # (a config file named without --config would go to Snakemake, with what follows)

@@ -10,14 +10,38 @@ thread counted two to three times the CPU time the jobs spend (the estimate of t
 from __future__ import annotations
 
 import os
+import sys
+from collections.abc import Sequence
 
+from . import early
 from .threads import THREAD_VARIABLES
+
+#: the subcommands that run Snakemake (the same as ``fegrid.cli.SNAKEMAKE_COMMANDS``, which imports more)
+_SNAKEMAKE_COMMANDS = ("run", "demo")
+
+
+def _runs_snakemake(argv: Sequence[str]) -> bool:
+    """Whether the command line asks for a subcommand that runs Snakemake (its first word that is not an
+    option; ``--help`` anywhere before ``--`` asks for help instead)."""
+    words = list(argv[:argv.index("--")] if "--" in argv else argv)
+    if "-h" in words or "--help" in words:
+        return False
+    first = next((w for w in words if not w.startswith("-")), None)
+    return first in _SNAKEMAKE_COMMANDS
 
 
 def main() -> int:
     """Run the ``fegrid`` command with one linear-algebra thread (see the module docstring)."""
     for variable in THREAD_VARIABLES:
         os.environ.setdefault(variable, "1")
+    if _runs_snakemake(sys.argv[1:]):
+        early.begin()  # Snakemake imports itself while fegrid loads and checks the grid (fegrid.early)
     from .cli import main as run
 
-    return run()
+    code = run()
+    early.exit_now(code)  # the run is over: skip the teardown of pandas, numpy and the rest
+    return code
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -272,8 +272,12 @@ def check_data(frame: pd.DataFrame, grid: Grid, *, path: str = "the data") -> No
         bad = np.isfinite(w) & (w <= 0)
         if bad.any():
             raise DataError(f"The weights column '{col}' has {int(bad.sum())} value(s) that are not positive.")
+    # every sample keeps some rows: its filters read their own columns and the panel's keys only, so a
+    # frame of those is filtered (not ten copies of every column)
+    keys = [grid.panel.unit, *([grid.panel.time] if grid.panel.time else []), *roles["sample filter"]]
+    slim = frame[list(dict.fromkeys(keys))]
     for _, sample in grid.sample_defs(levels_for(frame, grid)).values():
-        apply_sample(frame, sample, grid.panel)
+        apply_sample(slim, sample, grid.panel)
 
 
 def _check_adoption(frame: pd.DataFrame, panel: Panel) -> None:

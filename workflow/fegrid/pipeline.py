@@ -19,6 +19,7 @@ import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass, is_dataclass, replace
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
@@ -68,6 +69,7 @@ __all__ = [
     "save_plan",
     "load_plan",
     "plan_for_job",
+    "plan_for_workflow",
     "PLAN_ENV",
     "load_checked",
     "snapshot_data",
@@ -130,9 +132,11 @@ class Plan:
     @property
     def pairs(self) -> list[tuple[str, str, str]]:
         """The grid's curves (outcome, focal regressor, curve), sorted."""
-        if self.facts:
-            return list(self.facts.pairs)
-        return sorted({(s.outcome, s.focal, s.curve) for s in self.specs})
+        return list(self.facts.pairs) if self.facts else list(self._pairs)
+
+    @cached_property
+    def _pairs(self) -> tuple[tuple[str, str, str], ...]:
+        return tuple(sorted({(s.outcome, s.focal, s.curve) for s in self.specs}))
 
     @property
     def joint_key(self) -> str:
@@ -301,6 +305,35 @@ def result_keys(grid: Grid, frame: pd.DataFrame, jobs: Sequence[Job]) -> dict[st
     return {sid: key for job in jobs for sid, key in content.of_job(job).items()}
 
 
+def _plan_place(config: str | Path | Mapping[str, Any], *, root: str | Path,
+                prepare: bool) -> tuple[Grid, str, RunPaths, Path]:
+    """The checked config, its data file's hash (the demo's data written first with ``prepare``), the run's
+    paths and the file its saved plan has (or would have)."""
+    grid = load_config(config)
+    path = Path(grid.data_path)
+    if prepare and grid.raw["data"].get("demo") and not is_current_demo(path):
+        write_demo_data(path)
+    require_file(path)
+    data_sha = file_sha256(path)
+    paths = RunPaths(Path(root), grid.run_name)
+    return grid, data_sha, paths, paths.plan_file(keys.plan_key(grid.raw, data_sha))
+
+
+def plan_for_workflow(config: Mapping[str, Any], *, root: str | Path = REPORTS_ROOT) -> tuple[Plan, Path]:
+    """The plan of the workflow's main process, in the form its rules need (:meth:`Plan.for_rules`, no
+    specifications), and the file of the saved full plan (for :data:`PLAN_ENV`). Read back when ``fegrid run``
+    saved it for this config and data (reading the full plan of 10,000 specifications, and listing its
+    curves from them, took a tenth of a second of every start), else planned and saved here."""
+    grid, _, paths, saved = _plan_place(config, root=root, prepare=True)
+    if saved.is_file() and _rules_file(saved).is_file():
+        try:
+            return replace(load_plan(_rules_file(saved)), paths=paths), saved
+        except (OSError, EOFError, pickle.UnpicklingError, AttributeError, TypeError):
+            pass  # unreadable: plan again
+    plan = make_plan(config, root=root, prepare=True)
+    return plan.for_rules(), save_plan(plan)
+
+
 def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPORTS_ROOT,
               prepare: bool = False) -> Plan:
     """Read the config, hash the data file and expand the grid into jobs (no fitting).
@@ -309,14 +342,8 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     ``data.path`` when that file is missing. A plan saved for the same config, data file and
     version (:func:`save_plan`) is read back instead of expanding the grid again.
     """
-    grid = load_config(config)
+    grid, data_sha, paths, saved = _plan_place(config, root=root, prepare=prepare)
     path = Path(grid.data_path)
-    if prepare and grid.raw["data"].get("demo") and not is_current_demo(path):
-        write_demo_data(path)
-    require_file(path)
-    data_sha = file_sha256(path)
-    paths = RunPaths(Path(root), grid.run_name)
-    saved = paths.plan_file(keys.plan_key(grid.raw, data_sha))
     if saved.is_file():
         try:
             return replace(load_plan(saved), paths=paths)

@@ -4,11 +4,10 @@ import time
 from pathlib import Path
 
 from snakemake.exceptions import WorkflowError
-from snakemake.utils import validate
 
-from fegrid import keys, pipeline, renames
+from fegrid import defaults, keys, pipeline, renames
 from fegrid.errors import FegridError
-from fegrid.locations import SCHEMA_PATH, pdflatex
+from fegrid.locations import pdflatex
 from fegrid.lock import RunLock
 from fegrid.store import RunPaths
 
@@ -26,13 +25,17 @@ try:
     if workflow.is_main_process:
         # plan once; the jobs read the saved plan (and their own specifications) instead of
         # expanding the grid again
-        PLAN = pipeline.make_plan(config, prepare=True)
-        os.environ[pipeline.PLAN_ENV] = str(pipeline.save_plan(PLAN).resolve())
+        PLAN, _SAVED = pipeline.plan_for_workflow(config)
+        os.environ[pipeline.PLAN_ENV] = str(_SAVED.resolve())
     else:
         PLAN = pipeline.plan_for_job(config)
 except FegridError as exc:
     raise WorkflowError(f"fegrid: {exc}") from None
-validate(config, str(SCHEMA_PATH))
+# the schema's defaults filled in, as the plan's own reading of the config does (the plan above checked the
+# config against the schema; Snakemake's validate would parse the schema again, in pure Python, at every start)
+_FILLED = defaults.fill_defaults(config)
+config.clear()
+config.update(_FILLED)
 
 
 if workflow.is_main_process and not workflow.dryrun:

@@ -70,7 +70,8 @@ def main() -> None:
     if any(folder.iterdir()):
         sys.exit(f"{folder} is not empty: the demo is timed cold")
     started = time.time()
-    proc = subprocess.Popen([sys.executable, "-m", "fegrid.cli", "demo", "-c", str(args.cores)], cwd=folder,
+    # the `fegrid` command's own entry point (fegrid.command), which starts Snakemake while it checks the grid
+    proc = subprocess.Popen([sys.executable, "-m", "fegrid.command", "demo", "-c", str(args.cores)], cwd=folder,
                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     first_answer = None
     announced: set[str] = set()

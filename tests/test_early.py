@@ -109,3 +109,41 @@ def test_a_run_that_stops_at_fegrid_s_checks_stops_the_waiting_snakemake(tmp_pat
     assert len(started) == 1 and started[0].args[1:3] == ["-m", "fegrid.early"]
     assert started[0].poll() is not None
     assert sorted(p.name for p in tmp_path.iterdir()) == ["grid.yaml"]
+
+
+def test_ctrl_c_while_the_command_loads_ends_with_a_line_not_a_traceback(tmp_path: Path) -> None:
+    """Ctrl-C before fegrid has loaded (pandas alone takes a quarter of a second): the command's own entry point
+    says it was interrupted, exits 130, and leaves no waiting Snakemake behind. (A stand-in for fegrid.cli raises
+    the interrupt where the import would take it.)"""
+    code = ("import sys, types\n"
+            "stand_in = types.ModuleType('fegrid.cli')\n"
+            "def main():\n"
+            "    raise KeyboardInterrupt\n"
+            "stand_in.main = main\n"
+            "sys.modules['fegrid.cli'] = stand_in\n"
+            "sys.argv = ['fegrid', 'run', '--config', 'grid.yaml']\n"
+            "from fegrid.command import main as command\n"
+            "command()\n")
+    proc = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 130, proc.stderr
+    assert proc.stderr.strip() == "fegrid: interrupted; run the same command again to resume."
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_a_snakemake_that_does_not_stop_is_ended(monkeypatch) -> None:
+    """When fegrid's side fails during a run it stops Snakemake with SIGINT; a process that does not end (a Python
+    process interrupted in the middle of an import can hang on its import lock) is killed after the grace
+    period, so `fegrid run` never hangs on it."""
+    import signal
+
+    import fegrid.cli
+
+    monkeypatch.setattr(fegrid.cli, "STOP_SECONDS", 0.5)
+    stubborn = subprocess.Popen([sys.executable, "-c", "import signal, sys, time\n"
+                                 "signal.signal(signal.SIGINT, signal.SIG_IGN)\n"
+                                 "print('ready', flush=True)\n"
+                                 "time.sleep(600)\n"], stdout=subprocess.PIPE, text=True)
+    assert stubborn.stdout is not None and stubborn.stdout.readline().strip() == "ready"
+    started = time.time()
+    fegrid.cli._stop(stubborn)
+    assert stubborn.returncode == -signal.SIGKILL and time.time() - started < 30

@@ -24,7 +24,7 @@ from tabulate import tabulate
 
 from . import __version__, early
 from .defaults import DEFAULTS
-from .errors import FegridDeprecationWarning, FegridError
+from .errors import INTERRUPTED, FegridDeprecationWarning, FegridError
 from .joint import shared_cluster_caution
 from .ledger import read_ledger
 from .locations import DEMO_CONFIG, PROFILES, SNAKEFILE, pdflatex
@@ -342,11 +342,11 @@ def _run_snakemake(command: list[str], lock: RunLock,
 
     def forward(signum: int, frame: object) -> None:
         # Snakemake cancels cleanly on SIGINT (stops its jobs, marks their outputs incomplete),
-        # whatever signal asked us to stop
+        # whatever signal asked us to stop; asked twice, it is ended at once
         received.append(signum)
         if proc is not None:
             with contextlib.suppress(ProcessLookupError):
-                proc.send_signal(signal.SIGINT)
+                proc.send_signal(signal.SIGINT if len(received) < 2 else signal.SIGKILL)
 
     previous = {s: signal.signal(s, forward) for s in forwarded}
     try:
@@ -375,9 +375,7 @@ def _run_snakemake(command: list[str], lock: RunLock,
                     code = proc.wait()
         except BaseException:  # this side failed while Snakemake works: stop it before the error shows
             if proc is not None:
-                with contextlib.suppress(ProcessLookupError):
-                    proc.send_signal(signal.SIGINT)
-                proc.wait()
+                _stop(proc)
             raise
         finally:
             if sink is not None:
@@ -386,6 +384,22 @@ def _run_snakemake(command: list[str], lock: RunLock,
         for s, handler in previous.items():
             signal.signal(s, handler)
     return -received[0] if received else code
+
+
+#: seconds Snakemake gets to stop after SIGINT before it is ended (SIGKILL)
+STOP_SECONDS = 60
+
+
+def _stop(proc: subprocess.Popen[bytes]) -> None:
+    """Stop Snakemake: SIGINT (it cancels its jobs and marks their outputs incomplete), then SIGKILL should it
+    still run after :data:`STOP_SECONDS` (a Python process interrupted in the middle of an import can hang)."""
+    with contextlib.suppress(ProcessLookupError):
+        proc.send_signal(signal.SIGINT)
+    try:
+        proc.wait(timeout=STOP_SECONDS)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
 
 
 def _print_summary(ledger_path: Path, level: float) -> None:
@@ -598,7 +612,7 @@ def _main(argv: Sequence[str] | None) -> int:
         print(f"fegrid: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("fegrid: interrupted; run the same command again to resume.", file=sys.stderr)
+        print(INTERRUPTED, file=sys.stderr)
         return 130
 
 

@@ -14,6 +14,7 @@ import sys
 from collections.abc import Sequence
 
 from . import early
+from .errors import INTERRUPTED
 from .threads import THREAD_VARIABLES
 
 #: the subcommands that run Snakemake (the same as ``fegrid.cli.SNAKEMAKE_COMMANDS``, which imports more)
@@ -36,9 +37,14 @@ def main() -> int:
         os.environ.setdefault(variable, "1")
     if _runs_snakemake(sys.argv[1:]):
         early.begin()  # Snakemake imports itself while fegrid loads and checks the grid (fegrid.early)
-    from .cli import main as run
+    try:
+        from .cli import main as run
 
-    code = run()
+        code = run()
+    except KeyboardInterrupt:  # Ctrl-C while fegrid loads (once loaded, fegrid.cli says so itself)
+        early.cancel_pending()
+        print(INTERRUPTED, file=sys.stderr)
+        code = 130
     early.exit_now(code)  # the run is over: skip the teardown of pandas, numpy and the rest
     return code
 

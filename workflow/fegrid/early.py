@@ -34,6 +34,10 @@ NOT_STARTED = 87
 #: the modules Snakemake and fegrid's workflow import at parse time, imported while fegrid checks the grid
 WARM_MODULES = ("snakemake.cli", "snakemake.utils", "fegrid.pipeline", "fegrid.keys", "fegrid.renames",
                 "fegrid.store", "fegrid.locations", "fegrid.lock")
+#: modules Snakemake imports once it runs (its benchmarks, storage, the notebook support of `script:` rules),
+#: imported ahead when installed: also so that no job thread imports while a signal may interrupt the main
+#: thread's import (an interrupted import can leave Python's import lock held, and the run hung)
+LATER_MODULES = ("snakemake.benchmark", "snakemake.storage", "nbformat", "graphlib", "packaging.version")
 #: set (to anything) to start Snakemake only after the checks, as fegrid 0.6.10 and older did
 OFF_ENV = "FEGRID_NO_EARLY_SNAKEMAKE"
 
@@ -139,8 +143,14 @@ def _receive(fd: int) -> tuple[dict, list[int]] | None:
 def _warm() -> None:
     """Do ahead what every Snakemake start does first: collect its plugins (building its argument parser)
     and import what it opens the workflow's files with. Anything that fails here is done again later."""
+    import importlib
+
+    for name in ("smart_open", *LATER_MODULES):  # smart_open: Snakemake's source cache opens the Snakefiles
+        try:
+            importlib.import_module(name)
+        except Exception:  # noqa: BLE001, S112 - only a head start
+            continue
     try:
-        import smart_open  # noqa: F401 - Snakemake's source cache opens the Snakefiles with it
         from snakemake.cli import get_argument_parser
 
         get_argument_parser()

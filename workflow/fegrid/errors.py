@@ -18,7 +18,11 @@ __all__ = [
     "ConvergenceWarning",
     "FewClustersWarning",
     "FegridDeprecationWarning",
+    "INTERRUPTED",
 ]
+
+#: what an interrupted ``fegrid`` command says (the command's entry point and :mod:`fegrid.cli`)
+INTERRUPTED = "fegrid: interrupted; run the same command again to resume."
 
 
 class FegridError(Exception):

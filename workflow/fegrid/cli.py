@@ -556,8 +556,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-#: the commands that run Snakemake (fegrid.early starts it while they check the grid)
-SNAKEMAKE_COMMANDS = ("run", "demo")
 COMMANDS = {"init": _cmd_init, "check": _cmd_check, "plan": _cmd_plan, "run": _cmd_run, "summary": _cmd_summary,
             "demo": _cmd_demo, "compare": _cmd_compare, "archive": _cmd_archive}
 
@@ -588,7 +586,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _main(argv: Sequence[str] | None) -> int:
     args = build_parser().parse_args(argv)
-    if args.command in SNAKEMAKE_COMMANDS:
+    if args.command in early.SNAKEMAKE_COMMANDS:
         early.begin()  # Snakemake starts while fegrid checks the grid (once: `fegrid` may have started it already)
     _show_deprecations()
     extra = getattr(args, "snakemake_args", None)

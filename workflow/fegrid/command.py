@@ -17,9 +17,6 @@ from . import early
 from .errors import INTERRUPTED
 from .threads import THREAD_VARIABLES
 
-#: the subcommands that run Snakemake (the same as ``fegrid.cli.SNAKEMAKE_COMMANDS``, which imports more)
-_SNAKEMAKE_COMMANDS = ("run", "demo")
-
 
 def _runs_snakemake(argv: Sequence[str]) -> bool:
     """Whether the command line asks for a subcommand that runs Snakemake (its first word that is not an
@@ -28,7 +25,7 @@ def _runs_snakemake(argv: Sequence[str]) -> bool:
     if "-h" in words or "--help" in words:
         return False
     first = next((w for w in words if not w.startswith("-")), None)
-    return first in _SNAKEMAKE_COMMANDS
+    return first in early.SNAKEMAKE_COMMANDS
 
 
 def main() -> int:

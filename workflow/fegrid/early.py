@@ -27,8 +27,10 @@ import subprocess
 import sys
 from collections.abc import Mapping, Sequence
 
-__all__ = ["NOT_STARTED", "EarlyStart", "begin", "take", "cancel_pending", "exit_now"]
+__all__ = ["NOT_STARTED", "SNAKEMAKE_COMMANDS", "EarlyStart", "begin", "take", "cancel_pending", "exit_now"]
 
+#: the ``fegrid`` subcommands that run Snakemake, and so start it ahead
+SNAKEMAKE_COMMANDS = ("run", "demo")
 #: exit code of a waiting process that never started Snakemake (no command came, or it could not)
 NOT_STARTED = 87
 #: the modules Snakemake and fegrid's workflow import at parse time, imported while fegrid checks the grid

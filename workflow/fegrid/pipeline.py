@@ -324,13 +324,13 @@ def plan_for_workflow(config: Mapping[str, Any], *, root: str | Path = REPORTS_R
     specifications), and the file of the saved full plan (for :data:`PLAN_ENV`). Read back when ``fegrid run``
     saved it for this config and data (reading the full plan of 10,000 specifications, and listing its
     curves from them, took a tenth of a second of every start), else planned and saved here."""
-    grid, _, paths, saved = _plan_place(config, root=root, prepare=True)
+    grid, data_sha, paths, saved = _plan_place(config, root=root, prepare=True)
     if saved.is_file() and _rules_file(saved).is_file():
         try:
             return replace(load_plan(_rules_file(saved)), paths=paths), saved
         except (OSError, EOFError, pickle.UnpicklingError, AttributeError, TypeError):
             pass  # unreadable: plan again
-    plan = make_plan(config, root=root, prepare=True)
+    plan = _plan_at(grid, data_sha, paths, saved)
     return plan.for_rules(), save_plan(plan)
 
 
@@ -342,7 +342,11 @@ def make_plan(config: str | Path | Mapping[str, Any], *, root: str | Path = REPO
     ``data.path`` when that file is missing. A plan saved for the same config, data file and
     version (:func:`save_plan`) is read back instead of expanding the grid again.
     """
-    grid, data_sha, paths, saved = _plan_place(config, root=root, prepare=prepare)
+    return _plan_at(*_plan_place(config, root=root, prepare=prepare))
+
+
+def _plan_at(grid: Grid, data_sha: str, paths: RunPaths, saved: Path) -> Plan:
+    """:func:`make_plan` once the config is read and the data hashed (:func:`_plan_place`)."""
     path = Path(grid.data_path)
     if saved.is_file():
         try:

@@ -622,6 +622,33 @@ def test_a_reweighted_absorber_jumps_at_once_and_a_warm_column_at_its_solution_i
         assert np.max(np.abs(kept.values - got.values)) <= 1e-14 * np.max(np.abs(x))
 
 
+
+def test_an_absorber_asked_to_jump_at_once_skips_the_sweeps_and_gives_the_exact_residuals(
+        wage_panel: pd.DataFrame, monkeypatch) -> None:
+    """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel
+    less some worker-years: 37 separate systems, where a fresh absorber sweeps ten times before its
+    direct solution). ``direct_at_once`` (a Poisson PML draw's first absorber and its certificate of no
+    separation, which build the layout anyway) jumps at once, with weights and without, to the same exact
+    residuals, and its reweightings keep the layout it built."""
+    df = _unbalanced(wage_panel).assign(group_year=lambda d: d["nr"] % 37 * 10000 + d["year"])
+    terms = parse_absorb(["nr", "group_year"])
+    x = df[["lwage", "union", "hours"]].to_numpy(dtype=float)
+    d = np.hstack([pd.get_dummies(df[c]).to_numpy(dtype=float) for c in ("nr", "group_year")])
+    calls: list[str] = []
+    sweep, jump = Absorber._sweep, _TwoTerms.apply
+    monkeypatch.setattr(Absorber, "_sweep", lambda self, v: calls.append("sweep") or sweep(self, v))
+    monkeypatch.setattr(_TwoTerms, "apply", lambda self, v: calls.append("jump") or jump(self, v))
+    for w in (None, 1.0 + (df["nr"] % 5).to_numpy(dtype=float) / 4):
+        sw = np.ones((len(df), 1)) if w is None else np.sqrt(w)[:, None]
+        exact = x - d @ np.linalg.lstsq(d * sw, x * sw, rcond=None)[0]
+        eager = Absorber(df, terms, weights=w, tolerance=1e-14, direct_at_once=True)
+        calls.clear()
+        got = eager.demean(x)
+        assert calls == ["jump"] * 3 and np.all(got.iterations == 1) and np.all(got.converged)
+        assert np.max(np.abs(got.values - exact)) <= 1e-11 * np.max(np.abs(x))
+        assert Absorber(df, terms, weights=w, tolerance=1e-14).demean(x).iterations.max() == DIRECT_AFTER + 1
+        assert eager.reweighted(np.ones(len(df)))._direct_layout is eager._direct_layout
+
 # ---- shortcuts of the engine's fast paths give the plain computation's numbers ------------------
 
 def test_codes_by_counting_equal_pandas_sorted_factorize() -> None:

@@ -7,7 +7,7 @@ the same steps through Snakemake (cached, resumable, on a laptop or a cluster).
 
 from __future__ import annotations
 
-__version__ = "0.6.11"
+__version__ = "0.6.12"
 
 __all__ = ["__version__", "fit_grid", "GridResult", "FegridError"]
 

@@ -693,6 +693,11 @@ class Absorber:
     codes_of, time_values
         The terms' codes on the rows (by default factorized from ``frame``) and the time column's
         values (by default ``frame[time]``).
+    direct_at_once
+        Columns jump to the direct solution of two terms at once, as a :meth:`reweighted` absorber's do,
+        instead of after :data:`DIRECT_AFTER` sweeps: for a caller that builds the direct solver's layout
+        anyway (an iteratively reweighted fit's first absorber, whose later steps keep it; a check that
+        demeans a few columns once, where the sweeps cost more than the layout).
 
     Notes
     -----
@@ -717,6 +722,7 @@ class Absorber:
         max_iterations: int = DEFAULTS["estimation.max_iterations"],
         codes_of: CodesOf | None = None,
         time_values: np.ndarray | None = None,
+        direct_at_once: bool = False,
     ) -> None:
         if isinstance(frame, int):  # the number of rows: codes_of (and time_values, for trends) give the rest
             n = frame
@@ -761,7 +767,9 @@ class Absorber:
         self._slopes = slopes
         self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
-        self._reweighting = False  # reweighted from another absorber: its columns jump at once (see DIRECT_AFTER)
+        # its columns jump to the direct solution at once (see DIRECT_AFTER): an absorber reweighted from
+        # another, or one whose caller builds the direct solver's layout anyway (a Poisson PML draw's)
+        self._jump_at_once = direct_at_once
 
     def _project(self) -> list[_Projection]:
         if not self.terms:
@@ -774,7 +782,7 @@ class Absorber:
         depend on the weights, are reused; everything else is computed as a new absorber would."""
         new = copy.copy(self)
         new.w = np.asarray(weights, dtype=float)
-        new._reweighting = True  # its columns jump at once (see DIRECT_AFTER); the layout, once built, is kept
+        new._jump_at_once = True  # its columns jump at once (see DIRECT_AFTER); the layout, once built, is kept
         for weighted in ("_direct", "absorbed_df"):  # cached on first use: the new weights' own
             new.__dict__.pop(weighted, None)
         new._ranks = {}  # a trend's slopes count the groups where time varies with weight
@@ -991,7 +999,7 @@ class Absorber:
 
         jump = 0
         if self._direct_setup is not None:  # (decided before any column: each column's bytes are its own)
-            jump = (DIRECT_AFTER_DENSE if self._reweighting else self._direct_setup[2]) + 1
+            jump = (DIRECT_AFTER_DENSE if self._jump_at_once else self._direct_setup[2]) + 1
         converged[:] = False
         # one column at a time: its n-vectors are reused from column to column (no n x k temporaries)
         for j in range(k):

@@ -122,7 +122,7 @@ def positives_span_everything(zeros: np.ndarray, x: np.ndarray, terms: Sequence[
     positives = Absorber(len(positive), terms, time=time,
                          time_values=None if time_values is None else time_values[positive],
                          tolerance=tolerance, max_iterations=max_iterations,
-                         codes_of=codes_on_rows(codes_of, positive))
+                         codes_of=codes_on_rows(codes_of, positive), direct_at_once=True)
     if positives.absorbed_df != everything.absorbed_df:
         return False
     xp = positives.demean(x[~zeros]).values

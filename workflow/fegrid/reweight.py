@@ -1982,7 +1982,8 @@ class _Design(_DesignRows):
             return None
         # regressors that the dropped rows leave constant within the effects are dropped (norms over the copies)
         on_copies = Absorber(len(keep), s.absorb, weights=c * w_user, time=time, time_values=time_values,
-                             tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep)
+                             tolerance=s.tolerance, max_iterations=s.max_iterations, codes_of=on_keep,
+                             direct_at_once=True)  # its layout serves every step of the fit below
         check = on_copies.demean(x).values
         spread = x - (c @ x) / c.sum()
         ratio = np.sqrt(c @ (check * check)) / np.maximum(np.sqrt(c @ (spread * spread)), 1e-300)

@@ -622,7 +622,6 @@ def test_a_reweighted_absorber_jumps_at_once_and_a_warm_column_at_its_solution_i
         assert np.max(np.abs(kept.values - got.values)) <= 1e-14 * np.max(np.abs(x))
 
 
-
 def test_an_absorber_asked_to_jump_at_once_skips_the_sweeps_and_gives_the_exact_residuals(
         wage_panel: pd.DataFrame, monkeypatch) -> None:
     """Source: numpy least squares on explicit worker and group-by-year dummies (linearmodels' wage_panel
@@ -648,6 +647,7 @@ def test_an_absorber_asked_to_jump_at_once_skips_the_sweeps_and_gives_the_exact_
         assert np.max(np.abs(got.values - exact)) <= 1e-11 * np.max(np.abs(x))
         assert Absorber(df, terms, weights=w, tolerance=1e-14).demean(x).iterations.max() == DIRECT_AFTER + 1
         assert eager.reweighted(np.ones(len(df)))._direct_layout is eager._direct_layout
+
 
 # ---- shortcuts of the engine's fast paths give the plain computation's numbers ------------------
 

@@ -402,7 +402,8 @@ DENSE_CELLS = 4_000_000
 #: (building their layout costs about as much as ten sweeps; unbalanced panels and unit trends can take
 #: hundreds), none for an absorber :meth:`~Absorber.reweighted` from another (a step of an iteratively
 #: reweighted fit: the layout, built once, serves every later step, whose systems' new entries and
-#: inverses cost a few sweeps; columns rarely converge in ten sweeps under new weights).
+#: inverses cost a few sweeps; columns rarely converge in ten sweeps under new weights), and none for one
+#: built with ``direct_at_once`` (its caller builds the layout anyway).
 DIRECT_AFTER_DENSE = 0
 DIRECT_AFTER = 10
 
@@ -767,8 +768,8 @@ class Absorber:
         self._slopes = slopes
         self._ranks: dict[tuple[int, ...], int] = {}
         self._projections = self._project()
-        # its columns jump to the direct solution at once (see DIRECT_AFTER): an absorber reweighted from
-        # another, or one whose caller builds the direct solver's layout anyway (a Poisson PML draw's)
+        # its columns jump to the direct solution at once (see DIRECT_AFTER): set here by direct_at_once,
+        # and by reweighted() for every absorber it makes
         self._jump_at_once = direct_at_once
 
     def _project(self) -> list[_Projection]:
@@ -964,9 +965,10 @@ class Absorber:
         the Gearhart & Koshy (1989) step ``t = <x, x - T x> / ||x - T x||^2`` (weighted inner
         products), which minimises the distance to the solution along the sweep's direction. Columns
         not converged after :data:`DIRECT_AFTER_DENSE` or :data:`DIRECT_AFTER` sweeps (none when the
-        absorber was :meth:`reweighted`) jump to the direct solution of two terms (:class:`_TwoTerms`) when
-        it applies; its terms' group sums confirm it (:meth:`sweep_bound`: the sweep could not move it
-        beyond the tolerance), or failing them the next sweep.
+        absorber was :meth:`reweighted` or built with ``direct_at_once``) jump to the direct solution of
+        two terms (:class:`_TwoTerms`) when it applies; its terms' group sums confirm it
+        (:meth:`sweep_bound`: the sweep could not move it beyond the tolerance), or failing them the next
+        sweep.
         ``warm`` says that the columns start near their solution (each step of an iteratively reweighted
         fit starts from the previous step's): a column about to jump at once is first checked by its group
         sums, which may confirm it as it is (a sweep first would seldom confirm it, and costs as much as the

@@ -8,10 +8,14 @@ Printed, from one cold run of ``fegrid run -c CORES``: wall time; time inside fe
 (the jobs' own clocks); the jobs' wall time as Snakemake measured it (Python start-up included);
 the share of wall time in which no job ran, from the jobs' benchmark files (Snakemake's own
 work: parsing, DAG, scheduling, its end; and fegrid's checks before it starts, which Snakemake's
-start-up overlaps: see ``fegrid.early``); the seconds a fresh interpreter takes to import Snakemake's
-SLURM executor plugin (see :func:`slurm_plugin_seconds`: where that probe hangs, hide SLURM's client
-tools from PATH for a local measurement); the share of the fit jobs' time spent outside the fit step
-(Python start-up, imports, reading the snapshot); peak memory of any process.
+start-up overlaps: see ``fegrid.early``), split into the time before the first job and the time
+between and after the jobs; the seconds a fresh interpreter takes to import Snakemake and build its
+argument parser (Snakemake's own start, before it reads any workflow), and the share of wall time with
+no job running that Snakemake alone would leave (its start plus the time between and after the jobs:
+the floor under that share if fegrid's own start cost nothing); the seconds a fresh interpreter takes
+to import Snakemake's SLURM executor plugin (see :func:`slurm_plugin_seconds`: where that probe
+hangs, hide SLURM's client tools from PATH for a local measurement); the share of the fit jobs' time
+spent outside the fit step (Python start-up, imports, reading the snapshot); peak memory of any process.
 
     python tests/benchmarks/bench_pipeline.py [--rows 100000] [--cores 2] [--folder DIR]
 """
@@ -54,15 +58,19 @@ def make_data(rows: int, path: Path, seed: int = 2026) -> None:
     df.to_parquet(path, index=False)
 
 
-def busy_seconds(benchmarks: list[Path]) -> float:
-    """Seconds in which at least one job ran: each job's interval ends when Snakemake wrote its
-    benchmark file and lasts the wall time the file records (``fegrid run`` shows its own progress
-    lines, so Snakemake's log holds no time stamps to read)."""
+def job_intervals(benchmarks: list[Path]) -> list[tuple[float, float]]:
+    """Each job's (start, end) in clock seconds: its interval ends when Snakemake wrote its benchmark
+    file and lasts the wall time the file records (``fegrid run`` shows its own progress lines, so
+    Snakemake's log holds no time stamps to read)."""
     intervals = []
     for p in benchmarks:
         end = p.stat().st_mtime
         intervals.append((end - float(pd.read_csv(p, sep="\t").iloc[0]["s"]), end))
-    intervals.sort()
+    return sorted(intervals)
+
+
+def busy_seconds(intervals: list[tuple[float, float]]) -> float:
+    """Seconds in which at least one of the jobs (:func:`job_intervals`) ran."""
     total, end = 0.0, -1.0
     for a, b in intervals:
         if b <= end:
@@ -86,6 +94,20 @@ def slurm_plugin_seconds() -> float:
         return 0.0
     return max(timed("import snakemake_executor_plugin_slurm") - timed("import snakemake_interface_executor_plugins"),
                0.0)
+
+
+def snakemake_start_seconds() -> float:
+    """Wall seconds a fresh interpreter takes to import Snakemake and build its argument parser (which
+    collects its installed plugins), less a bare interpreter's start: what any Snakemake run spends
+    before it can read a workflow, whatever the workflow. Measured three times; the least."""
+    def timed(code: str) -> float:
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", code], capture_output=True)
+        return time.perf_counter() - start
+
+    code = ("from snakemake.cli import get_argument_parser; get_argument_parser(); "
+            "import snakemake.api, snakemake.workflow")
+    return max(min(timed(code) for _ in range(3)) - min(timed("pass") for _ in range(3)), 0.0)
 
 
 def work_folder(path: str | None, prefix: str) -> Path:
@@ -130,7 +152,7 @@ def main() -> None:
     make_data(args.rows, data)
     cfg = config(data)
     (folder / "grid.yaml").write_text(yaml.safe_dump(cfg))
-    start = time.perf_counter()
+    start, launched = time.perf_counter(), time.time()
     # the `fegrid` command's own entry point (fegrid.command), which starts Snakemake while it checks the grid
     command = [sys.executable, "-m", "fegrid.command", "run", "--config", "grid.yaml", "-c", str(args.cores), "--quiet"]
     proc = subprocess.run(command, cwd=folder, capture_output=True, text=True)
@@ -149,10 +171,14 @@ def main() -> None:
         entry["max_rss_mb"] = max(entry["max_rss_mb"], float(pd.to_numeric(row["max_rss"], errors="coerce") or 0))
     fit_inside = sum(log["seconds"] for log in logs)
     job_seconds = sum(b["seconds"] for b in bench.values())
-    busy = busy_seconds(sorted((run / "benchmarks").glob("*/*.tsv")))
+    intervals = job_intervals(sorted((run / "benchmarks").glob("*/*.tsv")))
+    busy = busy_seconds(intervals)
     peak_children_mb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     probe = slurm_plugin_seconds()
+    snakemake_start = snakemake_start_seconds()
     idle = max(wall - busy, 0)
+    first_job = max(intervals[0][0] - launched, 0.0)
+    idle_later = max(idle - first_job, 0.0)  # between jobs and after the last one
     report = {
         "rows": args.rows,
         "specifications": len(ledger),
@@ -166,7 +192,13 @@ def main() -> None:
                      for k, v in sorted(bench.items())},
         "seconds_with_a_job_running": round(busy, 1),
         "share_of_wall_with_no_job_running": round(idle / wall, 3),
+        "first_job_started_after_seconds": round(first_job, 2),
+        "seconds_with_no_job_running_after_the_first_job_started": round(idle_later, 2),
+        "snakemake_start_seconds": round(snakemake_start, 2),
         "slurm_plugin_import_seconds": round(probe, 1),
+        # what the share would be if fegrid's own start (imports, checks, plan) cost nothing: Snakemake's start
+        # plus the time between and after the jobs
+        "share_of_wall_with_no_job_running_from_snakemake_alone": round((snakemake_start + idle_later) / wall, 3),
         "share_of_job_time_outside_the_fit_step": round(
             1 - fit_inside / max(bench.get("fit_job", {}).get("seconds", fit_inside), 1e-9), 3),
         "peak_memory_mb_any_process": round(peak_children_mb),

@@ -80,34 +80,31 @@ def busy_seconds(intervals: list[tuple[float, float]]) -> float:
     return total
 
 
+def fresh_seconds(code: str) -> float:
+    """Wall seconds a fresh interpreter takes to run ``code``."""
+    start = time.perf_counter()
+    subprocess.run([sys.executable, "-c", code], capture_output=True)
+    return time.perf_counter() - start
+
+
 def slurm_plugin_seconds() -> float:
     """Wall seconds to import Snakemake's SLURM executor plugin in a fresh interpreter (0 when it is not
     installed), less a bare interpreter's start. Snakemake imports every installed executor plugin at
     start, even for a local run, and this one runs ``scontrol show config`` when imported: about 10 s
     where SLURM's client is configured and no controller answers (this machine, between SLURM tests)."""
-    def timed(code: str) -> float:
-        start = time.perf_counter()
-        subprocess.run([sys.executable, "-c", code], capture_output=True)
-        return time.perf_counter() - start
-
     if importlib.util.find_spec("snakemake_executor_plugin_slurm") is None:
         return 0.0
-    return max(timed("import snakemake_executor_plugin_slurm") - timed("import snakemake_interface_executor_plugins"),
-               0.0)
+    return max(fresh_seconds("import snakemake_executor_plugin_slurm")
+               - fresh_seconds("import snakemake_interface_executor_plugins"), 0.0)
 
 
 def snakemake_start_seconds() -> float:
     """Wall seconds a fresh interpreter takes to import Snakemake and build its argument parser (which
     collects its installed plugins), less a bare interpreter's start: what any Snakemake run spends
     before it can read a workflow, whatever the workflow. Measured three times; the least."""
-    def timed(code: str) -> float:
-        start = time.perf_counter()
-        subprocess.run([sys.executable, "-c", code], capture_output=True)
-        return time.perf_counter() - start
-
     code = ("from snakemake.cli import get_argument_parser; get_argument_parser(); "
             "import snakemake.api, snakemake.workflow")
-    return max(min(timed(code) for _ in range(3)) - min(timed("pass") for _ in range(3)), 0.0)
+    return max(min(fresh_seconds(code) for _ in range(3)) - min(fresh_seconds("pass") for _ in range(3)), 0.0)
 
 
 def work_folder(path: str | None, prefix: str) -> Path:

@@ -6,7 +6,8 @@ jobs and seconds from the run's benchmark files (the draw jobs' CPU seconds too,
 clocks: Snakemake samples CPU time and undercounts it); the seconds before the
 first job started and after the last ended; and the seconds the SLURM executor plugin adds to
 Snakemake's start where it is installed (see ``bench_pipeline.slurm_plugin_seconds``: 0 after the
-README's install, about 10 s where SLURM's client is set up and no controller answers).
+README's install, about 10 s where SLURM's client is set up and no controller answers). fegrid's modules
+are byte-compiled first, as an install does (see ``bench_pipeline.byte_compile_fegrid``).
 
     python tests/benchmarks/bench_demo.py [--cores 2] [--folder DIR]
 """
@@ -24,7 +25,7 @@ from pathlib import Path
 import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).parent))
-from bench_pipeline import slurm_plugin_seconds, work_folder  # noqa: E402
+from bench_pipeline import byte_compile_fegrid, slurm_plugin_seconds, work_folder  # noqa: E402
 
 #: issue 12's target for the demo, cold, on 2 cores (wall seconds)
 TARGET_SECONDS = 90.0
@@ -69,6 +70,7 @@ def main() -> None:
     folder = work_folder(args.folder, "fegrid-demo-")
     if any(folder.iterdir()):
         sys.exit(f"{folder} is not empty: the demo is timed cold")
+    byte_compile_fegrid()
     started = time.time()
     # the `fegrid` command's own entry point (fegrid.command), which starts Snakemake while it checks the grid
     proc = subprocess.Popen([sys.executable, "-m", "fegrid.command", "demo", "-c", str(args.cores)], cwd=folder,
